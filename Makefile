@@ -1,0 +1,26 @@
+# Two entry points: `make demo` and `make test`. Each creates .venv when missing.
+PYTHON ?= python3
+VENV := .venv
+PY := $(VENV)/bin/python
+STAMP := $(VENV)/.installed
+
+.PHONY: demo test bench clean
+
+$(STAMP): pyproject.toml
+	test -x $(PY) || $(PYTHON) -m venv $(VENV)
+	$(PY) -m pip install --quiet --upgrade pip
+	$(PY) -m pip install --quiet -e ".[test]"
+	touch $(STAMP)
+
+demo: $(STAMP)
+	$(PY) -m encodex demo --out demo_output
+
+test: $(STAMP)
+	$(PY) -m pytest -q
+
+bench: $(STAMP)
+	$(PY) -m pip install --quiet -e ".[test,bench]"
+	$(PY) benchmarks/bench_solver.py
+
+clean:
+	rm -rf $(VENV) demo_output .pytest_cache
