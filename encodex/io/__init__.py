@@ -1,0 +1,65 @@
+"""Reading and writing recordings: NWB files and npz bundles.
+
+``read_recording(path, **object_paths)`` dispatches on the file suffix (``.nwb`` or
+``.npz``) and returns a :class:`Recording`; see ``docs/data_conventions.md`` for the
+conventions each reader follows.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from encodex.errors import FileFormatError, InputError, SettingsError
+from encodex.io.bundle import read_bundle, write_bundle
+from encodex.io.nwb import read_nwb, write_nwb
+from encodex.io.recording import MAX_POSITION_EXTENT_M, Recording, make_recording
+
+__all__ = [
+    "MAX_POSITION_EXTENT_M",
+    "Recording",
+    "make_recording",
+    "read_bundle",
+    "read_nwb",
+    "read_recording",
+    "write_bundle",
+    "write_nwb",
+]
+
+
+def read_recording(path, drop_empty_units: bool = False, **object_paths) -> Recording:
+    """Read a recording from an NWB file (``.nwb``) or an npz bundle (``.npz``).
+
+    Parameters
+    ----------
+    path : str or Path
+    drop_empty_units : bool
+        Drop units without any spike instead of raising InputError.
+    **object_paths
+        NWB only: path inside the file of ``position``, ``heading``, ``units``, ``trials``
+        or ``epochs`` (e.g. ``position="processing/tracking/Position/xy"``).
+
+    Returns
+    -------
+    Recording
+
+    Raises
+    ------
+    encodex.errors.FileFormatError
+        Missing, truncated or unknown files, or missing objects.
+    """
+    path = Path(path)
+    if not path.exists():
+        raise InputError(f"no such file: {path}; check the path")
+    suffix = path.suffix.lower()
+    if suffix == ".nwb":
+        return read_nwb(path, drop_empty_units=drop_empty_units, **object_paths)
+    if suffix == ".npz":
+        if object_paths:
+            raise SettingsError(
+                f"object paths ({', '.join(object_paths)}) apply to NWB files only; "
+                "drop them for an npz bundle"
+            )
+        return read_bundle(path, drop_empty_units=drop_empty_units)
+    raise FileFormatError(
+        f"unknown file type {suffix!r} for {path.name}; give an .nwb file or an .npz bundle"
+    )

@@ -1,0 +1,180 @@
+"""The npz bundle: a recording as plain numpy arrays in one ``.npz`` file (no pickles).
+
+Keys (see docs/data_conventions.md):
+
+=====================  ===============  ====================================================
+key                    shape / dtype    meaning
+=====================  ===============  ====================================================
+``format``             () str           ``"encodex-bundle"`` (optional when reading)
+``format_version``     () int           ``1`` (optional when reading)
+``tracking_time``      (n,) float       tracking sample times, s (required)
+``position``           (n, 2) float     x, y in metres, NaN for lost samples (required)
+``heading``            (n,) float       head direction, rad (optional)
+``unit_ids``           (k,) str         unit identifiers (required)
+``spike_times``        (m,) float       all spike times, unit after unit, s (required)
+``spike_index``        (k,) int         end offset of each unit in ``spike_times`` (required)
+``trial_start``        (t,) float       trial starts, s (optional, with ``trial_stop``)
+``trial_stop``         (t,) float       trial stops, s
+``epoch_start``        (e,) float       epoch starts, s (optional, with the next two)
+``epoch_stop``         (e,) float       epoch stops, s
+``epoch_environment``  (e,) str         environment name of each epoch
+=====================  ===============  ====================================================
+"""
+
+from __future__ import annotations
+
+import json
+import zipfile
+from pathlib import Path
+
+import numpy as np
+
+from encodex.errors import FileFormatError, OutputError
+from encodex.io.recording import Recording, make_recording
+
+FORMAT_NAME = "encodex-bundle"
+FORMAT_VERSION = 1
+_REQUIRED = ("tracking_time", "position", "unit_ids", "spike_times", "spike_index")
+
+
+def write_bundle(recording: Recording, path) -> Path:
+    """Write a recording to an npz bundle (plain arrays, no pickles).
+
+    Parameters
+    ----------
+    recording : Recording
+    path : str or Path
+        Destination; ``.npz`` is appended by numpy when missing.
+
+    Returns
+    -------
+    Path
+        The file written.
+    """
+    path = Path(path)
+    if path.suffix != ".npz":
+        path = path.with_suffix(path.suffix + ".npz")
+    lengths = np.array([s.size for s in recording.spike_times], dtype=np.int64)
+    arrays = {
+        "format": np.array(FORMAT_NAME),
+        "format_version": np.array(FORMAT_VERSION),
+        "tracking_time": recording.timestamps,
+        "position": recording.position,
+        "unit_ids": np.array(recording.unit_ids, dtype=str),
+        "spike_times": np.concatenate(recording.spike_times),
+        "spike_index": np.cumsum(lengths),
+        "provenance": np.array(json.dumps(dict(recording.provenance))),
+    }
+    if recording.heading is not None:
+        arrays["heading"] = recording.heading
+    if recording.trials.shape[0]:
+        arrays["trial_start"] = recording.trials[:, 0]
+        arrays["trial_stop"] = recording.trials[:, 1]
+    if recording.epochs:
+        arrays["epoch_start"] = np.array([e[0] for e in recording.epochs])
+        arrays["epoch_stop"] = np.array([e[1] for e in recording.epochs])
+        arrays["epoch_environment"] = np.array([e[2] for e in recording.epochs], dtype=str)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        np.savez_compressed(path, **arrays)
+    except OSError as exc:
+        raise OutputError(f"cannot write {path}: {exc.strerror}; check the folder") from None
+    return path
+
+
+def read_bundle(path, drop_empty_units: bool = False) -> Recording:
+    """Read an npz bundle written by :func:`write_bundle` or by hand (keys in module doc).
+
+    Parameters
+    ----------
+    path : str or Path
+    drop_empty_units : bool
+        Drop units without spikes instead of raising InputError.
+
+    Returns
+    -------
+    Recording
+
+    Raises
+    ------
+    encodex.errors.FileFormatError
+        When the file is not a readable npz archive, holds pickled objects, or misses a
+        required key.
+    encodex.errors.InputError
+        When the arrays are inconsistent (see :class:`Recording`).
+    """
+    path = Path(path)
+    try:
+        with np.load(path, allow_pickle=False) as z:
+            data = {k: z[k] for k in z.files}
+    except (zipfile.BadZipFile, EOFError, OSError) as exc:
+        raise FileFormatError(
+            f"{path.name} is not a readable npz bundle ({type(exc).__name__}); it may be "
+            "truncated: write it again with encodex.io.write_bundle"
+        ) from None
+    except ValueError:
+        raise FileFormatError(
+            f"{path.name} holds pickled objects; store plain numeric and string arrays only"
+        ) from None
+    if "format" in data and str(data["format"]) != FORMAT_NAME:
+        raise FileFormatError(
+            f"{path.name} declares format {str(data['format'])!r}, not {FORMAT_NAME!r}; "
+            "convert it with encodex.io.write_bundle"
+        )
+    missing = [k for k in _REQUIRED if k not in data]
+    if missing:
+        raise FileFormatError(
+            f"{path.name} lacks key(s) {', '.join(missing)}; an npz bundle needs "
+            f"{', '.join(_REQUIRED)} (see docs/data_conventions.md)"
+        )
+    flat = np.asarray(data["spike_times"], dtype=float).ravel()
+    ends = np.asarray(data["spike_index"]).ravel().astype(np.int64)
+    ids = [str(u) for u in np.asarray(data["unit_ids"]).ravel()]
+    if ends.size != len(ids) or (ends.size and (ends[-1] != flat.size or np.any(np.diff(ends) < 0))):
+        raise FileFormatError(
+            f"{path.name}: spike_index must hold {len(ids)} non-decreasing end offsets "
+            f"ending at {flat.size}; rebuild it as numpy.cumsum of the per-unit counts"
+        )
+    trains = np.split(flat, ends[:-1]) if ends.size else []
+    trials = None
+    if "trial_start" in data or "trial_stop" in data:
+        if not ("trial_start" in data and "trial_stop" in data):
+            raise FileFormatError(
+                f"{path.name} has only one of trial_start/trial_stop; give both"
+            )
+        a, b = np.ravel(data["trial_start"]), np.ravel(data["trial_stop"])
+        if a.size != b.size:
+            raise FileFormatError(
+                f"{path.name}: {a.size} trial starts but {b.size} stops; give one stop per start"
+            )
+        trials = np.column_stack([a, b])
+    epochs = None
+    ekeys = ("epoch_start", "epoch_stop", "epoch_environment")
+    if any(k in data for k in ekeys):
+        if not all(k in data for k in ekeys):
+            raise FileFormatError(
+                f"{path.name} has only some of {', '.join(ekeys)}; give all three"
+            )
+        a, b, n = (np.ravel(data[k]) for k in ekeys)
+        if not a.size == b.size == n.size:
+            raise FileFormatError(
+                f"{path.name}: epoch_start, epoch_stop and epoch_environment differ in "
+                "length; give one of each per epoch"
+            )
+        epochs = [(float(x), float(y), str(z)) for x, y, z in zip(a, b, n)]
+    provenance = {"source": f"npz bundle {path.name}"}
+    if "provenance" in data:
+        try:
+            provenance.update(json.loads(str(data["provenance"])))
+        except json.JSONDecodeError:
+            pass  # notes only: an unreadable note is not worth refusing the file
+    return make_recording(
+        timestamps=data["tracking_time"],
+        position=data["position"],
+        spikes=dict(zip(ids, trains)),
+        heading=data.get("heading"),
+        trials=trials,
+        epochs=epochs,
+        provenance=provenance,
+        drop_empty_units=drop_empty_units,
+    )

@@ -1,0 +1,407 @@
+"""Ground-truth simulator: a foraging animal in an open box and a population of tuned cells.
+
+The scenario (invented for encodex): an animal forages in a square open box (side
+``box_size_m``, default 1 m, origin at a corner, coordinates in [0, side]) in one or more
+environments recorded one after the other, separated by a break in a holding cage (no
+tracking). Each environment is split into back-to-back trials (a food cue restarts the
+trial), so travelled distance and elapsed time restart at every trial start. The animal
+alternates stops (mean 2 s) and runs (mean 5 s, speed log-normal around 0.18 m/s with
+fluctuations), so distance and time since trial start decouple. The head turns around the
+direction of travel, and keeps turning while the animal is stopped.
+
+Cells are position (Gaussian place field), heading (von Mises), speed (log-linear up to
+0.4 m/s), distance (Gaussian bump in distance since trial start), time (Gaussian bump in
+time since trial start), pairs of these (multiplicative), or untuned. Between environments
+place fields remap, some cells change type and some fall silent. The rate of each cell is
+scaled to a mean rate drawn in ``mean_rate_hz`` (default 1-4 Hz) in each environment.
+
+Spikes are drawn from the inhomogeneous Poisson process by thinning [1]_: candidate events of
+a homogeneous process at the peak rate are kept with probability rate(t)/peak, the rate
+being linearly interpolated between the 10 ms behaviour samples; spike times are then
+continuous (no time grid).
+
+References
+----------
+.. [1] Lewis, P. A. W. and Shedler, G. S. (1979). Simulation of nonhomogeneous Poisson
+   processes by thinning. Naval Research Logistics Quarterly 26, 403-413.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from scipy.ndimage import gaussian_filter1d
+from scipy.signal import lfilter
+
+from encodex.errors import OutputError, SettingsError
+from encodex.io.recording import Recording
+from encodex.variables import label
+
+#: Internal time step of the behaviour and the rate, s.
+_DT = 0.01
+#: Acquisition rate to which spike times are quantised, Hz (a common extracellular rate).
+SPIKE_SAMPLING_HZ = 30000.0
+#: Cell types and their share of the population (in the first environment).
+CELL_TYPES: tuple[tuple[tuple[str, ...], float], ...] = (
+    (("position",), 0.22),
+    (("heading",), 0.12),
+    (("speed",), 0.10),
+    (("distance",), 0.10),
+    (("time",), 0.10),
+    (("position", "heading"), 0.06),
+    (("position", "speed"), 0.06),
+    (("heading", "speed"), 0.05),
+    (("speed", "time"), 0.05),
+    ((), 0.14),
+)
+
+
+@dataclass(frozen=True)
+class _Behaviour:
+    t: np.ndarray  # internal time grid, s
+    pos: np.ndarray  # (n, 2) m
+    heading: np.ndarray  # rad, [0, 2pi)
+    speed: np.ndarray  # m/s
+    distance: np.ndarray  # m since trial start (NaN outside trials)
+    elapsed: np.ndarray  # s since trial start
+    env: np.ndarray  # environment index, -1 in breaks
+    trials: np.ndarray  # (n_trials, 2)
+    epochs: tuple  # (start, stop, name)
+
+
+def _ou(rng, n, tau_s, sd):
+    """Stationary Ornstein-Uhlenbeck samples on the internal grid (AR(1) recursion)."""
+    a = np.exp(-_DT / tau_s)
+    e = rng.standard_normal(n) * sd * np.sqrt(1.0 - a * a)
+    e[0] = rng.standard_normal() * sd
+    return lfilter([1.0], [1.0, -a], e)
+
+
+def _simulate_behaviour(rng, duration_s, environments, box, break_s, trial_range):
+    n_env = len(environments)
+    total = n_env * duration_s + (n_env - 1) * break_s
+    n = int(round(total / _DT)) + 1  # include the end point so tracking covers every epoch
+    t = np.arange(n) * _DT
+
+    # Alternating stop / run bouts (exponential durations with a floor).
+    n_bouts = int(total / 3.0) + 20
+    stop_d = np.maximum(rng.exponential(2.0, n_bouts), 0.3)
+    run_d = np.maximum(rng.exponential(5.0, n_bouts), 0.5)
+    bounds = np.cumsum(np.column_stack([stop_d, run_d]).ravel())
+    bout = np.searchsorted(bounds, t, side="right")
+    running = (bout % 2) == 1
+    run_speed = np.exp(np.log(0.18) + 0.4 * rng.standard_normal(n_bouts * 2 + 1))[bout]
+    raw = running * run_speed * np.exp(_ou(rng, n, 1.0, 0.25))
+    speed = gaussian_filter1d(raw, 0.25 / _DT, mode="nearest")  # finite accelerations
+    speed = np.clip(speed, 0.0, None)
+
+    # Direction of travel: a smooth random turning; folded (mirror) walls keep it in the box.
+    omega = _ou(rng, n, 0.5, 1.5)
+    theta = rng.uniform(0, 2 * np.pi) + np.cumsum(omega) * _DT
+    start = rng.uniform(0.3 * box, 0.7 * box, 2)
+    free = start + np.cumsum(speed[:, None] * np.column_stack([np.cos(theta), np.sin(theta)]) * _DT, axis=0)
+    m = np.mod(free, 2 * box)
+    pos = box - np.abs(m - box)
+    sign = np.where(m < box, 1.0, -1.0)
+    move_dir = np.arctan2(sign[:, 1] * np.sin(theta), sign[:, 0] * np.cos(theta))
+    heading = np.mod(move_dir + _ou(rng, n, 1.5, 0.4), 2 * np.pi)
+    speed = np.hypot(*(np.gradient(pos, _DT, axis=0).T))  # speed of the folded path
+
+    env = np.full(n, -1, dtype=np.int64)
+    epochs = []
+    trials = []
+    for k, name in enumerate(environments):
+        a = k * (duration_s + break_s)
+        b = a + duration_s
+        env[(t >= a) & (t < b)] = k
+        epochs.append((a, b, name))
+        s = a
+        while s < b - 1e-9:
+            d = rng.uniform(*trial_range)
+            e = s + d
+            if b - e < 0.5 * trial_range[0]:
+                e = b  # fold a short remainder into the last trial
+            trials.append((s, min(e, b)))
+            s = min(e, b)
+    trials = np.array(trials)
+    distance = np.full(n, np.nan)
+    elapsed = np.full(n, np.nan)
+    for a, b in trials:
+        i0, i1 = np.searchsorted(t, [a, b])
+        elapsed[i0:i1] = t[i0:i1] - a
+        distance[i0:i1] = np.concatenate([[0.0], np.cumsum(speed[i0 : i1 - 1]) * _DT])
+    return _Behaviour(t, pos, heading, speed, distance, elapsed, env, trials, tuple(epochs))
+
+
+def _assign_types(rng, n_cells):
+    shares = np.array([w for _, w in CELL_TYPES])
+    raw = shares * n_cells
+    counts = np.floor(raw).astype(int)
+    rest = n_cells - counts.sum()
+    counts[np.argsort(-(raw - counts), kind="stable")[:rest]] += 1
+    types = [CELL_TYPES[i][0] for i, c in enumerate(counts) for _ in range(c)]
+    order = rng.permutation(n_cells)
+    return [types[i] for i in order]
+
+
+def _draw_params(rng, box):
+    return {
+        "field_x": rng.uniform(0.15, 0.85) * box,
+        "field_y": rng.uniform(0.15, 0.85) * box,
+        "field_sigma_m": rng.uniform(0.08, 0.12) * box,
+        "field_gain": np.log(rng.uniform(8.0, 12.0)),
+        "pref_heading_rad": rng.uniform(0, 2 * np.pi),
+        "heading_kappa": rng.uniform(0.8, 1.2),
+        "speed_slope": np.log(rng.uniform(3.0, 5.0)) * (1 if rng.random() < 0.75 else -1),
+        "distance_peak_m": rng.uniform(0.4, 2.0),
+        "distance_width_m": rng.uniform(0.2, 0.3),
+        "distance_gain": np.log(rng.uniform(5.0, 8.0)),
+        "time_peak_s": rng.uniform(3.0, 15.0),
+        "time_width_s": rng.uniform(1.5, 2.5),
+        "time_gain": np.log(rng.uniform(5.0, 8.0)),
+    }
+
+
+def _log_gain(variables, p, beh, rows):
+    g = np.zeros(rows.size)
+    if "position" in variables:
+        d2 = (beh.pos[rows, 0] - p["field_x"]) ** 2 + (beh.pos[rows, 1] - p["field_y"]) ** 2
+        g += p["field_gain"] * np.exp(-d2 / (2 * p["field_sigma_m"] ** 2))
+    if "heading" in variables:
+        g += p["heading_kappa"] * np.cos(beh.heading[rows] - p["pref_heading_rad"])
+    if "speed" in variables:
+        g += p["speed_slope"] * np.minimum(beh.speed[rows], 0.4) / 0.4
+    if "distance" in variables:
+        z = (np.nan_to_num(beh.distance[rows], nan=1e3) - p["distance_peak_m"]) / p["distance_width_m"]
+        g += p["distance_gain"] * np.exp(-0.5 * z * z)
+    if "time" in variables:
+        z = (np.nan_to_num(beh.elapsed[rows], nan=1e4) - p["time_peak_s"]) / p["time_width_s"]
+        g += p["time_gain"] * np.exp(-0.5 * z * z)
+    return g
+
+
+def _thin(rng, t_rows, rate):
+    """Spike times of an inhomogeneous Poisson process by thinning (Lewis and Shedler 1979)."""
+    peak = float(rate.max())
+    if peak <= 0:
+        return np.zeros(0)
+    a, b = t_rows[0], t_rows[-1] + _DT
+    n = rng.poisson(peak * (b - a))
+    cand = np.sort(rng.uniform(a, b, n))
+    lam = np.interp(cand, t_rows, rate)
+    keep = cand[rng.random(n) * peak < lam]
+    # Real spike times are stamped on the acquisition clock: quantise to its samples.
+    return np.unique(np.round(keep * SPIKE_SAMPLING_HZ) / SPIKE_SAMPLING_HZ)
+
+
+def simulate_recording(
+    seed: int = 0,
+    n_cells: int = 60,
+    duration_s: float = 600.0,
+    environments: tuple[str, ...] = ("room_a", "room_b"),
+    box_size_m: float = 1.0,
+    tracking_rate_hz: float = 50.0,
+    mean_rate_hz: tuple[float, float] = (1.0, 4.0),
+    trial_duration_s: tuple[float, float] = (20.0, 60.0),
+    break_s: float = 30.0,
+    p_change: float = 0.15,
+    p_silent: float = 0.08,
+    tracking_noise_m: float = 0.001,
+    dropouts: bool = True,
+) -> tuple[Recording, pd.DataFrame]:
+    """Simulate a recording with known ground truth (see the module docstring).
+
+    Parameters
+    ----------
+    seed : int
+        Seed of the random generator; equal seeds give identical output.
+    n_cells : int
+        Number of units.
+    duration_s : float
+        Duration of each environment, seconds.
+    environments : tuple of str
+        Environment names, recorded in this order.
+    box_size_m : float
+        Side of the square box, metres.
+    tracking_rate_hz : float
+        Tracking sample rate, Hz (must divide 100 Hz evenly: 10, 20, 25, 50 or 100).
+    mean_rate_hz : (float, float)
+        Range of the mean firing rates, Hz.
+    trial_duration_s : (float, float)
+        Range of trial durations, seconds.
+    break_s : float
+        Untracked break between environments, seconds.
+    p_change : float
+        Probability that a cell changes type in each later environment.
+    p_silent : float
+        Probability that a cell is silent in each later environment.
+    tracking_noise_m : float
+        Standard deviation of the tracking jitter, metres.
+    dropouts : bool
+        Add tracking dropouts: about one short (0.05-0.3 s) per minute and one long
+        (1.5-3 s) per environment.
+
+    Returns
+    -------
+    recording : encodex.io.Recording
+        Tracking (with compass heading), spikes, trials and epochs.
+    truth : pandas.DataFrame
+        One row per unit and environment: ``unit, environment, variables`` (canonical label,
+        ``"none"`` for untuned or silent cells), ``silent``, ``changed`` (differs from the
+        first environment), ``mean_rate_hz`` (of the generating rate), ``n_spikes`` and the
+        tuning parameters (NaN where unused).
+    """
+    if n_cells < 1:
+        raise SettingsError(f"n_cells must be at least 1, got {n_cells}")
+    if duration_s < 10:
+        raise SettingsError(f"duration_s must be at least 10 s per environment, got {duration_s}")
+    if not environments or len(set(environments)) != len(environments):
+        raise SettingsError("environments must be a non-empty tuple of distinct names")
+    step = int(round(1.0 / (tracking_rate_hz * _DT)))
+    if step < 1 or abs(step * tracking_rate_hz * _DT - 1.0) > 1e-9:
+        raise SettingsError(
+            f"tracking_rate_hz {tracking_rate_hz} must divide 100 Hz evenly; use 25, 50 or 100"
+        )
+    rng = np.random.default_rng(seed)
+    beh = _simulate_behaviour(
+        rng, duration_s, tuple(environments), box_size_m, break_s, trial_duration_s
+    )
+    types = _assign_types(rng, n_cells)
+    pool = [v for v, _ in CELL_TYPES]
+    unit_ids = tuple(f"c{i:03d}" for i in range(n_cells))
+    rows_by_env = [np.flatnonzero(beh.env == k) for k in range(len(environments))]
+    trains = [[] for _ in range(n_cells)]
+    records = []
+    for i, uid in enumerate(unit_ids):
+        p = _draw_params(rng, box_size_m)
+        rate_target = rng.uniform(*mean_rate_hz)
+        variables = types[i]
+        first = variables
+        for k, name in enumerate(environments):
+            silent = False
+            if k > 0:
+                u = rng.random()
+                if u < p_silent:
+                    silent = True
+                elif u < p_silent + p_change:
+                    others = [v for v in pool if v != first]
+                    variables = others[rng.integers(len(others))]
+                else:
+                    variables = first
+                # place fields remap between environments; other tunings keep their shape
+                p = dict(p, field_x=rng.uniform(0.15, 0.85) * box_size_m,
+                         field_y=rng.uniform(0.15, 0.85) * box_size_m)
+            rows = rows_by_env[k]
+            if silent:
+                spikes = np.zeros(0)
+                mean_rate = 0.0
+            else:
+                g = np.exp(_log_gain(variables, p, beh, rows))
+                rate = rate_target * g / g.mean()
+                spikes = _thin(rng, beh.t[rows], rate)
+                mean_rate = rate_target
+            trains[i].append(spikes)
+            rec = {
+                "unit": uid,
+                "environment": name,
+                "variables": label(() if silent else variables),
+                "silent": silent,
+                "changed": bool(silent or set(variables) != set(first)),
+                "mean_rate_hz": mean_rate,
+                "n_spikes": int(spikes.size),
+            }
+            for key, val in p.items():
+                rec[key] = np.nan
+            used = set(() if silent else variables)
+            if "position" in used:
+                rec.update(field_x=p["field_x"], field_y=p["field_y"],
+                           field_sigma_m=p["field_sigma_m"], field_gain=p["field_gain"])
+            if "heading" in used:
+                rec.update(pref_heading_rad=p["pref_heading_rad"], heading_kappa=p["heading_kappa"])
+            if "speed" in used:
+                rec.update(speed_slope=p["speed_slope"])
+            if "distance" in used:
+                rec.update(distance_peak_m=p["distance_peak_m"],
+                           distance_width_m=p["distance_width_m"], distance_gain=p["distance_gain"])
+            if "time" in used:
+                rec.update(time_peak_s=p["time_peak_s"], time_width_s=p["time_width_s"],
+                           time_gain=p["time_gain"])
+            records.append(rec)
+
+    # Tracking: subsample, add jitter, lose samples in breaks and dropouts.
+    idx = np.arange(0, beh.t.size, step)
+    ts = beh.t[idx]
+    pos = beh.pos[idx] + tracking_noise_m * rng.standard_normal((idx.size, 2))
+    pos = np.clip(pos, 0.0, box_size_m)
+    heading = beh.heading[idx].copy()
+    lost = beh.env[idx] < 0
+    if dropouts:
+        for a, b, _ in beh.epochs:
+            n_short = rng.poisson((b - a) / 60.0)
+            starts = rng.uniform(a + 1, b - 1, n_short)
+            lens = rng.uniform(0.05, 0.3, n_short)
+            long_start = rng.uniform(a + 0.2 * (b - a), a + 0.8 * (b - a))
+            starts = np.append(starts, long_start)
+            lens = np.append(lens, rng.uniform(1.5, 3.0))
+            for s, d in zip(starts, lens):
+                lost |= (ts >= s) & (ts < s + d)
+    pos[lost] = np.nan
+    heading[lost] = np.nan
+    recording = Recording(
+        timestamps=ts,
+        position=pos,
+        unit_ids=unit_ids,
+        spike_times=tuple(np.concatenate(tr) for tr in trains),
+        heading=heading,
+        trials=beh.trials,
+        epochs=beh.epochs,
+        provenance={"source": f"encodex.simulate seed={seed}"},
+    )
+    truth = pd.DataFrame.from_records(records)
+    return recording, truth
+
+
+def simulate_to_files(out_dir, seed: int = 0, stem: str = "simulated_session", **kw) -> dict[str, Path]:
+    """Simulate a recording and write it as NWB, npz bundle and ground-truth CSV.
+
+    Parameters
+    ----------
+    out_dir : str or Path
+        Folder to write into (created when missing).
+    seed : int
+    stem : str
+        File name stem: ``<stem>.nwb``, ``<stem>.npz``, ``<stem>_truth.csv``.
+    **kw
+        Options of :func:`simulate_recording`.
+
+    Returns
+    -------
+    dict
+        Paths under keys ``"nwb"``, ``"npz"``, ``"truth"``.
+    """
+    from encodex.io import write_bundle, write_nwb
+
+    out = Path(out_dir)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(f"cannot create {out}: {exc.strerror}; choose a writable folder") from None
+    recording, truth = simulate_recording(seed=seed, **kw)
+    paths = {
+        "nwb": write_nwb(
+            recording,
+            out / f"{stem}.nwb",
+            session_description=(
+                f"Simulated open-box foraging session (encodex.simulate, seed {seed})"
+            ),
+            identifier=f"encodex-sim-{seed}",
+            spike_time_resolution_s=1.0 / SPIKE_SAMPLING_HZ,
+        ),
+        "npz": write_bundle(recording, out / f"{stem}.npz"),
+        "truth": out / f"{stem}_truth.csv",
+    }
+    truth.to_csv(paths["truth"], index=False)
+    return paths
