@@ -1,0 +1,318 @@
+"""Tables for papers: how many cells carry each label and each variable, with intervals.
+
+Counts and percentages are over the *classified* cells of an environment (status ``ok``);
+cells excluded from classification (e.g. too few spikes) are listed separately by reason.
+Intervals are Wilson score intervals computed by statsmodels.
+
+References
+----------
+Wilson, E. B. (1927). Probable inference, the law of succession, and statistical inference.
+J. Am. Stat. Assoc. 22:209-212.
+Newcombe, R. G. (1998). Two-sided confidence intervals for the single proportion: comparison
+of seven methods. Stat. Med. 17:857-872.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from statsmodels.stats.proportion import proportion_confint
+
+from encodex.errors import OutputError, SettingsError
+from encodex.report.load import RunFolder, carried, classified, variables_in
+from encodex.report.wording import label_caveat
+from encodex.variables import VARIABLES, NONE_LABEL
+
+__all__ = [
+    "wilson_interval",
+    "label_counts",
+    "variable_counts",
+    "excluded_cells",
+    "PaperTables",
+    "make_tables",
+    "write_tables",
+    "to_markdown",
+    "to_latex",
+]
+
+
+def wilson_interval(k: int, n: int, level: float = 0.95) -> tuple[float, float]:
+    """Wilson score interval for a proportion ``k / n``.
+
+    Parameters
+    ----------
+    k, n : int
+        Successes and trials (``0 <= k <= n``).
+    level : float
+        Confidence level (0.95 for a 95% interval).
+
+    Returns
+    -------
+    (low, high) : tuple of float
+        Interval on the proportion scale [0, 1]; (nan, nan) when ``n == 0``.
+
+    References
+    ----------
+    Wilson (1927), JASA 22:209; Newcombe (1998), Stat. Med. 17:857 (method 3).
+    Computed by ``statsmodels.stats.proportion.proportion_confint(method="wilson")``.
+    """
+    if not 0 < level < 1:
+        raise SettingsError(f"level must lie in (0, 1), e.g. 0.95; got {level}")
+    if n < 0 or k < 0 or k > n:
+        raise SettingsError(f"need 0 <= k <= n for a proportion; got k={k}, n={n}")
+    if n == 0:
+        return (float("nan"), float("nan"))
+    lo, hi = proportion_confint(int(k), int(n), alpha=1 - level, method="wilson")
+    return (float(lo), float(hi))
+
+
+def _label_sort_key(lab: str) -> tuple:
+    order = {v: i for i, v in enumerate(VARIABLES)}
+    vs = carried(lab)
+    return (len(vs), tuple(order.get(v, len(order)) for v in vs), lab)
+
+
+def _gain_summary(values: pd.Series) -> tuple[float, float, float]:
+    v = pd.to_numeric(values, errors="coerce").dropna().to_numpy(float)
+    if v.size == 0:
+        return (np.nan, np.nan, np.nan)
+    q1, med, q3 = np.percentile(v, [25, 50, 75])
+    return (float(med), float(q1), float(q3))
+
+
+def _count_rows(env: str, key: str, name: str, k: int, n: int, gains, level) -> dict:
+    lo, hi = wilson_interval(k, n, level)
+    med, q1, q3 = gains
+    return {
+        "environment": env, key: name, "n_cells": k, "n_classified": n,
+        "percent": 100.0 * k / n if n else np.nan,
+        "ci_low_percent": 100.0 * lo, "ci_high_percent": 100.0 * hi,
+        "gain_median_bits_per_spike": med, "gain_q1_bits_per_spike": q1,
+        "gain_q3_bits_per_spike": q3,
+    }
+
+
+def label_counts(cells: pd.DataFrame, level: float = 0.95) -> pd.DataFrame:
+    """Cells per label and environment with Wilson intervals and held-out gain quartiles.
+
+    Parameters
+    ----------
+    cells : DataFrame
+        ``cells.csv`` of a fit run.
+    level : float
+        Confidence level of the intervals.
+
+    Returns
+    -------
+    DataFrame
+        Columns ``environment, label, n_cells, n_classified, percent, ci_low_percent,
+        ci_high_percent, gain_median_bits_per_spike, gain_q1_bits_per_spike,
+        gain_q3_bits_per_spike``. Gains are the held-out gains (bits per spike) of the chosen
+        models of the cells with that label.
+    """
+    rows = []
+    for env in pd.unique(cells["environment"]):
+        ok = classified(cells[cells["environment"] == env])
+        n = len(ok)
+        for lab in sorted(set(ok["variables"]) | {NONE_LABEL}, key=_label_sort_key):
+            sel = ok[ok["variables"] == lab]
+            rows.append(_count_rows(env, "label", lab, len(sel), n,
+                                    _gain_summary(sel["bits_per_spike"]), level))
+    return pd.DataFrame(rows, columns=_columns("label"))
+
+
+def variable_counts(cells: pd.DataFrame, level: float = 0.95) -> pd.DataFrame:
+    """Cells carrying each variable (alone or with others), per environment.
+
+    A cell labelled ``position+speed`` counts once for position and once for speed, so the
+    percentages of one environment may add up to more than 100.
+
+    Returns
+    -------
+    DataFrame
+        Same columns as :func:`label_counts` with ``variable`` instead of ``label``; the gain
+        is the cell's ``gain_<variable>`` column (bits per spike) among the cells carrying it.
+    """
+    rows = []
+    names = variables_in(cells)
+    for env in pd.unique(cells["environment"]):
+        ok = classified(cells[cells["environment"] == env])
+        n = len(ok)
+        sets = [set(carried(lab)) for lab in ok["variables"]]
+        for v in names:
+            has = np.array([v in s for s in sets], dtype=bool)
+            if v not in VARIABLES and not has.any():
+                continue
+            col = f"gain_{v}"
+            gains = _gain_summary(ok.loc[has, col]) if col in ok else (np.nan,) * 3
+            rows.append(_count_rows(env, "variable", v, int(has.sum()), n, gains, level))
+    return pd.DataFrame(rows, columns=_columns("variable"))
+
+
+def _columns(key: str) -> list[str]:
+    return ["environment", key, "n_cells", "n_classified", "percent", "ci_low_percent",
+            "ci_high_percent", "gain_median_bits_per_spike", "gain_q1_bits_per_spike",
+            "gain_q3_bits_per_spike"]
+
+
+def excluded_cells(cells: pd.DataFrame) -> pd.DataFrame:
+    """Cells left out of the counts, grouped by environment, status and reason.
+
+    Returns
+    -------
+    DataFrame
+        Columns ``environment, status, reason, n_cells, units`` (units joined by spaces).
+    """
+    out = cells[cells["status"] != "ok"]
+    rows = []
+    for (env, status, reason), g in out.groupby(["environment", "status", "reason"], sort=False):
+        rows.append({"environment": env, "status": status, "reason": reason,
+                     "n_cells": len(g), "units": " ".join(map(str, g["unit"]))})
+    return pd.DataFrame(rows, columns=["environment", "status", "reason", "n_cells", "units"])
+
+
+@dataclass(frozen=True)
+class PaperTables:
+    """The three tables of a run and the significance level their labels rest on."""
+
+    labels: pd.DataFrame
+    variables: pd.DataFrame
+    excluded: pd.DataFrame
+    alpha: float
+    level: float = 0.95
+
+    @property
+    def caveat(self) -> str:
+        return label_caveat(self.alpha)
+
+
+def make_tables(run: RunFolder, level: float = 0.95) -> PaperTables:
+    """Build the label, variable and exclusion tables of a fit run."""
+    return PaperTables(
+        labels=label_counts(run.cells, level),
+        variables=variable_counts(run.cells, level),
+        excluded=excluded_cells(run.cells),
+        alpha=run.alpha,
+        level=level,
+    )
+
+
+# ---------------------------------------------------------------- formatting for manuscripts
+
+def _fmt_num(x, digits=2) -> str:
+    return "" if x is None or (isinstance(x, float) and not np.isfinite(x)) else f"{x:.{digits}f}"
+
+
+def display_frame(df: pd.DataFrame, level: float = 0.95) -> pd.DataFrame:
+    """Human-readable version of a count table (percent with interval, gain quartiles)."""
+    key = "label" if "label" in df.columns else "variable"
+    pct = int(round(level * 100))
+    rows = []
+    for r in df.itertuples(index=False):
+        d = r._asdict()
+        rows.append({
+            "Environment": d["environment"],
+            key.capitalize(): d[key],
+            "Cells": f"{d['n_cells']} / {d['n_classified']}",
+            "Percent": _fmt_num(d["percent"], 1),
+            f"{pct}% CI (Wilson)": (
+                f"[{_fmt_num(d['ci_low_percent'], 1)}, {_fmt_num(d['ci_high_percent'], 1)}]"
+                if np.isfinite(d["ci_low_percent"]) else ""),
+            "Gain, bits/spike: median [Q1, Q3]": (
+                f"{_fmt_num(d['gain_median_bits_per_spike'], 3)} "
+                f"[{_fmt_num(d['gain_q1_bits_per_spike'], 3)}, "
+                f"{_fmt_num(d['gain_q3_bits_per_spike'], 3)}]"
+                if np.isfinite(d["gain_median_bits_per_spike"]) else "-"),
+        })
+    return pd.DataFrame(rows)
+
+
+def to_markdown(df: pd.DataFrame, caption: str = "") -> str:
+    """A GitHub-flavoured Markdown table (pipes escaped), with the caption as a paragraph."""
+    def cell(x) -> str:
+        return str(x).replace("|", "\\|").replace("\n", " ")
+
+    head = "| " + " | ".join(cell(c) for c in df.columns) + " |"
+    align = "| " + " | ".join(
+        "---:" if pd.api.types.is_numeric_dtype(df[c]) else ":---" for c in df.columns) + " |"
+    body = ["| " + " | ".join(cell(x) for x in row) + " |" for row in df.itertuples(index=False)]
+    text = "\n".join([head, align, *body]) + "\n"
+    return (caption.strip() + "\n\n" + text) if caption else text
+
+
+_LATEX_SPECIAL = {"\\": r"\textbackslash{}", "&": r"\&", "%": r"\%", "$": r"\$", "#": r"\#",
+                  "_": r"\_", "{": r"\{", "}": r"\}", "~": r"\textasciitilde{}",
+                  "^": r"\textasciicircum{}"}
+
+
+def latex_escape(text: str) -> str:
+    """Escape LaTeX special characters in plain text."""
+    return "".join(_LATEX_SPECIAL.get(ch, ch) for ch in str(text))
+
+
+def to_latex(df: pd.DataFrame, caption: str = "", label: str = "") -> str:
+    """A LaTeX ``table`` with a booktabs ``tabular`` (needs ``\\usepackage{booktabs}``)."""
+    spec = "".join("r" if pd.api.types.is_numeric_dtype(df[c]) else "l" for c in df.columns)
+    lines = [r"\begin{table}[htbp]", r"\centering"]
+    if caption:
+        lines.append(r"\caption{" + latex_escape(caption) + "}")
+    if label:
+        lines.append(r"\label{" + label + "}")
+    lines += [r"\begin{tabular}{" + spec + "}", r"\toprule",
+              " & ".join(latex_escape(c) for c in df.columns) + r" \\", r"\midrule"]
+    for row in df.itertuples(index=False):
+        lines.append(" & ".join(latex_escape(x) for x in row) + r" \\")
+    lines += [r"\bottomrule", r"\end{tabular}", r"\end{table}"]
+    return "\n".join(lines) + "\n"
+
+
+def _captions(t: PaperTables) -> dict[str, str]:
+    pct = int(round(t.level * 100))
+    return {
+        "labels": (f"Cells per label (set of carried variables) per environment, among "
+                   f"classified cells, with {pct}% Wilson score intervals and the held-out "
+                   f"gain of the chosen model. {t.caveat}"),
+        "variables": (f"Cells carrying each variable (alone or with others; a cell can carry "
+                      f"several) per environment, with {pct}% Wilson score intervals and the "
+                      f"held-out gain attributed to that variable. {t.caveat}"),
+        "excluded": "Cells not classified, by environment and reason; they are in no count.",
+    }
+
+
+def write_tables(tables: PaperTables, out_dir: str | Path) -> list[Path]:
+    """Write each table as CSV (raw numbers), Markdown and LaTeX (booktabs).
+
+    Files: ``table_labels.{csv,md,tex}``, ``table_variables.*``, ``table_excluded.*``.
+
+    Returns
+    -------
+    list of Path
+        The files written.
+    """
+    out = Path(out_dir)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(f"cannot create {out} ({exc.strerror}); choose a writable folder")
+    caps = _captions(tables)
+    written = []
+    for name, raw in (("labels", tables.labels), ("variables", tables.variables),
+                      ("excluded", tables.excluded)):
+        shown = raw if name == "excluded" else display_frame(raw, tables.level)
+        shown = shown.rename(columns=lambda c: c.replace("_", " ")) if name == "excluded" else shown
+        files = {
+            f"table_{name}.csv": raw.to_csv(index=False),
+            f"table_{name}.md": to_markdown(shown, caps[name]),
+            f"table_{name}.tex": to_latex(shown, caps[name], f"tab:encodex-{name}"),
+        }
+        for fname, text in files.items():
+            p = out / fname
+            try:
+                p.write_text(text)
+            except OSError as exc:
+                raise OutputError(f"cannot write {p} ({exc.strerror}); check the folder")
+            written.append(p)
+    return written
