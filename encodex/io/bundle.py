@@ -135,6 +135,8 @@ def read_bundle(path, drop_empty_units: bool = False) -> Recording:
             f"{path.name}: spike_index must hold {len(ids)} non-decreasing end offsets "
             f"ending at {flat.size}; rebuild it as numpy.cumsum of the per-unit counts"
         )
+    if len(set(ids)) != len(ids):
+        raise FileFormatError(f"{path.name}: unit_ids are repeated; give each unit a unique id")
     trains = np.split(flat, ends[:-1]) if ends.size else []
     trials = None
     if "trial_start" in data or "trial_stop" in data:

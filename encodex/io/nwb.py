@@ -374,8 +374,15 @@ def read_nwb(path, drop_empty_units: bool = False, **object_paths) -> Recording:
             ok = np.isfinite(heading)
             if ok.sum() < 2:
                 raise InputError("heading series has fewer than 2 finite samples; drop it")
-            un = np.interp(ts, h_ts[ok], np.unwrap(heading[ok]), left=np.nan, right=np.nan)
-            heading = un
+            th = h_ts[ok]
+            un = np.interp(ts, th, np.unwrap(heading[ok]), left=np.nan, right=np.nan)
+            # Do not bridge heading gaps wider than a few heading samples: leave them NaN so
+            # that build_session applies its own gap rule.
+            j = np.clip(np.searchsorted(th, ts), 1, th.size - 1)
+            near = np.minimum(np.abs(ts - th[j - 1]), np.abs(th[j] - ts))
+            step = float(np.median(np.diff(h_ts)))
+            un[near > 1.5 * step] = np.nan
+            heading = np.mod(un, 2.0 * np.pi)
             provenance["heading_note"] = "resampled to position timestamps on the circle"
         table = _find_units(nwbfile, object_paths.get("units"), provenance)
         names, trains = _read_spikes(table)
