@@ -86,30 +86,6 @@ def _simulate_behaviour(rng, duration_s, environments, box, break_s, trial_range
     n = int(round(total / _DT)) + 1  # include the end point so tracking covers every epoch
     t = np.arange(n) * _DT
 
-    # Alternating stop / run bouts (exponential durations with a floor).
-    n_bouts = int(total / 3.0) + 20
-    stop_d = np.maximum(rng.exponential(2.0, n_bouts), 0.3)
-    run_d = np.maximum(rng.exponential(5.0, n_bouts), 0.5)
-    bounds = np.cumsum(np.column_stack([stop_d, run_d]).ravel())
-    bout = np.searchsorted(bounds, t, side="right")
-    running = (bout % 2) == 1
-    run_speed = np.exp(np.log(0.18) + 0.4 * rng.standard_normal(n_bouts * 2 + 1))[bout]
-    raw = running * run_speed * np.exp(_ou(rng, n, 1.0, 0.25))
-    speed = gaussian_filter1d(raw, 0.25 / _DT, mode="nearest")  # finite accelerations
-    speed = np.clip(speed, 0.0, None)
-
-    # Direction of travel: a smooth random turning; folded (mirror) walls keep it in the box.
-    omega = _ou(rng, n, 0.5, 1.5)
-    theta = rng.uniform(0, 2 * np.pi) + np.cumsum(omega) * _DT
-    start = rng.uniform(0.3 * box, 0.7 * box, 2)
-    free = start + np.cumsum(speed[:, None] * np.column_stack([np.cos(theta), np.sin(theta)]) * _DT, axis=0)
-    m = np.mod(free, 2 * box)
-    pos = box - np.abs(m - box)
-    sign = np.where(m < box, 1.0, -1.0)
-    move_dir = np.arctan2(sign[:, 1] * np.sin(theta), sign[:, 0] * np.cos(theta))
-    heading = np.mod(move_dir + _ou(rng, n, 1.5, 0.4), 2 * np.pi)
-    speed = np.hypot(*(np.gradient(pos, _DT, axis=0).T))  # speed of the folded path
-
     env = np.full(n, -1, dtype=np.int64)
     epochs = []
     trials = []
@@ -127,6 +103,35 @@ def _simulate_behaviour(rng, duration_s, environments, box, break_s, trial_range
             trials.append((s, min(e, b)))
             s = min(e, b)
     trials = np.array(trials)
+    # Alternating stop / run bouts (exponential durations with a floor).
+    n_bouts = int(total / 3.0) + 20
+    stop_d = np.maximum(rng.exponential(2.0, n_bouts), 0.3)
+    run_d = np.maximum(rng.exponential(5.0, n_bouts), 0.5)
+    bounds = np.cumsum(np.column_stack([stop_d, run_d]).ravel())
+    bout = np.searchsorted(bounds, t, side="right")
+    running = (bout % 2) == 1
+    run_speed = np.exp(np.log(0.18) + 0.4 * rng.standard_normal(n_bouts * 2 + 1))[bout]
+    # Vigour differs between trials (motivation, satiety): a per-trial speed factor makes
+    # distance and time since trial start decouple across trials, not only within them.
+    vigour = np.ones(n)
+    for a, b in trials:
+        vigour[(t >= a) & (t < b)] = np.exp(0.35 * rng.standard_normal())
+    raw = running * run_speed * vigour * np.exp(_ou(rng, n, 1.0, 0.25))
+    speed = gaussian_filter1d(raw, 0.25 / _DT, mode="nearest")  # finite accelerations
+    speed = np.clip(speed, 0.0, None)
+
+    # Direction of travel: a smooth random turning; folded (mirror) walls keep it in the box.
+    omega = _ou(rng, n, 0.5, 1.5)
+    theta = rng.uniform(0, 2 * np.pi) + np.cumsum(omega) * _DT
+    start = rng.uniform(0.3 * box, 0.7 * box, 2)
+    free = start + np.cumsum(speed[:, None] * np.column_stack([np.cos(theta), np.sin(theta)]) * _DT, axis=0)
+    m = np.mod(free, 2 * box)
+    pos = box - np.abs(m - box)
+    sign = np.where(m < box, 1.0, -1.0)
+    move_dir = np.arctan2(sign[:, 1] * np.sin(theta), sign[:, 0] * np.cos(theta))
+    heading = np.mod(move_dir + _ou(rng, n, 1.5, 0.4), 2 * np.pi)
+    speed = np.hypot(*(np.gradient(pos, _DT, axis=0).T))  # speed of the folded path
+
     distance = np.full(n, np.nan)
     elapsed = np.full(n, np.nan)
     for a, b in trials:
