@@ -309,21 +309,26 @@ def _trial_clock(centres, trial, trials, speed, bin_size):
         return elapsed, dist, after_gap
     inside = trial >= 0
     elapsed[inside] = centres[inside] - trials[trial[inside], 0]
-    for k in np.unique(trial[inside]):
-        rows = np.flatnonzero(trial == k)  # contiguous: trials are disjoint intervals
-        s = speed[rows]
-        d = np.empty(rows.size)
-        d[0] = s[0] * elapsed[rows[0]]
-        if rows.size > 1:
+    # Trials are disjoint intervals, so each trial's bins form one contiguous run.
+    change = np.flatnonzero(np.diff(trial)) + 1
+    starts = np.concatenate([[0], change])
+    stops = np.concatenate([change, [n]])
+    for a, b in zip(starts, stops):
+        if trial[a] < 0:
+            continue
+        s = speed[a:b]
+        d = np.empty(b - a)
+        d[0] = s[0] * elapsed[a]
+        if b - a > 1:
             d[1:] = d[0] + np.cumsum(0.5 * (s[1:] + s[:-1]) * bin_size)
         # NaN speed propagates through the cumulative sum: after the first unknown bin the
         # path length is unknown for the rest of the trial.
         bad = ~np.isfinite(d)
         if bad.any():
             first = int(np.argmax(bad))
-            after_gap[rows[first:]] = True
+            after_gap[a + first : b] = True
             d[first:] = np.nan
-        dist[rows] = d
+        dist[a:b] = d
     return elapsed, dist, after_gap
 
 

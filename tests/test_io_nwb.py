@@ -191,3 +191,28 @@ def test_written_file_passes_nwbinspector(tmp_path):
     assert critical == []
     # only metadata suggestions remain (no experimenter or institution in simulated files)
     assert {m.importance for m in found} <= {Importance.BEST_PRACTICE_SUGGESTION}
+
+
+def test_bare_spatial_series_in_acquisition(tmp_path):
+    f = _nwbfile()
+    f.add_acquisition(_series("head_xy", XY * 1000, "millimeters"))
+    _units(f, [[1.0]])
+    rec = read_nwb(_write(tmp_path / "bare.nwb", f))
+    np.testing.assert_allclose(rec.position, XY)
+    assert rec.provenance["position"] == "acquisition/head_xy"
+    assert "bare" in rec.provenance["position_note"]
+
+
+def test_heading_on_its_own_clock_is_resampled_on_the_circle(tmp_path):
+    f = _nwbfile()
+    beh = f.create_processing_module("behavior", "b")
+    beh.add(Position(spatial_series=_series("p", XY, "meters")))
+    th = np.arange(0, 10.0, 0.1)  # 10 Hz compass
+    hd = np.mod(0.8 * th, 2 * np.pi)  # wraps through 0 at 7.85 s
+    beh.add(CompassDirection(spatial_series=_series("h", hd, "radians", timestamps=th)))
+    _units(f, [[1.0]])
+    rec = read_nwb(_write(tmp_path / "clock.nwb", f))
+    ok = np.isfinite(rec.heading)
+    assert ok[T <= 9.9].all() and not ok[T > 9.9].any()
+    err = np.angle(np.exp(1j * (rec.heading[ok] - 0.8 * T[ok])))
+    assert np.max(np.abs(err)) < 1e-9

@@ -214,3 +214,17 @@ def test_unit_lookup_errors():
         s.unit_counts("zz")
     with pytest.raises(SettingsError):
         s.unit_counts(3)
+
+
+def test_missing_timestamps_count_as_gaps_and_summary_is_json():
+    import json
+
+    t, pos = _line(duration=20.0)
+    keep = ~((t > 5.0) & (t < 8.0)) & ~((t > 12.0) & (t < 12.2))  # samples simply absent
+    rec = make_recording(t[keep], pos[keep], {"a": [1.0, 25.0]}, heading=np.zeros(keep.sum()))
+    s = build_session(rec)
+    assert s.summary["tracking_gaps"] == {"interpolated": 1, "masked": 1}
+    assert not s.valid[(s.time > 5.0) & (s.time < 8.0)].any()
+    assert s.valid[(s.time > 12.0) & (s.time < 12.2)].all()
+    text = json.dumps(s.summary)
+    assert json.loads(text)["dropped_spikes"]["after_end"] == 1

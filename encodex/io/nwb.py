@@ -156,6 +156,23 @@ def _find_container(nwbfile, kind: str):
     return None, None, searched
 
 
+def _find_bare_xy(nwbfile):
+    """First SpatialSeries with at least two columns lying directly in a module or acquisition."""
+    modules = list(nwbfile.processing.keys())
+    order = (["behavior"] if "behavior" in modules else []) + sorted(
+        m for m in modules if m != "behavior"
+    )
+    places = [(f"processing/{m}", nwbfile.processing[m].data_interfaces) for m in order]
+    places.append(("acquisition", nwbfile.acquisition))
+    for where, objs in places:
+        for name in sorted(objs.keys()):
+            obj = objs[name]
+            if type(obj).__name__ == "SpatialSeries" and len(obj.data.shape) == 2 \
+                    and obj.data.shape[1] >= 2:
+                return f"{where}/{name}", obj
+    return None, None
+
+
 def _series_times(series, what: str) -> np.ndarray:
     n = series.data.shape[0]
     if series.timestamps is not None:
@@ -191,9 +208,13 @@ def _read_position(nwbfile, path, provenance):
     else:
         where, obj, searched = _find_container(nwbfile, "Position")
         if obj is None:
+            where, obj = _find_bare_xy(nwbfile)
+            if obj is not None:
+                provenance["position_note"] = "no Position container: used a bare SpatialSeries"
+        if obj is None:
             raise FileFormatError(
-                "no position found: looked for a SpatialSeries in a Position container in "
-                f"{', '.join(searched)}; pass position='path/to/series' to name it"
+                "no position found: looked for a Position container, then any (n, 2) "
+                f"SpatialSeries, in {', '.join(searched)}; pass position='path/to/series'"
             )
     if not hasattr(obj, "data"):
         raise FileFormatError(f"{where} is not a time series; name a SpatialSeries")
