@@ -65,10 +65,10 @@ def save_figure(fig, stem: str | Path, formats: tuple[str, ...] = ("png", "pdf")
     return out
 
 
-def figure_png_base64(fig, dpi: int = 110) -> str:
+def figure_png_base64(fig, dpi: int = 90) -> str:
     """PNG bytes of a figure, base64-encoded for embedding in HTML."""
     buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=dpi, bbox_inches="tight")
+    fig.savefig(buf, format="png", dpi=dpi)
     return base64.b64encode(buf.getvalue()).decode("ascii")
 
 
@@ -152,8 +152,7 @@ def _plot_ratemap(ax, fig, arrays: dict, min_occupancy_s: float = 0.1) -> float:
     rates = rate_map(occ, spk, min_occupancy_s=min_occupancy_s)
     info = skaggs_information(occ, spk, min_occupancy_s=min_occupancy_s) \
         if np.isfinite(rates).any() else float("nan")
-    cmap = plt.get_cmap("viridis").copy()
-    cmap.set_bad("white")
+    cmap = plt.get_cmap("viridis").with_extremes(bad="white")
     im = ax.imshow(np.ma.masked_invalid(rates), origin="lower", cmap=cmap,
                    extent=(ex[0], ex[-1], ey[0], ey[-1]), aspect="equal",
                    interpolation="nearest")

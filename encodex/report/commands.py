@@ -1,0 +1,192 @@
+"""The ``table``, ``compare``, ``report`` and ``demo`` subcommands of the command line.
+
+``encodex/cli.py`` calls :func:`register_report_commands` with its argparse subparsers. Every
+subcommand sets ``func`` to a handler ``handler(args) -> int`` (exit code); errors are raised
+as :class:`encodex.errors.EncodexError`, which the command line turns into a one-line message
+and exit code 2.
+"""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+__all__ = ["register_report_commands", "run_table", "run_compare", "run_report", "run_demo"]
+
+
+def _out(msg: str = "") -> None:
+    print(msg, file=sys.stdout, flush=True)
+
+
+def run_table(args) -> int:
+    """``encodex table DIR``: write label/variable/exclusion tables and the methods paragraph."""
+    import pandas as pd
+
+    from encodex.errors import OutputError
+    from encodex.report.load import load_run
+    from encodex.report.methods import methods_markdown, methods_paragraph
+    from encodex.report.tables import display_frame, make_tables, to_markdown, write_tables
+
+    run = load_run(args.dir)
+    tables = make_tables(run, level=args.level)
+    out = Path(args.out) if args.out else run.path / "tables"
+    written = write_tables(tables, out)
+    try:
+        (out / "methods.md").write_text(methods_markdown(run.run))
+        (out / "methods.txt").write_text(methods_paragraph(run.run))
+    except OSError as exc:
+        raise OutputError(f"cannot write the methods paragraph in {out} ({exc.strerror})")
+    with pd.option_context("display.width", 200):
+        _out(to_markdown(display_frame(tables.variables, tables.level)))
+    _out(tables.caveat)
+    _out(f"\nwrote {len(written) + 2} files in {out} (CSV, Markdown, LaTeX tables; methods.md)")
+    return 0
+
+
+def run_compare(args) -> int:
+    """``encodex compare DIR --between A B``: paired (or unpaired) comparison of labels."""
+    import matplotlib.pyplot as plt
+
+    from encodex.report.environments import compare_environments, summary_frame, write_comparison
+    from encodex.report.figures import comparison_figure, save_figure
+    from encodex.report.load import load_run
+    from encodex.report.tables import to_markdown
+
+    run = load_run(args.dir)
+    paired = False if args.unpaired else None
+    cmp = compare_environments(run, args.between[0], args.between[1], paired=paired,
+                               alpha=args.alpha)
+    out = Path(args.out) if args.out else run.path / "compare"
+    written = write_comparison(cmp, out)
+    fig = comparison_figure(cmp)
+    written += save_figure(fig, out / f"compare_{cmp.a}_vs_{cmp.b}")
+    plt.close(fig)
+    for note in cmp.notes:
+        _out(note)
+    if cmp.paired:
+        _out(f"\nLabel transitions (rows {cmp.a}, columns {cmp.b}):")
+        _out(cmp.transitions.to_string())
+    _out("")
+    _out(to_markdown(summary_frame(cmp)))
+    g = cmp.gains.iloc[0]
+    _out(f"Held-out gains: {g['test']}, median {cmp.a} {g['median_a_bits_per_spike']:.3f}, "
+         f"{cmp.b} {g['median_b_bits_per_spike']:.3f} bits/spike, p = {g['p_value']:.3g} "
+         f"(BH {g['p_adjusted']:.3g})")
+    if not cmp.activity.empty:
+        _out(f"{len(cmp.activity)} cell(s) active in one environment and silent in the other.")
+    _out(cmp.caveat)
+    _out(f"\nwrote {len(written)} files in {out}")
+    return 0
+
+
+def run_report(args) -> int:
+    """``encodex report DIR``: one self-contained HTML file, plus PNG/PDF population figures."""
+    import matplotlib.pyplot as plt
+
+    from encodex.report.environments import compare_environments
+    from encodex.report.figures import (
+        cell_figure,
+        comparison_figure,
+        population_figure,
+        save_figure,
+    )
+    from encodex.report.html import build_report
+    from encodex.report.load import load_run
+
+    run = load_run(args.dir)
+    path = build_report(args.dir, out=args.out, between=args.between,
+                        max_cells=args.max_cells)
+    figdir = path.parent / "figures"
+    fig = population_figure(run.cells)
+    save_figure(fig, figdir / "population")
+    plt.close(fig)
+    envs = run.environments
+    if args.between:
+        pairs = [tuple(args.between)]
+    else:
+        pairs = [(envs[i], envs[j]) for i in range(len(envs)) for j in range(i + 1, len(envs))]
+    for a, b in pairs[:3]:
+        fig = comparison_figure(compare_environments(run, a, b))
+        save_figure(fig, figdir / f"compare_{a}_vs_{b}")
+        plt.close(fig)
+    for unit, env in args.cell or []:
+        fig = cell_figure(run, unit, env)
+        save_figure(fig, figdir / f"cell_{env}_{unit}")
+        plt.close(fig)
+    _out(f"figures (PNG and PDF) in {figdir}")
+    _out(f"report: {path.resolve()}")
+    return 0
+
+
+def run_demo(args) -> int:
+    """``encodex demo --out DIR``: simulate -> NWB -> fit -> table -> compare -> report."""
+    from encodex.report.demo import demo
+
+    result = demo(args.out, n_cells=args.cells, duration_s=args.duration, jobs=args.jobs,
+                  seed=args.seed, echo=_out)
+    _out(f"\nreport: {result['report'].resolve()}")
+    return 0
+
+
+def register_report_commands(subparsers) -> None:
+    """Add the ``table``, ``compare``, ``report`` and ``demo`` subcommands.
+
+    Parameters
+    ----------
+    subparsers : argparse._SubParsersAction
+        From ``parser.add_subparsers()`` in ``encodex/cli.py``.
+    """
+    p = subparsers.add_parser(
+        "table", help="tables for papers from an `encodex fit` folder",
+        description="Count cells per label and per variable in each environment with 95% "
+                    "Wilson score intervals and held-out gains; write CSV, Markdown and LaTeX "
+                    "(booktabs) tables and a methods paragraph.")
+    p.add_argument("dir", help="output folder of `encodex fit`")
+    p.add_argument("--out", help="folder for the tables (default DIR/tables)")
+    p.add_argument("--level", type=float, default=0.95,
+                   help="confidence level of the intervals (default 0.95)")
+    p.set_defaults(func=run_table)
+
+    p = subparsers.add_parser(
+        "compare", help="compare labels between two environments",
+        description="Transition table of labels, McNemar tests per variable, Wilcoxon "
+                    "signed-rank test on paired gains, Benjamini-Hochberg correction; "
+                    "unpaired tests when no cell is matched.")
+    p.add_argument("dir", help="output folder of `encodex fit`")
+    p.add_argument("--between", nargs=2, metavar=("A", "B"), required=True,
+                   help="the two environments (A: rows of the transition table)")
+    p.add_argument("--unpaired", action="store_true",
+                   help="treat the populations as independent even if unit ids match")
+    p.add_argument("--alpha", type=float, default=None,
+                   help="false discovery rate of the BH correction (default: the run's alpha)")
+    p.add_argument("--out", help="folder for the results (default DIR/compare)")
+    p.set_defaults(func=run_compare)
+
+    p = subparsers.add_parser(
+        "report", help="one self-contained HTML report of an `encodex fit` folder",
+        description="Write an HTML file with figures embedded (opens offline): summary, "
+                    "tables, population and comparison figures, per-cell sections, methods "
+                    "and settings. Population figures are also saved as PNG and PDF.")
+    p.add_argument("dir", help="output folder of `encodex fit`")
+    p.add_argument("--out", help="HTML file to write (default DIR/report.html)")
+    p.add_argument("--between", nargs=2, metavar=("A", "B"),
+                   help="environments to compare (default: every pair, at most three)")
+    p.add_argument("--max-cells", type=int, default=30,
+                   help="per-cell sections in the report (default 30, tuned cells first)")
+    p.add_argument("--cell", nargs=2, action="append", metavar=("UNIT", "ENV"),
+                   help="also save this cell's figure as PNG and PDF (repeatable)")
+    p.set_defaults(func=run_report)
+
+    p = subparsers.add_parser(
+        "demo", help="the whole job on a simulated session",
+        description="Simulate a two-environment session with known ground truth, write it as "
+                    "NWB, fit every cell, then write tables, the environment comparison and "
+                    "the HTML report.")
+    p.add_argument("--out", required=True, help="folder for everything the demo writes")
+    p.add_argument("--cells", type=int, default=24, help="simulated units (default 24)")
+    p.add_argument("--duration", type=float, default=600.0,
+                   help="seconds per environment (default 600)")
+    p.add_argument("--jobs", type=int, default=2, help="parallel workers (default 2)")
+    p.add_argument("--seed", type=int, default=1, help="seed of the simulation and folds")
+    p.set_defaults(func=run_demo)
+

@@ -1,0 +1,238 @@
+"""One self-contained HTML report of a fit run.
+
+The file embeds its figures as base64 PNG and its style sheet inline; it loads no script and
+no remote resource, so a collaborator can open it offline from an e-mail attachment.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import html
+import json
+from itertools import combinations
+from pathlib import Path
+
+import matplotlib.pyplot as plt
+import numpy as np
+import pandas as pd
+
+from encodex.errors import OutputError, SettingsError
+from encodex.report.environments import compare_environments, summary_frame
+from encodex.report.figures import (
+    cell_figure,
+    comparison_figure,
+    figure_png_base64,
+    population_figure,
+)
+from encodex.report.load import RunFolder, load_run, setting
+from encodex.report.methods import methods_paragraph, REFERENCES
+from encodex.report.tables import display_frame, make_tables
+from encodex.report.wording import label_caveat
+
+__all__ = ["build_report", "render_report"]
+
+_CSS = """
+body{font-family:-apple-system,'Segoe UI',Helvetica,Arial,sans-serif;margin:0;color:#1d232a;
+background:#f6f7f9;line-height:1.45}
+header{background:#1f5f8b;color:#fff;padding:18px 32px}
+header h1{margin:0;font-size:1.5em} header p{margin:4px 0 0;opacity:.9}
+nav{background:#fff;border-bottom:1px solid #dde1e6;padding:8px 32px;position:sticky;top:0}
+nav a{margin-right:16px;color:#1f5f8b;text-decoration:none;font-weight:600}
+main{padding:8px 32px 48px;max-width:1200px}
+section{background:#fff;border:1px solid #dde1e6;border-radius:6px;padding:12px 20px;
+margin:18px 0}
+h2{color:#1f5f8b;border-bottom:1px solid #e3e7ec;padding-bottom:4px}
+.caveat{background:#fff6e5;border-left:4px solid #d9822b;padding:8px 14px;margin:12px 0}
+table.data{border-collapse:collapse;font-size:.88em;margin:8px 0 14px}
+table.data th{background:#eef2f6;text-align:left}
+table.data th,table.data td{border:1px solid #d5dbe2;padding:3px 8px}
+table.data tr:nth-child(even) td{background:#fafbfc}
+img.fig{max-width:100%;height:auto;border:1px solid #eef0f3;margin:6px 0}
+.cell{border-top:1px dashed #cfd6de;padding-top:8px;margin-top:14px}
+pre{background:#f1f3f5;padding:10px;overflow-x:auto;font-size:.85em}
+.small{font-size:.85em;color:#4a5560}
+"""
+
+
+def _table(df: pd.DataFrame, caption: str = "") -> str:
+    if df is None or df.empty:
+        return "<p class='small'>(none)</p>"
+    body = df.to_html(index=False, classes="data", border=0, na_rep="", escape=True,
+                      float_format=lambda x: f"{x:.4g}")
+    cap = f"<p class='small'>{html.escape(caption)}</p>" if caption else ""
+    return cap + body
+
+
+def _img(fig, alt: str) -> str:
+    data = figure_png_base64(fig)
+    plt.close(fig)
+    return f"<img class='fig' alt='{html.escape(alt)}' src='data:image/png;base64,{data}'>"
+
+
+def _pairs(envs: tuple[str, ...], between) -> list[tuple[str, str]]:
+    if between:
+        a, b = between
+        for e in (a, b):
+            if e not in envs:
+                raise SettingsError(
+                    f"environment {e!r} is not in cells.csv; choose from {', '.join(envs)}")
+        return [(a, b)]
+    return list(combinations(envs, 2))[:3]
+
+
+def _cell_order(run: RunFolder, max_cells: int) -> tuple[list[tuple[str, str]], int]:
+    c = run.cells.copy()
+    c["_ok"] = c["status"] == "ok"
+    c["_tuned"] = c["_ok"] & (c["variables"] != "none")
+    c["_gain"] = pd.to_numeric(c["bits_per_spike"], errors="coerce").fillna(-np.inf)
+    # tuned cells by decreasing held-out gain first, then untuned, then excluded
+    c = c.sort_values(["_tuned", "_ok", "_gain"], ascending=[False, False, False])
+    pairs = list(zip(c["unit"].astype(str), c["environment"].astype(str)))
+    return pairs[:max_cells], max(0, len(pairs) - max_cells)
+
+
+def render_report(run: RunFolder, between=None, max_cells: int = 30,
+                  title: str | None = None) -> str:
+    """The report of a fit run as one HTML string (figures embedded).
+
+    Parameters
+    ----------
+    run : RunFolder
+        The fit output.
+    between : (str, str), optional
+        Environments to compare; default every pair (at most three pairs).
+    max_cells : int
+        Per-cell sections to include (tuned cells by decreasing held-out gain first).
+    title : str, optional
+        Report title.
+    """
+    if max_cells < 0:
+        raise SettingsError(f"max_cells must be >= 0; got {max_cells}")
+    tables = make_tables(run)
+    alpha = run.alpha
+    caveat = label_caveat(alpha)
+    envs = run.environments
+    title = title or f"encodex report: {run.path.name}"
+    cells = run.cells
+    n_units = cells["unit"].nunique()
+    summary_rows = []
+    for env in envs:
+        sub = cells[cells["environment"] == env]
+        ok = sub[sub["status"] == "ok"]
+        summary_rows.append({
+            "environment": env, "units": len(sub), "classified": len(ok),
+            "carry at least one variable": int((ok["variables"] != "none").sum()),
+            "not classified": int((sub["status"] != "ok").sum()),
+            "median held-out gain (bits/spike)": float(np.nanmedian(pd.to_numeric(
+                ok["bits_per_spike"], errors="coerce"))) if len(ok) else np.nan,
+        })
+    parts = [
+        "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
+        "<meta name='viewport' content='width=device-width, initial-scale=1'>",
+        f"<title>{html.escape(title)}</title><style>{_CSS}</style></head><body>",
+        f"<header><h1>{html.escape(title)}</h1><p>Run folder {html.escape(str(run.path))} - "
+        f"report written {_dt.datetime.now().strftime('%Y-%m-%d %H:%M')}</p></header>",
+        "<nav><a href='#summary'>Summary</a><a href='#tables'>Tables</a>"
+        "<a href='#population'>Population</a><a href='#compare'>Environments</a>"
+        "<a href='#cells'>Cells</a><a href='#methods'>Methods</a>"
+        "<a href='#settings'>Settings</a></nav><main>",
+        f"<div class='caveat' id='caveat'><b>How to read the labels.</b> "
+        f"{html.escape(caveat)}</div>",
+        "<section id='summary'><h2>Summary</h2>",
+        f"<p>{n_units} units in {len(envs)} environment(s): "
+        f"{html.escape(', '.join(envs))}. Significance level alpha = {alpha:g}; "
+        f"{setting(run.run, 'folds', '?')}-fold cross-validation; time bins of "
+        f"{setting(run.run, 'bin_size', '?')} s.</p>",
+        _table(pd.DataFrame(summary_rows)), "</section>",
+        "<section id='tables'><h2>Tables</h2>",
+        "<h3>Cells per label</h3>",
+        _table(display_frame(tables.labels), "Percent of classified cells with 95% Wilson "
+               "score intervals; gain is the held-out gain of the chosen model."),
+        "<h3>Cells per variable (a cell can carry several)</h3>",
+        _table(display_frame(tables.variables)),
+        "<h3>Cells not classified</h3>", _table(tables.excluded),
+        f"<p class='small'>{html.escape(caveat)}</p></section>",
+        "<section id='population'><h2>Population</h2>",
+        _img(population_figure(cells), "cells per combination of variables"),
+        "</section>",
+        "<section id='compare'><h2>Comparing environments</h2>",
+    ]
+    pairs = _pairs(envs, between)
+    if not pairs:
+        parts.append("<p>Only one environment: nothing to compare.</p>")
+    for a, b in pairs:
+        cmp = compare_environments(run, a, b)
+        parts += [f"<h3>{html.escape(a)} vs {html.escape(b)}</h3>"]
+        parts += [f"<p>{html.escape(n)}</p>" for n in cmp.notes]
+        parts.append(_img(comparison_figure(cmp), f"{a} vs {b}"))
+        if cmp.paired:
+            parts += ["<h4>Label transitions (rows: " + html.escape(a) + ", columns: "
+                      + html.escape(b) + ")</h4>",
+                      _table(cmp.transitions.reset_index().rename(
+                          columns={cmp.transitions.index.name or "index": f"{a} \\ {b}"}))]
+        parts += ["<h4>Per variable</h4>", _table(summary_frame(cmp)),
+                  "<h4>Held-out gains</h4>", _table(cmp.gains),
+                  "<h4>Active in one environment, silent in the other</h4>",
+                  _table(cmp.activity)]
+        if not cmp.stability.empty:
+            st = (cmp.stability.groupby("variable")["correlation"]
+                  .agg(cells="count", median="median").reset_index())
+            parts += ["<h4>Stability of tuning (correlation of fitted responses)</h4>",
+                      _table(st), _table(cmp.stability)]
+    parts.append("</section>")
+    chosen, omitted = _cell_order(run, max_cells)
+    parts.append("<section id='cells'><h2>Cells</h2>")
+    parts.append(f"<p class='small'>{html.escape(caveat)}</p>")
+    if chosen:
+        parts.append("<p>" + " ".join(
+            f"<a href='#cell-{html.escape(e)}-{html.escape(u)}'>{html.escape(u)} "
+            f"({html.escape(e)})</a>" for u, e in chosen) + "</p>")
+    for u, e in chosen:
+        fig = cell_figure(run, u, e)
+        parts += [f"<div class='cell' id='cell-{html.escape(e)}-{html.escape(u)}'>",
+                  f"<h3>Unit {html.escape(u)} in {html.escape(e)}</h3>",
+                  _img(fig, f"unit {u} in {e}"), "</div>"]
+    if omitted:
+        parts.append(f"<p class='small'>{omitted} further cell/environment pairs are not shown "
+                     f"(raise --max-cells to include them); every cell is in cells.csv.</p>")
+    parts.append("</section>")
+    parts += [
+        "<section id='methods'><h2>Methods</h2>",
+        f"<p>{html.escape(methods_paragraph(run.run, with_references=False))}</p>",
+        "<h3>References</h3><ul>",
+        *[f"<li>{html.escape(r)}</li>" for r in REFERENCES.values()],
+        "</ul></section>",
+        "<section id='settings'><h2>Settings (run.json)</h2>",
+        f"<pre>{html.escape(json.dumps(run.run, indent=2, default=str))}</pre></section>",
+        "</main></body></html>",
+    ]
+    return "\n".join(parts)
+
+
+def build_report(run_dir, out=None, between=None, max_cells: int = 30,
+                 title: str | None = None) -> Path:
+    """Write the self-contained HTML report of a fit run.
+
+    Parameters
+    ----------
+    run_dir : str or Path
+        Output folder of ``encodex fit``.
+    out : str or Path, optional
+        HTML file to write; default ``<run_dir>/report.html``.
+    between, max_cells, title
+        See :func:`render_report`.
+
+    Returns
+    -------
+    Path
+        The HTML file.
+    """
+    run = load_run(run_dir)
+    text = render_report(run, between=between, max_cells=max_cells, title=title)
+    path = Path(out) if out is not None else run.path / "report.html"
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_text(text, encoding="utf-8")
+    except OSError as exc:
+        raise OutputError(f"cannot write {path} ({exc.strerror}); choose a writable path")
+    return path

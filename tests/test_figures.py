@@ -1,0 +1,88 @@
+"""Figures: files in PNG and PDF, units on axes, the right panels for each cell."""
+
+import matplotlib.pyplot as plt
+import numpy as np
+import pytest
+
+from encodex.errors import InputError
+from encodex.report.environments import compare_environments
+from encodex.report.figures import (
+    cell_figure,
+    comparison_figure,
+    population_figure,
+    save_figure,
+)
+from encodex.report.load import load_run
+from encodex.report.testing import write_example_run
+
+
+@pytest.fixture(scope="module")
+def run(tmp_path_factory):
+    return load_run(write_example_run(tmp_path_factory.mktemp("run") / "fit"))
+
+
+def _labels(fig):
+    out = []
+    for ax in fig.axes:
+        out += [ax.get_xlabel(), ax.get_ylabel()]
+    return [s for s in out if s]
+
+
+def test_cell_figure_position_and_speed(run, tmp_path):
+    fig = cell_figure(run, "u04", "arena_a")  # position+speed
+    labels = _labels(fig)
+    assert "x (m)" in labels and "y (m)" in labels
+    assert "speed (m/s)" in labels
+    assert "held-out gain over mean rate (bits/spike)" in labels
+    assert "observed rate (Hz)" in labels
+    # colour bars of the fitted map and of the rate map carry their units
+    assert "gain (x mean rate)" in labels and "rate (Hz)" in labels
+    titles = " ".join(ax.get_title() for ax in fig.axes)
+    assert "Skaggs" in titles and "bits/spike" in titles
+    # the speed panel draws the 95% band as a filled polygon
+    speed_ax = next(ax for ax in fig.axes if ax.get_xlabel() == "speed (m/s)")
+    assert len(speed_ax.collections) >= 1
+    # the position map is an image with the arena outline drawn on top
+    pos_ax = next(ax for ax in fig.axes if ax.get_title() == "position: fitted map")
+    assert len(pos_ax.images) == 1 and len(pos_ax.patches) == 1
+    files = save_figure(fig, tmp_path / "cell")
+    plt.close(fig)
+    assert [p.suffix for p in files] == [".png", ".pdf"]
+    assert files[0].read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    assert files[1].read_bytes()[:5] == b"%PDF-"
+
+
+def test_heading_axis_in_radians_and_excluded_cell(run):
+    fig = cell_figure(run, "u03", "arena_a")
+    assert "heading (rad)" in _labels(fig)
+    plt.close(fig)
+    fig = cell_figure(run, "u09", "arena_a")  # too few spikes: no response panel
+    text = " ".join(t.get_text() for ax in fig.axes for t in ax.texts)
+    assert "too few spikes" in text
+    plt.close(fig)
+    with pytest.raises(InputError, match="not in cells.csv"):
+        cell_figure(run, "nope", "arena_a")
+
+
+def test_population_figure_counts(run):
+    fig = population_figure(run.cells)
+    bars = fig.axes[0].containers
+    assert len(bars) == 2  # one bar series per environment
+    heights = {env: sorted(int(r.get_height()) for r in c)
+               for env, c in zip(("arena_a", "arena_b"), bars)}
+    ok = run.cells[run.cells["status"] == "ok"]
+    assert sum(heights["arena_a"]) == (ok["environment"] == "arena_a").sum()
+    assert fig.axes[0].get_ylabel() == "cells"
+    plt.close(fig)
+
+
+def test_comparison_figure_paired_and_unpaired(run):
+    fig = comparison_figure(compare_environments(run, "arena_a", "arena_b"))
+    assert len(fig.axes) == 3  # transitions, its colour bar, fractions
+    assert "label in arena_b" in _labels(fig)
+    plt.close(fig)
+    fig = comparison_figure(compare_environments(run, "arena_a", "arena_b", paired=False))
+    assert len(fig.axes) == 1 and "unpaired" in fig.axes[0].get_title()
+    xl = fig.axes[0].get_xlabel()
+    assert "%" in xl and "Wilson" in xl
+    plt.close(fig)

@@ -1,0 +1,130 @@
+"""Tables for papers: files, formats, the caveat, exclusions and the methods paragraph."""
+
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from encodex.errors import FileFormatError, InputError, OutputError, SettingsError
+from encodex.report.load import load_run
+from encodex.report.methods import REFERENCES, methods_paragraph
+from encodex.report.tables import (
+    label_counts,
+    make_tables,
+    to_latex,
+    to_markdown,
+    wilson_interval,
+    write_tables,
+)
+from encodex.report.testing import write_example_run
+
+
+@pytest.fixture(scope="module")
+def run(tmp_path_factory):
+    return load_run(write_example_run(tmp_path_factory.mktemp("run") / "fit"))
+
+
+def test_counts_match_cells_csv(run):
+    t = make_tables(run)
+    ok = run.cells[run.cells["status"] == "ok"]
+    for env, sub in t.labels.groupby("environment"):
+        n_ok = (ok["environment"] == env).sum()
+        assert (sub["n_classified"] == n_ok).all()
+        assert sub["n_cells"].sum() == n_ok  # every classified cell has exactly one label
+        for lab, k in ok[ok["environment"] == env]["variables"].value_counts().items():
+            assert sub.set_index("label").loc[lab, "n_cells"] == k
+    # position is carried by u01, u02, u04, u08, u11 in arena_a (the example's design)
+    pos = t.variables.set_index(["environment", "variable"]).loc[("arena_a", "position")]
+    assert pos["n_cells"] == 5
+    assert pos["ci_low_percent"] < pos["percent"] < pos["ci_high_percent"]
+    ex = t.excluded.set_index("environment")
+    assert ex.loc["arena_a", "units"] == "u09" and ex.loc["arena_b", "units"] == "u10"
+    assert ex.loc["arena_a", "status"] == "too few spikes"
+
+
+def test_written_formats(run, tmp_path):
+    t = make_tables(run)
+    files = write_tables(t, tmp_path / "tables")
+    names = sorted(p.name for p in files)
+    assert names == sorted(f"table_{k}.{e}" for k in ("labels", "variables", "excluded")
+                           for e in ("csv", "md", "tex"))
+    back = pd.read_csv(tmp_path / "tables" / "table_labels.csv")
+    np.testing.assert_allclose(back["percent"], t.labels["percent"])
+    md = (tmp_path / "tables" / "table_variables.md").read_text()
+    assert "statistical statement at alpha = 0.05" in md and "not proof of mechanism" in md
+    assert md.count("| arena_a |") == 5
+    tex = (tmp_path / "tables" / "table_labels.tex").read_text()
+    for cmd in (r"\toprule", r"\midrule", r"\bottomrule", r"\begin{tabular}", r"\caption{"):
+        assert cmd in tex
+    assert r"arena\_a" in tex and "arena_a" not in tex.replace(r"arena\_a", "")
+    assert r"95\% CI" in tex
+    # a row per label, each with the same number of columns as the header
+    body = tex.split(r"\midrule")[1].split(r"\bottomrule")[0].strip().splitlines()
+    assert len(body) == len(t.labels)
+    assert {row.count(" & ") for row in body} == {5}
+
+
+def test_markdown_and_latex_escape_specials():
+    df = pd.DataFrame({"a|b": ["x_1 & 50%"], "n": [3]})
+    md = to_markdown(df)
+    assert "a\\|b" in md and "---:" in md
+    tex = to_latex(df)
+    assert r"x\_1 \& 50\%" in tex and "{lr}" in tex
+
+
+def test_wilson_rejects_impossible_counts():
+    with pytest.raises(SettingsError, match="0 <= k <= n"):
+        wilson_interval(5, 3)
+    assert np.isnan(wilson_interval(0, 0)[0])
+
+
+def test_environment_with_no_classified_cell():
+    cells = pd.DataFrame({"unit": ["a"], "environment": ["e"], "n_spikes": [3],
+                          "status": ["too few spikes"], "variables": ["none"],
+                          "bits_per_spike": [np.nan]})
+    lab = label_counts(cells)
+    assert lab["n_classified"].tolist() == [0] and np.isnan(lab["percent"].iloc[0])
+
+
+def test_load_run_errors(tmp_path):
+    with pytest.raises(InputError, match="not a folder"):
+        load_run(tmp_path / "nothing")
+    d = write_example_run(tmp_path / "fit")
+    (d / "run.json").write_text("{not json")
+    with pytest.raises(FileFormatError, match="run.json"):
+        load_run(d)
+    d = write_example_run(tmp_path / "fit2")
+    pd.read_csv(d / "cells.csv").drop(columns=["status"]).to_csv(d / "cells.csv", index=False)
+    with pytest.raises(FileFormatError, match="status"):
+        load_run(d)
+    d = write_example_run(tmp_path / "fit3")
+    (d / "models.csv").unlink()
+    with pytest.raises(InputError, match="models.csv is missing"):
+        load_run(d)
+
+
+def test_write_tables_to_unwritable_place(run, tmp_path):
+    blocker = tmp_path / "file"
+    blocker.write_text("x")
+    with pytest.raises(OutputError):
+        write_tables(make_tables(run), blocker / "sub")
+
+
+def test_methods_paragraph_states_settings_and_cites(run):
+    text = methods_paragraph(run.run)
+    s = run.run["settings"]
+    assert "20 ms time bins" in text
+    assert f"{s['folds']}-fold cross-validation" in text
+    assert "alpha = 0.05" in text and "fewer than 100 spikes" in text
+    for cite in ("Eilers & Marx 1996", "Wood 2011", "Hardcastle et al. 2017", "Wilcoxon 1945",
+                 "Wilson 1927", "Benjamini & Hochberg 1995", "Skaggs et al. 1993"):
+        assert cite in text
+    assert len(REFERENCES) == text.split("References")[1].count("\n- ")
+    assert "not proof of mechanism" in text
+    # settings that change the text: exhaustive search and shuffles
+    other = json.loads(json.dumps(run.run))
+    other["settings"].update(exhaustive=True, shuffles=200, min_shift_s=20.0, alpha=0.01)
+    t2 = methods_paragraph(other)
+    assert "exhaustive search" in t2 and "200 times" in t2 and "alpha = 0.01" in t2
+    assert "forward search" not in t2
