@@ -5,6 +5,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
+from scipy.special import gammaln
 
 from encodex.design import Design
 from encodex.errors import InputError, SettingsError
@@ -26,12 +27,16 @@ class FitOptions:
     max_outer : int
         Smoothness-selection updates before giving up.
     lambda_tol : float
-        Selection stops when no ``log lambda`` changes by more than this in an update.
+        Selection stops when no ``log lambda`` changes by more than this in an update...
+    laml_tol : float
+        ... or when the LAML criterion changed by less than ``laml_tol * (1 + |LAML|)`` in each
+        of three consecutive updates (a lambda that no longer affects the fit may drift).
     """
 
     newton: NewtonOptions = field(default_factory=NewtonOptions)
     max_outer: int = 200
     lambda_tol: float = 1e-3
+    laml_tol: float = 1e-10
 
 
 def _row_mask(rows, n: int) -> np.ndarray:
@@ -201,8 +206,20 @@ def _select_smoothness(design, y, offset, mask, structure, theta0, warm, options
     lam = init if warm is None else np.where(np.isnan(warm), init, warm)
     change = np.inf
     rounds = 0
+    previous = -np.inf
+    flat_rounds = 0
+    boost = np.ones_like(lam)
+    last_step = np.zeros_like(lam)
     for rounds in range(1, options.max_outer + 1):
-        new = fellner_schall_update(theta, gram, design, structure, lam)
+        proposal = np.log(fellner_schall_update(theta, gram, design, structure, lam)) - np.log(lam)
+        # Fellner-Schall creeps linearly when a lambda heads for a far optimum (a term being
+        # smoothed away): while a lambda keeps moving the same way its step is doubled, and
+        # reset as soon as it turns. The fixed points are unchanged (zero proposal, zero step).
+        same_way = (np.sign(proposal) == np.sign(last_step)) & (np.abs(proposal) > options.lambda_tol)
+        boost = np.where(same_way, np.minimum(boost * 2.0, 64.0), 1.0)
+        step = np.clip(proposal * boost, -5.0, 5.0)
+        last_step = step
+        new = np.clip(lam * np.exp(step), LAMBDA_MIN, LAMBDA_MAX)
         change = float(np.max(np.abs(np.log(new) - np.log(lam))))
         lam = new
         solver.S = design.penalty_matrix(lam)
@@ -210,8 +227,18 @@ def _select_smoothness(design, y, offset, mask, structure, theta0, warm, options
         g = solver.gradient(theta, mu)
         d = solver.direction(gram + solver.S, g)
         decrement = -float(g @ d)
-        step_small = decrement / 2 <= 1e3 * options.newton.tol * (1 + abs(f))
-        if change < options.lambda_tol and step_small:
+        # theta only needs to be close enough to its optimum for the lambda update to be
+        # accurate; the final Newton solve at the selected lambdas polishes it.
+        step_small = decrement / 2 <= 1e-9 * (1 + abs(f))
+        # A lambda that no longer changes the fit (a term shrunk to its unpenalised part)
+        # can drift without limit; the criterion itself then stops changing.
+        value = laml(-f - _log_factorial_sum(y, mask) + 0.5 * theta @ solver.S @ theta, theta,
+                     gram, design, structure, lam)
+        flat_rounds = flat_rounds + 1 if abs(value - previous) <= options.laml_tol * (
+            1 + abs(value)) else 0
+        previous = value
+        if step_small and (change < options.lambda_tol or flat_rounds >= 3):
+            change = 0.0
             break
         t, _, _, mu_new = solver.line_search(theta, f, g, d)
         if t > 0.0:
@@ -219,6 +246,10 @@ def _select_smoothness(design, y, offset, mask, structure, theta0, warm, options
             mu = mu_new
         gram = solver.gram(mu)
     return lam, theta, rounds, rounds, change
+
+
+def _log_factorial_sum(y, mask) -> float:
+    return float(np.dot(mask, gammaln(y + 1.0)))
 
 
 def _posterior_covariance(h: np.ndarray) -> np.ndarray:

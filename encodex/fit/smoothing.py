@@ -29,6 +29,9 @@ from encodex.design import Design
 LAMBDA_MIN = 1e-6
 LAMBDA_MAX = 1e10
 
+#: Effective degrees of freedom below which a penalised part counts as switched off.
+NEGLIGIBLE_EDF = 1e-3
+
 
 @dataclass(frozen=True)
 class PenaltyStructure:
@@ -121,6 +124,12 @@ def fellner_schall_update(theta: np.ndarray, gram: np.ndarray, design: Design,
     for k, (_, sl, sk) in enumerate(design.penalty_list):
         tr_v = float(np.sum(v[sl, sl] * sk))
         num = max(tr_pinv[k] - tr_v, 0.0)
+        if lambdas[k] * num < NEGLIGIBLE_EDF:
+            # The penalised part of this term uses almost no degrees of freedom: the term is
+            # its unpenalised part and larger lambdas change nothing. Go to the bound at once
+            # instead of creeping there (the fixed point iteration converges only linearly).
+            new[k] = LAMBDA_MAX
+            continue
         th = theta[sl]
         den = float(th @ sk @ th)
         if den <= 1e-300:
