@@ -216,3 +216,36 @@ def test_heading_on_its_own_clock_is_resampled_on_the_circle(tmp_path):
     assert ok[T <= 9.9].all() and not ok[T > 9.9].any()
     err = np.angle(np.exp(1j * (rec.heading[ok] - 0.8 * T[ok])))
     assert np.max(np.abs(err)) < 1e-9
+
+
+def test_mislabelled_units_and_empty_units_in_a_file(tmp_path):
+    f = _nwbfile()
+    beh = f.create_processing_module("behavior", "b")
+    beh.add(Position(spatial_series=_series("p", XY * 100, "meters")))  # really centimetres
+    _units(f, [[1.0]])
+    with pytest.raises(InputError) as exc:
+        read_nwb(_write(tmp_path / "cm.nwb", f))
+    assert "convert it to metres" in str(exc.value)
+
+    f = _nwbfile()
+    beh = f.create_processing_module("behavior", "b")
+    beh.add(Position(spatial_series=_series("p", XY, "meters")))
+    beh.add(CompassDirection(spatial_series=_series("h", np.full(T.size, 200.0), "radians")))
+    _units(f, [[1.0], []])
+    path = _write(tmp_path / "empty.nwb", f)
+    with pytest.raises(InputError) as exc:
+        read_nwb(path, heading="processing/behavior/CompassDirection/h")
+    assert "degrees" in str(exc.value)
+    with pytest.raises(InputError) as exc:
+        read_nwb(path, heading="processing/behavior/Position/p")  # wrong object: 2 columns
+    assert "one angle per sample" in str(exc.value)
+    f2 = _nwbfile()
+    f2.create_processing_module("behavior", "b").add(
+        Position(spatial_series=_series("p", XY, "meters")))
+    _units(f2, [[1.0], []])
+    path2 = _write(tmp_path / "empty2.nwb", f2)
+    with pytest.raises(InputError) as exc:
+        read_nwb(path2)
+    assert "unit 11 has no spikes" in str(exc.value)
+    rec = read_nwb(path2, drop_empty_units=True)
+    assert rec.unit_ids == ("10",) and rec.provenance["dropped_empty_units"] == "11"

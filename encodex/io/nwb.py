@@ -248,8 +248,13 @@ def _read_heading(nwbfile, path, provenance):
             provenance["heading"] = "none in file: movement direction"
             return None, None
     h = _series_values(obj)
-    if h.ndim == 2:
+    if h.ndim == 2 and h.shape[1] == 1:
         h = h[:, 0]
+    if h.ndim != 1:
+        raise InputError(
+            f"heading series {where} has shape {h.shape}; name a series with one angle per "
+            "sample"
+        )
     unit = str(getattr(obj, "unit", "") or "").strip().lower()
     if unit in _ANGLE_TO_RAD:
         h = h * _ANGLE_TO_RAD[unit]
