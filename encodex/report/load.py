@@ -73,7 +73,19 @@ class RunFolder:
         return float(setting(self.run, "alpha", 0.05))
 
     def unit_file(self, environment: str, unit: str) -> Path:
-        return self.path / "units" / str(environment) / f"{unit}.npz"
+        """Path of ``units/<environment>/<unit>.npz``.
+
+        Names that are not safe as file names are written by the fit stage in a sanitised
+        form (``encodex.population.checkpoint.safe_name``); that form is tried second.
+        """
+        plain = self.path / "units" / str(environment) / f"{unit}.npz"
+        if plain.exists():
+            return plain
+        try:
+            from encodex.population.checkpoint import safe_name
+        except ImportError:  # fit stage not installed: only the plain layout exists
+            return plain
+        return self.path / "units" / safe_name(environment) / f"{safe_name(unit)}.npz"
 
     def unit_arrays(self, environment: str, unit: str) -> dict[str, np.ndarray] | None:
         """Arrays of ``units/<environment>/<unit>.npz`` or None when the file is absent."""
@@ -82,7 +94,8 @@ class RunFolder:
             return None
         try:
             with np.load(f, allow_pickle=False) as z:
-                return {k: z[k] for k in z.files}
+                # the fit stage may add a JSON record; only arrays of the contract matter here
+                return {k: z[k] for k in z.files if "__" in k and not k.startswith("record__")}
         except (ValueError, OSError) as exc:
             raise FileFormatError(
                 f"{f} is not a readable npz file ({exc}); re-run `encodex fit` for this unit"
