@@ -11,8 +11,8 @@ from encodex.design import Design
 from encodex.errors import InputError, SettingsError
 
 from .result import PoissonFit, TermLayout, poisson_deviance, poisson_loglik
-from .smoothing import (LAMBDA_MAX, LAMBDA_MIN, PenaltyStructure, fellner_schall_update,
-                        initial_lambdas, laml)
+from .smoothing import (LAMBDA_MAX, LAMBDA_MIN, RELATIVE_RANGE, PenaltyStructure,
+                        fellner_schall_update, initial_lambdas, laml)
 from .solver import NewtonOptions, PenalisedPoissonNewton, _log_mean_rate
 
 
@@ -203,7 +203,9 @@ def _select_smoothness(design, y, offset, mask, structure, theta0, warm, options
     _, mu = solver.objective(theta)
     gram = solver.gram(mu)
     init = initial_lambdas(design, gram)
-    lam = init if warm is None else np.where(np.isnan(warm), init, warm)
+    upper = np.minimum(init * RELATIVE_RANGE, LAMBDA_MAX)
+    lower = np.maximum(init / RELATIVE_RANGE, LAMBDA_MIN)
+    lam = init if warm is None else np.clip(np.where(np.isnan(warm), init, warm), lower, upper)
     change = np.inf
     rounds = 0
     previous = -np.inf
@@ -211,7 +213,8 @@ def _select_smoothness(design, y, offset, mask, structure, theta0, warm, options
     boost = np.ones_like(lam)
     last_step = np.zeros_like(lam)
     for rounds in range(1, options.max_outer + 1):
-        proposal = np.log(fellner_schall_update(theta, gram, design, structure, lam)) - np.log(lam)
+        proposal = np.log(fellner_schall_update(theta, gram, design, structure, lam,
+                                                upper=upper, lower=lower)) - np.log(lam)
         # Fellner-Schall creeps linearly when a lambda heads for a far optimum (a term being
         # smoothed away): while a lambda keeps moving the same way its step is doubled, and
         # reset as soon as it turns. The fixed points are unchanged (zero proposal, zero step).
@@ -219,7 +222,7 @@ def _select_smoothness(design, y, offset, mask, structure, theta0, warm, options
         boost = np.where(same_way, np.minimum(boost * 2.0, 64.0), 1.0)
         step = np.clip(proposal * boost, -5.0, 5.0)
         last_step = step
-        new = np.clip(lam * np.exp(step), LAMBDA_MIN, LAMBDA_MAX)
+        new = np.clip(lam * np.exp(step), lower, upper)
         change = float(np.max(np.abs(np.log(new) - np.log(lam))))
         lam = new
         solver.S = design.penalty_matrix(lam)

@@ -29,6 +29,11 @@ from encodex.design import Design
 LAMBDA_MIN = 1e-6
 LAMBDA_MAX = 1e10
 
+#: Each lambda also stays within this factor of its starting value, which is scaled to the
+#: term's Hessian: a penalty 1e7 times the data curvature has switched its part off (edf of
+#: order 1e-7), and larger values only worsen the conditioning of H + S.
+RELATIVE_RANGE = 1e7
+
 #: Effective degrees of freedom below which a penalised part counts as switched off.
 NEGLIGIBLE_EDF = 1e-3
 
@@ -110,12 +115,12 @@ def laml(loglik: float, theta: np.ndarray, gram: np.ndarray, design: Design,
 
 def fellner_schall_update(theta: np.ndarray, gram: np.ndarray, design: Design,
                           structure: PenaltyStructure, lambdas: np.ndarray,
-                          max_log_step: float = 5.0) -> np.ndarray:
+                          max_log_step: float = 5.0, upper=LAMBDA_MAX, lower=LAMBDA_MIN) -> np.ndarray:
     """One generalised Fellner-Schall update of every smoothing parameter.
 
     The log-change of each ``lambda`` is capped at ``max_log_step`` per update so that a
     poor start cannot throw it far past the optimum; results are clipped to
-    [LAMBDA_MIN, LAMBDA_MAX].
+    [lower, upper] (scalars or one bound per penalty).
     """
     s = design.penalty_matrix(lambdas)
     v = np.linalg.inv(gram + s)
@@ -128,7 +133,7 @@ def fellner_schall_update(theta: np.ndarray, gram: np.ndarray, design: Design,
             # The penalised part of this term uses almost no degrees of freedom: the term is
             # its unpenalised part and larger lambdas change nothing. Go to the bound at once
             # instead of creeping there (the fixed point iteration converges only linearly).
-            new[k] = LAMBDA_MAX
+            new[k] = np.inf
             continue
         th = theta[sl]
         den = float(th @ sk @ th)
@@ -139,4 +144,4 @@ def fellner_schall_update(theta: np.ndarray, gram: np.ndarray, design: Design,
         else:
             ratio = np.clip(num / den, np.exp(-max_log_step), np.exp(max_log_step))
         new[k] = lambdas[k] * ratio
-    return np.clip(new, LAMBDA_MIN, LAMBDA_MAX)
+    return np.clip(new, lower, upper)
