@@ -20,12 +20,6 @@ How each covariate is made (all on the bin grid, bin centres ``t0 + (k + 1/2) * 
   (trapezoid rule); NaN outside trials and for the rest of a trial after a masked gap, since
   the path through a long gap is unknown (reason ``distance_after_gap``).
 * time: seconds since the start of the bin's trial; NaN outside trials.
-
-References
-----------
-.. [1] Lewis, P. A. W. and Shedler, G. S. (1979). Simulation of nonhomogeneous Poisson
-   processes by thinning. Naval Research Logistics Quarterly 26, 403-413 (used by
-   :mod:`encodex.simulate`).
 """
 
 from __future__ import annotations

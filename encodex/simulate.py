@@ -124,7 +124,8 @@ def _simulate_behaviour(rng, duration_s, environments, box, break_s, trial_range
     omega = _ou(rng, n, 0.5, 1.5)
     theta = rng.uniform(0, 2 * np.pi) + np.cumsum(omega) * _DT
     start = rng.uniform(0.3 * box, 0.7 * box, 2)
-    free = start + np.cumsum(speed[:, None] * np.column_stack([np.cos(theta), np.sin(theta)]) * _DT, axis=0)
+    step_xy = speed[:, None] * np.column_stack([np.cos(theta), np.sin(theta)]) * _DT
+    free = start + np.cumsum(step_xy, axis=0)
     m = np.mod(free, 2 * box)
     pos = box - np.abs(m - box)
     sign = np.where(m < box, 1.0, -1.0)
@@ -180,7 +181,8 @@ def _log_gain(variables, p, beh, rows):
     if "speed" in variables:
         g += p["speed_slope"] * np.minimum(beh.speed[rows], 0.4) / 0.4
     if "distance" in variables:
-        z = (np.nan_to_num(beh.distance[rows], nan=1e3) - p["distance_peak_m"]) / p["distance_width_m"]
+        d = np.nan_to_num(beh.distance[rows], nan=1e3)  # outside trials: far from any bump
+        z = (d - p["distance_peak_m"]) / p["distance_width_m"]
         g += p["distance_gain"] * np.exp(-0.5 * z * z)
     if "time" in variables:
         z = (np.nan_to_num(beh.elapsed[rows], nan=1e4) - p["time_peak_s"]) / p["time_width_s"]
@@ -369,7 +371,9 @@ def simulate_recording(
     return recording, truth
 
 
-def simulate_to_files(out_dir, seed: int = 0, stem: str = "simulated_session", **kw) -> dict[str, Path]:
+def simulate_to_files(
+    out_dir, seed: int = 0, stem: str = "simulated_session", **kw
+) -> dict[str, Path]:
     """Simulate a recording and write it as NWB, npz bundle and ground-truth CSV.
 
     Parameters
@@ -393,7 +397,9 @@ def simulate_to_files(out_dir, seed: int = 0, stem: str = "simulated_session", *
     try:
         out.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
-        raise OutputError(f"cannot create {out}: {exc.strerror}; choose a writable folder") from None
+        raise OutputError(
+            f"cannot create {out}: {exc.strerror}; choose a writable folder"
+        ) from None
     recording, truth = simulate_recording(seed=seed, **kw)
     paths = {
         "nwb": write_nwb(

@@ -130,7 +130,10 @@ def read_bundle(path, drop_empty_units: bool = False) -> Recording:
     flat = np.asarray(data["spike_times"], dtype=float).ravel()
     ends = np.asarray(data["spike_index"]).ravel().astype(np.int64)
     ids = [str(u) for u in np.asarray(data["unit_ids"]).ravel()]
-    if ends.size != len(ids) or (ends.size and (ends[-1] != flat.size or np.any(np.diff(ends) < 0))):
+    bad_index = ends.size != len(ids) or (
+        ends.size and (ends[-1] != flat.size or np.any(np.diff(ends) < 0))
+    )
+    if bad_index:
         raise FileFormatError(
             f"{path.name}: spike_index must hold {len(ids)} non-decreasing end offsets "
             f"ending at {flat.size}; rebuild it as numpy.cumsum of the per-unit counts"

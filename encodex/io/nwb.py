@@ -413,7 +413,9 @@ def read_nwb(path, drop_empty_units: bool = False, **object_paths) -> Recording:
         table = _find_units(nwbfile, object_paths.get("units"), provenance)
         names, trains = _read_spikes(table)
         trials, _ = _read_intervals(nwbfile, object_paths.get("trials"), "trials", provenance)
-        epochs_b, etable = _read_intervals(nwbfile, object_paths.get("epochs"), "epochs", provenance)
+        epochs_b, etable = _read_intervals(
+            nwbfile, object_paths.get("epochs"), "epochs", provenance
+        )
         epochs = None
         if epochs_b is not None and epochs_b.shape[0]:
             env = _epoch_names(etable, provenance["epochs"])
