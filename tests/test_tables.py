@@ -47,7 +47,7 @@ def test_written_formats(run, tmp_path):
     t = make_tables(run)
     files = write_tables(t, tmp_path / "tables")
     names = sorted(p.name for p in files)
-    assert names == sorted(f"table_{k}.{e}" for k in ("labels", "variables", "excluded")
+    assert names == sorted(f"table_{k}.{e}" for k in ("labels", "variables", "excluded", "cells")
                            for e in ("csv", "md", "tex"))
     back = pd.read_csv(tmp_path / "tables" / "table_labels.csv")
     np.testing.assert_allclose(back["percent"], t.labels["percent"])
@@ -128,3 +128,21 @@ def test_methods_paragraph_states_settings_and_cites(run):
     t2 = methods_paragraph(other)
     assert "exhaustive search" in t2 and "200 times" in t2 and "alpha = 0.01" in t2
     assert "forward search" not in t2
+
+
+def test_cell_measures_put_skaggs_beside_the_model(run):
+    from encodex.classic import skaggs_information
+
+    t = make_tables(run).cells
+    assert len(t) == len(run.cells)
+    row = t.set_index(["unit", "environment"]).loc[("u04", "arena_a")]
+    arr = run.unit_arrays("arena_a", "u04")
+    expected = skaggs_information(arr["ratemap__occupancy_s"], arr["ratemap__spikes"],
+                                  min_occupancy_s=0.1)
+    assert row["skaggs_bits_per_spike"] == pytest.approx(expected)
+    assert row["peak_rate_hz"] > row["map_mean_rate_hz"] > 0
+    # the example's place cells carry more spatial information than its speed cell
+    sk = t.set_index(["unit", "environment"])["skaggs_bits_per_spike"]
+    assert sk[("u01", "arena_a")] > 3 * sk[("u05", "arena_a")]
+    # a cell without a unit file (too few spikes) has no classic measure
+    assert np.isnan(sk[("u09", "arena_a")])

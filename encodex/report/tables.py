@@ -31,6 +31,7 @@ __all__ = [
     "label_counts",
     "variable_counts",
     "excluded_cells",
+    "cell_measures",
     "PaperTables",
     "make_tables",
     "write_tables",
@@ -174,6 +175,46 @@ def excluded_cells(cells: pd.DataFrame) -> pd.DataFrame:
     return pd.DataFrame(rows, columns=["environment", "status", "reason", "n_cells", "units"])
 
 
+def cell_measures(run: RunFolder, min_occupancy_s: float = 0.1) -> pd.DataFrame:
+    """Per cell and environment: the model's label and gain beside the classic measures.
+
+    Skaggs spatial information (bits per spike; Skaggs et al. 1993) and the peak and mean
+    occupancy-normalised rates are computed from the occupancy map saved by the fit
+    (``ratemap__occupancy_s``, ``ratemap__spikes``), over spatial bins visited for at least
+    ``min_occupancy_s`` seconds.
+
+    Returns
+    -------
+    DataFrame
+        ``unit, environment, status, label, n_spikes, mean_rate_hz, bits_per_spike,
+        skaggs_bits_per_spike, peak_rate_hz, map_mean_rate_hz``.
+    """
+    from encodex.classic import rate_map, skaggs_information
+
+    rows = []
+    for r in run.cells.itertuples(index=False):
+        d = r._asdict()
+        arr = run.unit_arrays(d["environment"], d["unit"]) or {}
+        info = peak = mean = np.nan
+        occ, spk = arr.get("ratemap__occupancy_s"), arr.get("ratemap__spikes")
+        if occ is not None and spk is not None:
+            rates = rate_map(occ, spk, min_occupancy_s=min_occupancy_s)
+            used = np.isfinite(rates)
+            if used.any():
+                info = skaggs_information(occ, spk, min_occupancy_s=min_occupancy_s)
+                peak = float(np.max(rates[used]))
+                mean = float(np.sum(np.asarray(spk)[used]) / np.sum(np.asarray(occ)[used]))
+        rows.append({"unit": d["unit"], "environment": d["environment"],
+                     "status": d["status"], "label": d["variables"],
+                     "n_spikes": d["n_spikes"], "mean_rate_hz": d["mean_rate_hz"],
+                     "bits_per_spike": d["bits_per_spike"], "skaggs_bits_per_spike": info,
+                     "peak_rate_hz": peak, "map_mean_rate_hz": mean})
+    return pd.DataFrame(rows, columns=["unit", "environment", "status", "label", "n_spikes",
+                                       "mean_rate_hz", "bits_per_spike",
+                                       "skaggs_bits_per_spike", "peak_rate_hz",
+                                       "map_mean_rate_hz"])
+
+
 @dataclass(frozen=True)
 class PaperTables:
     """The three tables of a run and the significance level their labels rest on."""
@@ -183,6 +224,7 @@ class PaperTables:
     excluded: pd.DataFrame
     alpha: float
     level: float = 0.95
+    cells: pd.DataFrame | None = None
 
     @property
     def caveat(self) -> str:
@@ -197,6 +239,7 @@ def make_tables(run: RunFolder, level: float = 0.95) -> PaperTables:
         excluded=excluded_cells(run.cells),
         alpha=run.alpha,
         level=level,
+        cells=cell_measures(run),
     )
 
 
@@ -279,13 +322,17 @@ def _captions(t: PaperTables) -> dict[str, str]:
                       f"several) per environment, with {pct}% Wilson score intervals and the "
                       f"held-out gain attributed to that variable. {t.caveat}"),
         "excluded": "Cells not classified, by environment and reason; they are in no count.",
+        "cells": (f"Per cell: label and held-out gain of the chosen model (bits/spike) beside "
+                  f"the classic measures, Skaggs spatial information (bits/spike) and peak "
+                  f"rate of the occupancy-normalised rate map. {t.caveat}"),
     }
 
 
 def write_tables(tables: PaperTables, out_dir: str | Path) -> list[Path]:
     """Write each table as CSV (raw numbers), Markdown and LaTeX (booktabs).
 
-    Files: ``table_labels.{csv,md,tex}``, ``table_variables.*``, ``table_excluded.*``.
+    Files: ``table_labels.{csv,md,tex}``, ``table_variables.*``, ``table_excluded.*`` and,
+    when present, ``table_cells.*`` (per-cell model and classic measures).
 
     Returns
     -------
@@ -299,10 +346,15 @@ def write_tables(tables: PaperTables, out_dir: str | Path) -> list[Path]:
         raise OutputError(f"cannot create {out} ({exc.strerror}); choose a writable folder")
     caps = _captions(tables)
     written = []
-    for name, raw in (("labels", tables.labels), ("variables", tables.variables),
-                      ("excluded", tables.excluded)):
-        shown = raw if name == "excluded" else display_frame(raw, tables.level)
-        shown = shown.rename(columns=lambda c: c.replace("_", " ")) if name == "excluded" else shown
+    items = [("labels", tables.labels), ("variables", tables.variables),
+             ("excluded", tables.excluded)]
+    if tables.cells is not None:
+        items.append(("cells", tables.cells))
+    for name, raw in items:
+        if name in ("labels", "variables"):
+            shown = display_frame(raw, tables.level)
+        else:
+            shown = raw.rename(columns=lambda c: c.replace("_", " ")).round(3)
         files = {
             f"table_{name}.csv": raw.to_csv(index=False),
             f"table_{name}.md": to_markdown(shown, caps[name]),
