@@ -588,7 +588,9 @@ def build_session(
     )
 
 
-def load_session(path, object_paths: Mapping[str, str] | None = None, **kw) -> Session:
+def load_session(
+    path, object_paths: Mapping[str, str] | None = None, drop_empty_units: bool = False, **kw
+) -> Session:
     """Read a recording (``.nwb`` or ``.npz``) and bin it: ``build_session(read_recording(path))``.
 
     Parameters
@@ -598,9 +600,12 @@ def load_session(path, object_paths: Mapping[str, str] | None = None, **kw) -> S
     object_paths : mapping, optional
         Paths of objects inside an NWB file (``position``, ``heading``, ``units``, ``trials``,
         ``epochs``), passed to :func:`encodex.io.read_recording`.
+    drop_empty_units : bool
+        Drop units without any spike instead of raising InputError.
     **kw
         Options of :func:`build_session` (``bin_size``, ``speed_smoothing_s``, ...).
     """
     from encodex.io import read_recording
 
-    return build_session(read_recording(path, **dict(object_paths or {})), **kw)
+    rec = read_recording(path, drop_empty_units=drop_empty_units, **dict(object_paths or {}))
+    return build_session(rec, **kw)

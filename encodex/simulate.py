@@ -218,6 +218,7 @@ def simulate_recording(
     p_silent: float = 0.08,
     tracking_noise_m: float = 0.001,
     dropouts: bool = True,
+    with_compass: bool = True,
 ) -> tuple[Recording, pd.DataFrame]:
     """Simulate a recording with known ground truth (see the module docstring).
 
@@ -250,6 +251,9 @@ def simulate_recording(
     dropouts : bool
         Add tracking dropouts: about one short (0.05-0.3 s) per minute and one long
         (1.5-3 s) per environment.
+    with_compass : bool
+        Include the head direction in the recording. Without it, sessions use the movement
+        direction (heading cells are still tuned to the head direction).
 
     Returns
     -------
@@ -362,7 +366,7 @@ def simulate_recording(
         position=pos,
         unit_ids=unit_ids,
         spike_times=tuple(np.concatenate(tr) for tr in trains),
-        heading=heading,
+        heading=heading if with_compass else None,
         trials=beh.trials,
         epochs=beh.epochs,
         provenance={"source": f"encodex.simulate seed={seed}"},

@@ -228,3 +228,21 @@ def test_missing_timestamps_count_as_gaps_and_summary_is_json():
     assert s.valid[(s.time > 12.0) & (s.time < 12.2)].all()
     text = json.dumps(s.summary)
     assert json.loads(text)["dropped_spikes"]["after_end"] == 1
+
+
+def test_load_session_from_files(tmp_path):
+    from encodex.io import write_bundle, write_nwb
+    from encodex.session import load_session
+
+    t, pos = _line(duration=10.0)
+    rec = make_recording(t, pos, {"a": [1.0, 2.0], "q": []}, heading=np.zeros(t.size),
+                         drop_empty_units=True, trials=[[0.0, 10.0]])
+    nwb = write_nwb(rec, tmp_path / "x.nwb")
+    npz = write_bundle(rec, tmp_path / "x.npz")
+    a = load_session(nwb, bin_size=0.05)
+    b = load_session(npz, bin_size=0.05)
+    assert a.bin_size == b.bin_size == 0.05 and a.unit_ids == b.unit_ids == ("a",)
+    np.testing.assert_array_equal(a.unit_counts(0), b.unit_counts(0))
+    assert a.summary["objects"]["position"] == "processing/behavior/Position/position"
+    c = load_session(nwb, object_paths={"position": "processing/behavior/Position/position"})
+    assert c.n_bins == 500

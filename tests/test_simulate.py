@@ -170,3 +170,15 @@ def test_bad_settings():
         simulate_recording(environments=("a", "a"))
     with pytest.raises(SettingsError):
         simulate_recording(tracking_rate_hz=30.0)
+
+
+def test_without_compass_sessions_use_movement_direction(tmp_path):
+    rec, _ = simulate_recording(seed=5, n_cells=3, duration_s=60.0, with_compass=False)
+    assert rec.heading is None
+    s = build_session(rec)
+    assert s.summary["heading_source"] == "movement direction"
+    slow = s.covariates["speed"] < 0.03
+    assert np.isnan(s.covariates["heading"][slow]).all()
+    known = np.isfinite(s.covariates["position"][:, 0])
+    expect = int(np.sum(~(s.covariates["speed"] >= 0.03) & known))
+    assert s.summary["masked_bins"]["heading_undefined"] == expect > 0.1 * s.n_bins
