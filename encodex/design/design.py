@@ -180,34 +180,67 @@ class Design:
             cols.append(t.block.columns + np.int32(self.beta_slices[t.name].start))
         return np.hstack(vals), np.hstack(cols).astype(np.intp)
 
-    def weighted_gram(self, w: np.ndarray) -> np.ndarray:
+    def weighted_gram(self, w: np.ndarray, groups: np.ndarray | None = None,
+                      n_groups: int | None = None) -> np.ndarray:
         """``Z' X' diag(w) X Z`` for non-negative weights ``w`` over all rows.
 
         The product is accumulated over dense chunks of :data:`GRAM_CHUNK_ROWS` rows, each
         filled from the non-zeros of its rows and added with the BLAS symmetric rank-k
         update, so memory stays at one chunk whatever the number of bins. Rows with zero
         weight contribute nothing.
+
+        Parameters
+        ----------
+        w : ndarray, shape (n_rows,)
+            Non-negative weights (``mu`` for the Poisson Hessian).
+        groups : ndarray of int, shape (n_rows,), optional
+            Group of each row (e.g. its cross-validation fold; negative = left out). When
+            given, one matrix per group is returned, shape (n_groups, n_theta, n_theta), at the
+            cost of a single pass over the rows; groups should come in contiguous runs.
+        n_groups : int, optional
+            Number of groups (default ``groups.max() + 1``).
         """
         vals, cols = self._row_layout
         p = self.n_beta
-        g = np.zeros((p, p), order="F")
+        n = self.n_rows
+        if groups is None:
+            run_starts, run_groups = np.array([0]), np.array([0])
+            n_out = 1
+        else:
+            groups = np.asarray(groups)
+            run_starts = np.concatenate([[0], np.flatnonzero(np.diff(groups)) + 1])
+            run_groups = groups[run_starts]
+            n_out = int(groups.max()) + 1 if n_groups is None else int(n_groups)
+        run_stops = np.append(run_starts[1:], n)
+        out = np.zeros((n_out, p, p), order="C")
         sw = np.sqrt(w)
         chunk = np.zeros((GRAM_CHUNK_ROWS, p))
         base = (np.arange(GRAM_CHUNK_ROWS) * p)[:, None]
-        for start in range(0, self.n_rows, GRAM_CHUNK_ROWS):
-            stop = min(start + GRAM_CHUNK_ROWS, self.n_rows)
-            m = stop - start
-            if not sw[start:stop].any():
+        for r0, r1, gid in zip(run_starts, run_stops, run_groups):
+            if gid < 0:
                 continue
-            c = chunk[:m]
-            c.fill(0.0)
-            flat = c.reshape(-1)
-            flat[(base[:m] + cols[start:stop]).ravel()] = (vals[start:stop]
-                                                          * sw[start:stop, None]).ravel()
-            # dsyrk with trans=1 adds c' c to the upper triangle of g.
-            g = dsyrk(1.0, c, beta=1.0, c=g, trans=1, lower=0, overwrite_c=1)
-        g = np.triu(g) + np.triu(g, 1).T
-        return self.Z.T @ g @ self.Z
+            g = np.zeros((p, p), order="F")
+            for start in range(r0, r1, GRAM_CHUNK_ROWS):
+                stop = min(start + GRAM_CHUNK_ROWS, r1)
+                m = stop - start
+                if not sw[start:stop].any():
+                    continue
+                c = chunk[:m]
+                c.fill(0.0)
+                c.reshape(-1)[(base[:m] + cols[start:stop]).ravel()] = (
+                    vals[start:stop] * sw[start:stop, None]).ravel()
+                # dsyrk with trans=1 adds c' c to the upper triangle of g.
+                g = dsyrk(1.0, c, beta=1.0, c=g, trans=1, lower=0, overwrite_c=1)
+            out[gid] += np.triu(g) + np.triu(g, 1).T
+        out = self.Z.T @ out @ self.Z
+        return out[0] if groups is None else out
+
+    def transpose_dot_groups(self, r: np.ndarray, groups: np.ndarray, n_groups: int) -> np.ndarray:
+        """``Z' X' r`` restricted to each group's rows, shape (n_groups, n_theta)."""
+        out = np.empty((n_groups, self.n_theta))
+        for k in range(n_groups):
+            out[k] = self.transpose_dot(np.where(groups == k, r, 0.0))
+        return out
 
     def dense(self) -> np.ndarray:
         """Dense ``X`` (n_rows x n_beta), for tests and small problems only."""

@@ -1,0 +1,48 @@
+"""Per-fold Gram pieces and one-step fold refits."""
+
+import numpy as np
+import pytest
+
+from encodex.design import CircularBasis, IntervalBasis, build_design
+from encodex.fit import fit_poisson, poisson_loglik, refit_folds
+
+DT = 0.02
+
+
+@pytest.fixture(scope="module")
+def problem():
+    rng = np.random.default_rng(11)
+    n = 20_000
+    cov = {"heading": rng.uniform(0, 2 * np.pi, n), "speed": rng.uniform(0, 0.5, n)}
+    y = rng.poisson(np.exp(np.log(4.0) + 0.7 * np.cos(cov["heading"] - 2) + 2 * cov["speed"]) * DT)
+    design = build_design(cov, {"heading": CircularBasis(10), "speed": IntervalBasis(8, (0, 0.5))})
+    folds = (np.arange(n) // 1000) % 10
+    return design, y, folds
+
+
+def test_group_gram_pieces_add_up_and_match_direct_products(problem):
+    design, y, folds = problem
+    w = np.random.default_rng(0).uniform(0.1, 1, design.n_rows)
+    pieces = design.weighted_gram(w, folds, 10)
+    xz = design.dense() @ design.Z
+    for k in (0, 7):
+        m = folds == k
+        np.testing.assert_allclose(pieces[k], xz[m].T @ (w[m, None] * xz[m]), rtol=1e-10, atol=1e-9)
+    np.testing.assert_allclose(pieces.sum(axis=0), design.weighted_gram(w), rtol=1e-10, atol=1e-9)
+
+
+def test_one_step_refits_are_close_to_exact_refits(problem):
+    design, y, folds = problem
+    full = fit_poisson(design, y, np.log(DT))
+    one = refit_folds(design, y, np.log(DT), full, folds, 10)
+    exact = refit_folds(design, y, np.log(DT), full, folds, 10, exact=True)
+    for k in range(10):
+        rows = np.flatnonzero(folds == k)
+        l_one = poisson_loglik(y[rows], one[k].predict(design, rows))
+        l_exact = poisson_loglik(y[rows], exact[k].predict(design, rows))
+        n_spikes = y[rows].sum()
+        # Held-out log-likelihoods agree to better than 1e-3 bits per spike.
+        assert abs(l_one - l_exact) / n_spikes / np.log(2) < 1e-3
+        assert one[k].reason.startswith("one Newton step")
+        # The fold's own bins were not used: refits differ from the full fit.
+        assert not np.allclose(one[k].theta, full.theta)
