@@ -33,7 +33,7 @@ import scipy.sparse as sp
 from scipy.ndimage import gaussian_filter1d
 
 from encodex.errors import InputError, SettingsError
-from encodex.io.recording import Recording
+from encodex.io.recording import Recording, wrap_angle
 from encodex.variables import VARIABLES
 
 #: Default bin width, s.
@@ -240,7 +240,7 @@ def _interp_linear(tq, ts, values):
 
 def _interp_circular(tq, ts, angles):
     """Interpolate angles (rad) on the circle: unwrap, interpolate linearly, wrap."""
-    return np.mod(np.interp(tq, ts, np.unwrap(angles)), 2.0 * np.pi)
+    return wrap_angle(np.interp(tq, ts, np.unwrap(angles)))
 
 
 def _runs(mask: np.ndarray) -> list[tuple[int, int]]:
@@ -483,7 +483,7 @@ def build_session(
         heading_undefined = h_unknown & ~pos_unknown
         heading_source = "compass"
     else:
-        heading = np.mod(np.arctan2(vel[:, 1], vel[:, 0]), 2.0 * np.pi)
+        heading = wrap_angle(np.arctan2(vel[:, 1], vel[:, 0]))
         slow = ~(speed >= heading_speed_threshold)
         heading[slow] = np.nan
         heading_undefined = slow & ~pos_unknown

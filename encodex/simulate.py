@@ -37,7 +37,7 @@ from scipy.ndimage import gaussian_filter1d
 from scipy.signal import lfilter
 
 from encodex.errors import OutputError, SettingsError
-from encodex.io.recording import Recording
+from encodex.io.recording import Recording, wrap_angle
 from encodex.variables import label
 
 #: Internal time step of the behaviour and the rate, s.
@@ -130,7 +130,7 @@ def _simulate_behaviour(rng, duration_s, environments, box, break_s, trial_range
     pos = box - np.abs(m - box)
     sign = np.where(m < box, 1.0, -1.0)
     move_dir = np.arctan2(sign[:, 1] * np.sin(theta), sign[:, 0] * np.cos(theta))
-    heading = np.mod(move_dir + _ou(rng, n, 1.5, 0.4), 2 * np.pi)
+    heading = wrap_angle(move_dir + _ou(rng, n, 1.5, 0.4))
     speed = np.hypot(*(np.gradient(pos, _DT, axis=0).T))  # speed of the folded path
 
     distance = np.full(n, np.nan)

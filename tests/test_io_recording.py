@@ -128,3 +128,14 @@ def test_repeated_unit_ids():
 def test_environments_in_order_of_first_appearance():
     rec = _rec(epochs=[(2.0, 3.0, "b"), (0.0, 1.0, "a"), (3.0, 3.5, "b")])
     assert rec.environments == ("b", "a")
+
+
+def test_wrap_angle_is_half_open():
+    from encodex.io.recording import wrap_angle
+
+    out = wrap_angle([-1e-17, 2 * np.pi, -np.pi, 7.0, np.nan])
+    assert np.all(out[:4] < 2 * np.pi) and np.all(out[:4] >= 0)
+    np.testing.assert_allclose(out[:4], [0.0, 0.0, np.pi, 7.0 - 2 * np.pi])
+    assert np.isnan(out[4])
+    rec = _rec(heading=np.full(200, -1e-17))
+    assert np.all(rec.heading == 0.0)

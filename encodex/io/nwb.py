@@ -25,7 +25,7 @@ from pathlib import Path
 import numpy as np
 
 from encodex.errors import FileFormatError, InputError, OutputError, SettingsError
-from encodex.io.recording import Recording, make_recording
+from encodex.io.recording import Recording, make_recording, wrap_angle
 
 ROLES = ("position", "heading", "units", "trials", "epochs")
 
@@ -408,7 +408,7 @@ def read_nwb(path, drop_empty_units: bool = False, **object_paths) -> Recording:
             near = np.minimum(np.abs(ts - th[j - 1]), np.abs(th[j] - ts))
             step = float(np.median(np.diff(h_ts)))
             un[near > 1.5 * step] = np.nan
-            heading = np.mod(un, 2.0 * np.pi)
+            heading = wrap_angle(un)
             provenance["heading_note"] = "resampled to position timestamps on the circle"
         table = _find_units(nwbfile, object_paths.get("units"), provenance)
         names, trains = _read_spikes(table)

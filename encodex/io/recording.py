@@ -25,6 +25,17 @@ MAX_POSITION_EXTENT_M = 20.0
 _HEADING_LIMIT = 2.0 * np.pi + 1e-6
 
 
+def wrap_angle(angles) -> np.ndarray:
+    """Wrap angles (rad) to [0, 2*pi), NaN kept.
+
+    ``numpy.mod`` alone returns exactly 2*pi for tiny negative inputs (e.g. -1e-17), which
+    would break the half-open interval.
+    """
+    out = np.mod(np.asarray(angles, dtype=float), 2.0 * np.pi)
+    out[out >= 2.0 * np.pi] = 0.0
+    return out
+
+
 def _as_1d_float(name: str, values) -> np.ndarray:
     arr = np.asarray(values, dtype=float)
     if arr.ndim == 2 and 1 in arr.shape:
@@ -172,7 +183,7 @@ class Recording:
                     f"heading ranges over [{finite.min():.4g}, {finite.max():.4g}], beyond "
                     "[-pi, 2*pi]: it looks like degrees; convert with numpy.deg2rad"
                 )
-            heading = np.mod(heading, 2.0 * np.pi)
+            heading = wrap_angle(heading)
         ids = tuple(str(u) for u in self.unit_ids)
         if len(ids) == 0:
             raise InputError("the recording has no units; add spike times of at least one unit")
