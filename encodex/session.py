@@ -206,15 +206,6 @@ def _frozen(a: np.ndarray) -> np.ndarray:
 # --------------------------------------------------------------------------- kernels
 
 
-def _gap_intervals(ts: np.ndarray, ok: np.ndarray) -> np.ndarray:
-    """(t_before, t_after) around every stretch of missing samples between good samples."""
-    good = np.flatnonzero(ok)
-    if good.size < 2:
-        return np.zeros((0, 2))
-    # Consecutive good samples that are not neighbours in the sample list bracket NaN runs.
-    return np.column_stack([ts[good[:-1]], ts[good[1:]]])[np.diff(good) > 1]
-
-
 def _long_gap_mask(ts, ok, centres, max_gap_s, median_dt):
     """Bins whose centres fall inside a tracking gap longer than max_gap_s.
 
@@ -453,6 +444,10 @@ def build_session(
     centres = t0 + (np.arange(n_bins) + 0.5) * bin_size
     pos_raw = recording.position
     ok = np.isfinite(pos_raw[:, 0])
+    if ok.sum() < 2:
+        raise InputError(
+            "position has fewer than 2 finite samples; check the tracking data"
+        )
     median_dt = float(np.median(np.diff(ts)))
 
     # --- position, with gaps

@@ -249,3 +249,24 @@ def test_mislabelled_units_and_empty_units_in_a_file(tmp_path):
     assert "unit 11 has no spikes" in str(exc.value)
     rec = read_nwb(path2, drop_empty_units=True)
     assert rec.unit_ids == ("10",) and rec.provenance["dropped_empty_units"] == "11"
+
+
+def test_trials_named_by_path(tmp_path):
+    from pynwb.epoch import TimeIntervals
+
+    f = _nwbfile()
+    f.add_acquisition(_series("xy", XY, "meters"))
+    _units(f, [[1.0]])
+    runs = TimeIntervals(name="runs", description="running bouts")
+    runs.add_interval(start_time=1.0, stop_time=3.0)
+    runs.add_interval(start_time=4.0, stop_time=6.0)
+    f.add_time_intervals(runs)
+    f.add_trial(start_time=0.0, stop_time=9.0)
+    path = _write(tmp_path / "runs.nwb", f)
+    np.testing.assert_array_equal(read_nwb(path).trials, [[0.0, 9.0]])
+    rec = read_nwb(path, trials="intervals/runs")
+    np.testing.assert_array_equal(rec.trials, [[1.0, 3.0], [4.0, 6.0]])
+    assert rec.provenance["trials"] == "intervals/runs"
+    with pytest.raises(FileFormatError) as exc:
+        read_nwb(path, trials="intervals/laps")
+    assert "runs, trials" in str(exc.value)

@@ -12,7 +12,7 @@ from pathlib import Path
 from encodex.errors import FileFormatError, InputError, SettingsError
 from encodex.io.bundle import read_bundle, write_bundle
 from encodex.io.nwb import read_nwb, write_nwb
-from encodex.io.recording import MAX_POSITION_EXTENT_M, Recording, make_recording
+from encodex.io.recording import MAX_POSITION_EXTENT_M, Recording, make_recording, wrap_angle
 
 __all__ = [
     "MAX_POSITION_EXTENT_M",
@@ -22,6 +22,7 @@ __all__ = [
     "read_nwb",
     "read_recording",
     "write_bundle",
+    "wrap_angle",
     "write_nwb",
 ]
 
