@@ -1,0 +1,502 @@
+"""Population runs: every cell of every environment, in parallel, with checkpoints.
+
+One call from Python (:func:`run_population`) and the ``encodex fit`` command share this code.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import platform
+import time
+from collections.abc import Iterator, Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from encodex.compare.folds import chunked_folds
+from encodex.errors import EncodexError, InputError, SettingsError
+from encodex.population.checkpoint import (
+    atomic_write_text, data_fingerprint, open_checkpoint, read_unit_record,
+    unit_path, write_unit_file,
+)
+from encodex.population.settings import RunSettings, stable_hash
+from encodex.population.work import (
+    PURPOSE_FOLDS, EnvironmentWork, UnitOutcome, analyse_unit, environment_design, stream,
+)
+from encodex.variables import VARIABLES, canonical_order
+
+#: Columns of cells.csv: the contract of DEVELOPERS.md first, then extra columns.
+CELL_COLUMNS = (
+    "unit", "environment", "n_spikes", "mean_rate_hz", "status", "reason", "variables",
+    "bits_per_spike", "p_value", *(f"gain_{v}" for v in VARIABLES), "shuffle_p",
+    "ambiguous_with", "pseudo_r2", "deviance_explained", "selection_path",
+)
+MODEL_COLUMNS = (
+    "unit", "environment", "model", "fold", "n_spikes_test", "loglik_test", "bits_per_spike",
+    "pseudo_r2", "deviance_explained",
+)
+
+LABEL_STATEMENT = (
+    "A label (column 'variables') is a statistical statement about this session's recorded "
+    "behaviour: adding each listed variable improved held-out prediction of the spike counts "
+    "across cross-validation folds (one-sided Wilcoxon signed-rank test at the stated alpha). "
+    "It is not proof that the cell encodes the variable mechanistically: correlated "
+    "behaviour, unmodelled variables or limited sampling can produce or hide a label."
+)
+
+SMOOTHNESS_STATEMENT = (
+    "Smoothing parameters are selected by LAML on the training bins of each fold, separately "
+    "for every model (warm-started from the previous fold's fit of the same model); held-out "
+    "bins are never used to tune them. Response curves come from the chosen model refitted "
+    "on all usable bins of the environment."
+)
+
+FOLD_STATEMENT = (
+    "Each environment's usable bins, in time order, are cut into folds x chunks_per_fold "
+    "contiguous chunks of equal size, dealt to the folds by a permutation drawn from "
+    "(seed, environment); every model of every cell is scored on the same folds. Chunks "
+    "are much longer than the autocorrelation of behaviour and spiking, so held-out bins "
+    "are not near-copies of training bins."
+)
+
+
+class RunInterrupted(KeyboardInterrupt):
+    """Ctrl-C during a run: finished units are saved; ``message`` says how to resume."""
+
+    def __init__(self, message: str):
+        super().__init__(message)
+        self.message = message
+
+
+@dataclass
+class PopulationResult:
+    """Results of a population run.
+
+    Attributes
+    ----------
+    cells : DataFrame
+        One row per unit and environment (columns as ``cells.csv``).
+    models : DataFrame
+        One row per unit, environment, model and fold (columns as ``models.csv``).
+    run : dict
+        Settings, versions, timings and session counts (as ``run.json``).
+    fits : Mapping
+        ``fits[(environment, unit)]`` is the chosen model refitted on all usable bins
+        (:class:`encodex.fit.PoissonFit`, with ``.response(variable)`` for plotting); only
+        cells with status "ok" and a label other than "none" have one. Fits of units read
+        back from a checkpoint are recomputed on first access.
+    out : Path or None
+        Output folder, if any.
+    """
+
+    cells: pd.DataFrame
+    models: pd.DataFrame
+    run: dict
+    fits: Mapping
+    out: Path | None = None
+
+    def label(self, unit: str, environment: str | None = None) -> str:
+        """Label of a unit (in the only environment, or the one named)."""
+        c = self.cells[self.cells["unit"] == str(unit)]
+        if environment is not None:
+            c = c[c["environment"] == str(environment)]
+        if len(c) != 1:
+            raise SettingsError(f"unit {unit!r} has {len(c)} rows; name the environment")
+        return str(c["variables"].iloc[0])
+
+
+class _Fits(Mapping):
+    """Chosen-model fits: those computed in this call, others refitted lazily."""
+
+    def __init__(self, known: dict, envs: dict, session, cells: pd.DataFrame):
+        self._known = dict(known)
+        self._envs = envs
+        self._session = session
+        ok = cells[(cells["status"] == "ok") & (cells["variables"] != "none")
+                   & (cells["variables"] != "")]
+        self._labels = {(e, u): lab for e, u, lab in
+                        zip(ok["environment"], ok["unit"], ok["variables"])}
+
+    def __getitem__(self, key):
+        if key not in self._labels:
+            raise KeyError(f"no fitted model for {key!r}: give (environment, unit) of a cell "
+                           "with status 'ok' and a label other than 'none'")
+        if key not in self._known:
+            from threadpoolctl import threadpool_limits
+
+            from encodex.fit import fit_poisson
+            from encodex.variables import parse_label
+
+            env_name, unit = key
+            env = self._envs[env_name]
+            design = environment_design(env).subset(parse_label(self._labels[key]))
+            y = _env_counts(self._session, env_name, unit, env)
+            with threadpool_limits(limits=1):
+                self._known[key] = fit_poisson(design, y, np.full(env.n_rows,
+                                                                  np.log(env.bin_size)))
+        return self._known[key]
+
+    def __iter__(self):
+        return iter(self._labels)
+
+    def __len__(self):
+        return len(self._labels)
+
+
+# ---------------------------------------------------------------------------------------------
+def _load(input_or_session, settings: RunSettings):
+    from encodex.session import Session
+
+    if isinstance(input_or_session, Session):
+        return input_or_session, "<Session object>"
+    path = Path(input_or_session)
+    if not path.exists():
+        raise InputError(f"input file {path} does not exist; give an .nwb file or an .npz bundle")
+    from encodex.session import load_session
+
+    kw = {} if settings.bin_size is None else {"bin_size": settings.bin_size}
+    return load_session(path, **kw), str(path)
+
+
+def _session_fingerprint(session) -> str:
+    counts = session.counts
+    arrays = [np.asarray(session.time), counts.data, counts.indices, counts.indptr,
+              np.asarray(session.valid), np.asarray(session.environment),
+              np.asarray(session.trial),
+              np.frombuffer("\x00".join(session.unit_ids).encode(), dtype=np.uint8),
+              np.frombuffer("\x00".join(session.environments).encode(), dtype=np.uint8)]
+    for k in sorted(session.covariates):
+        arrays.append(np.asarray(session.covariates[k], dtype=float))
+    return data_fingerprint(arrays) + f"-{session.bin_size:g}"
+
+
+def _environment_work(session, env_name: str, settings: RunSettings,
+                      fingerprint: str) -> tuple[EnvironmentWork, dict]:
+    from encodex.classic import spatial_edges
+
+    k = session.environments.index(env_name)
+    rows = np.flatnonzero(np.asarray(session.valid) & (np.asarray(session.environment) == k))
+    available = session.available_variables(env_name)
+    wanted = settings.variables if settings.variables is not None else VARIABLES
+    variables = canonical_order(v for v in wanted if v in available)
+    info = {
+        "n_bins_used": int(rows.size),
+        "duration_s": float(rows.size * session.bin_size),
+        "variables": list(variables),
+        "unavailable": {v: r for v, r in session.unavailable_variables(env_name).items()
+                        if v in wanted},
+    }
+    cov = {v: np.ascontiguousarray(np.asarray(session.covariates[v])[rows]) for v in
+           set(variables) | ({"position"} & set(session.covariates))}
+    note = ""
+    fold = np.zeros(rows.size, dtype=np.int64)
+    if not variables:
+        note = "no requested variable is available in this environment (see run.json)"
+    elif rows.size < 10 * settings.folds * settings.chunks_per_fold:
+        note = (f"only {rows.size} usable bins in this environment, too few for "
+                f"{settings.folds} folds")
+    else:
+        fold = chunked_folds(rows.size, settings.folds, settings.chunks_per_fold,
+                             stream(settings.seed, env_name, None, PURPOSE_FOLDS)).fold
+    ex = ey = None
+    if "position" in cov and rows.size:
+        pos = cov["position"]
+        if np.isfinite(pos).all(axis=1).any():
+            ex, ey = spatial_edges(pos, settings.ratemap_bin_m)
+    token = stable_hash([fingerprint, env_name, settings.to_dict()])
+    work = EnvironmentWork(env_name, token, cov, variables, float(session.bin_size), fold,
+                           settings.folds, settings.basis_sizes, ex, ey, note)
+    return work, info
+
+
+def _env_counts(session, env_name: str, unit: str, env: EnvironmentWork) -> np.ndarray:
+    k = session.environments.index(env_name)
+    rows = np.flatnonzero(np.asarray(session.valid) & (np.asarray(session.environment) == k))
+    return session.unit_counts(unit)[rows]
+
+
+def _versions() -> dict:
+    import importlib.metadata as md
+
+    out = {"python": platform.python_version()}
+    for pkg in ("encodex", "numpy", "scipy", "scikit-learn", "pandas", "joblib",
+                "threadpoolctl", "dask", "distributed", "pynwb"):
+        try:
+            out[pkg] = md.version(pkg)
+        except md.PackageNotFoundError:
+            out[pkg] = None
+    return out
+
+
+def _execute(tasks: list, jobs: int, cluster: str | None) -> Iterator[UnitOutcome]:
+    """Yield outcomes as they finish, sequentially, with joblib's loky, or on dask."""
+    if cluster is None and jobs == 1:
+        for t in tasks:
+            yield analyse_unit(*t)
+        return
+    from joblib import Parallel, delayed, parallel_config
+
+    calls = (delayed(analyse_unit)(*t) for t in tasks)
+    if cluster is None:
+        with parallel_config(backend="loky", inner_max_num_threads=1):
+            yield from Parallel(n_jobs=jobs, return_as="generator_unordered")(calls)
+        return
+    try:
+        from distributed import Client, LocalCluster
+    except ImportError as exc:  # pragma: no cover - dask is a declared dependency
+        raise SettingsError("--cluster needs dask.distributed; install 'dask[distributed]'") from exc
+    if cluster == "local":
+        lc = LocalCluster(n_workers=jobs, threads_per_worker=1, processes=True,
+                          dashboard_address=None)
+        client = Client(lc)
+    else:
+        lc = None
+        try:
+            client = Client(cluster, timeout="20s")
+        except OSError as exc:
+            raise SettingsError(f"cannot reach the dask scheduler at {cluster} ({exc}); check "
+                                "the address, e.g. tcp://host:8786, or use --cluster local") from exc
+    try:
+        with parallel_config(backend="dask"):
+            yield from Parallel(n_jobs=-1, return_as="generator_unordered")(calls)
+    finally:
+        client.close()
+        if lc is not None:
+            lc.close()
+
+
+def run_population(input_or_session, out: str | Path | None = None, *, jobs: int = 1,
+                   cluster: str | None = None, progress: bool = False,
+                   units=None, **settings) -> PopulationResult:
+    """Decide which variables each cell carries, for every unit and environment.
+
+    Parameters
+    ----------
+    input_or_session : str, Path or encodex.session.Session
+        An NWB file, an npz bundle, or a ready session.
+    out : str or Path, optional
+        Output folder (``cells.csv``, ``models.csv``, ``run.json``, ``units/``). Each finished
+        unit is written at once; calling again with the same settings resumes. None keeps
+        everything in memory.
+    jobs : int
+        Worker processes (joblib loky), or dask workers with ``cluster="local"``. Results do
+        not depend on it.
+    cluster : str, optional
+        Address of a dask scheduler (``tcp://host:8786``) or ``"local"`` for a
+        ``LocalCluster`` of ``jobs`` single-threaded worker processes.
+    progress : bool
+        Show a progress bar (units done, rate, time left) on standard error.
+    units : iterable of str, optional
+        Only these unit ids (default: all).
+    **settings
+        Fields of :class:`RunSettings`: ``variables``, ``folds`` (10), ``seed`` (0),
+        ``alpha`` (0.05), ``exhaustive`` (False), ``shuffles`` (0), ``min_shift_s`` (20 s),
+        ``min_spikes`` (100), ``bin_size`` (s), ``basis_sizes``, ``chunks_per_fold`` (3).
+
+    Returns
+    -------
+    PopulationResult
+        ``.cells``, ``.models`` (pandas DataFrames), ``.run`` (dict) and ``.fits``.
+
+    Raises
+    ------
+    CheckpointMismatchError
+        ``out`` holds results of other settings or another input.
+    RunInterrupted
+        On Ctrl-C; units finished so far are saved and the message says how to resume.
+
+    References
+    ----------
+    Hardcastle, Maheswaranathan, Ganguli & Giocomo (2017), Neuron 94:375 (forward selection of
+    variables by cross-validated log-likelihood of Poisson models).
+    """
+    if isinstance(jobs, bool) or not isinstance(jobs, (int, np.integer)) or jobs < 1:
+        raise SettingsError(f"jobs must be a positive integer (got {jobs!r}); use --jobs 1")
+    if "variables" in settings and isinstance(settings["variables"], str):
+        settings["variables"] = tuple(s.strip() for s in settings["variables"].split(",")
+                                      if s.strip())
+    if "basis_sizes" in settings and isinstance(settings["basis_sizes"], Mapping):
+        settings["basis_sizes"] = tuple(settings["basis_sizes"].items())
+    try:
+        rs = RunSettings(**settings)
+    except TypeError as exc:
+        raise SettingsError(f"unknown setting: {exc}; see help(encodex.run_population)") from None
+    t_start = time.time()
+    session, source = _load(input_or_session, rs)
+    fingerprint = _session_fingerprint(session)
+
+    unit_ids = list(session.unit_ids)
+    if units is not None:
+        wanted = [str(u) for u in units]
+        unknown = [u for u in wanted if u not in unit_ids]
+        if unknown:
+            raise SettingsError(f"unknown unit id(s) {unknown[:5]}; see session.unit_ids")
+        unit_ids = [u for u in unit_ids if u in set(wanted)]
+
+    out_path = Path(out) if out is not None else None
+    resumed = False
+    if out_path is not None:
+        check = {**rs.to_dict(), "units": None if units is None else unit_ids}
+        resumed = open_checkpoint(out_path, check, fingerprint)
+
+    envs: dict[str, EnvironmentWork] = {}
+    env_info: dict[str, dict] = {}
+    for name in session.environments:
+        envs[name], env_info[name] = _environment_work(session, name, rs, fingerprint)
+
+    # Work list in deterministic order; finished units (on disk) are skipped.
+    records: dict[tuple[str, str], dict] = {}
+    tasks = []
+    col_rows = {name: np.flatnonzero(np.asarray(session.valid)
+                                     & (np.asarray(session.environment) == k))
+                for k, name in enumerate(session.environments)}
+    counts = session.counts
+    for name in session.environments:
+        sub = counts[col_rows[name], :]
+        sub = sub.tocsc() if hasattr(sub, "tocsc") else sub
+        for unit in unit_ids:
+            if out_path is not None:
+                rec = read_unit_record(unit_path(out_path, name, unit))
+                if rec is not None:
+                    records[(name, unit)] = rec
+                    continue
+            j = session.unit_index(unit)
+            y = np.asarray(sub[:, [j]].toarray()).ravel().astype(np.int64)
+            tasks.append((envs[name], unit, y, rs))
+
+    n_total = len(session.environments) * len(unit_ids)
+    bar = None
+    if progress:
+        from tqdm import tqdm
+
+        bar = tqdm(total=n_total, initial=n_total - len(tasks), unit="unit", desc="encodex fit",
+                   dynamic_ncols=True)
+    fits: dict = {}
+    seconds = []
+    t_compute = time.time()
+    try:
+        for outcome in _execute(tasks, int(jobs), cluster):
+            key = (outcome.environment, outcome.unit)
+            records[key] = outcome.record
+            seconds.append(outcome.seconds)
+            if outcome.fit is not None:
+                fits[key] = outcome.fit
+            if out_path is not None:
+                write_unit_file(unit_path(out_path, *key), outcome.arrays, outcome.record)
+            if bar is not None:
+                bar.update(1)
+    except KeyboardInterrupt:
+        if bar is not None:
+            bar.close()
+        done = len(records)
+        where = (f"saved in {out_path}; run the same command again to resume"
+                 if out_path is not None else "lost (no output folder was given)")
+        raise RunInterrupted(f"interrupted: {done} of {n_total} cells finished and {where}") \
+            from None
+    if bar is not None:
+        bar.close()
+
+    cells, models = _tables(records, session.environments, unit_ids)
+    run = {
+        "format": "encodex-fit-output/1",
+        "statement": LABEL_STATEMENT,
+        "input": source,
+        "data_fingerprint": fingerprint,
+        "settings": rs.to_dict(),
+        "execution": {"jobs": int(jobs), "cluster": cluster, "resumed": resumed,
+                      "units_computed": len(tasks), "units_from_checkpoint": n_total - len(tasks)},
+        "versions": _versions(),
+        "timings": {
+            "started_utc": _dt.datetime.fromtimestamp(t_start, _dt.timezone.utc).isoformat(),
+            "finished_utc": _dt.datetime.now(_dt.timezone.utc).isoformat(),
+            "seconds_total": round(time.time() - t_start, 3),
+            "seconds_computing": round(time.time() - t_compute, 3),
+            "seconds_per_cell_median": float(np.median(seconds)) if seconds else None,
+            "cpu_seconds_cells": round(float(np.sum(seconds)), 3),
+        },
+        "methods": {"folds": FOLD_STATEMENT, "smoothness": SMOOTHNESS_STATEMENT,
+                    "selection": ("forward selection from the mean-rate model; a variable is "
+                                  "kept if it improves held-out bits per spike across folds by "
+                                  f"a one-sided Wilcoxon signed-rank test at alpha={rs.alpha}"
+                                  + ("; every subset scored (exhaustive)"
+                                     if rs.exhaustive else ""))},
+        "session": {
+            "bin_size_s": float(session.bin_size),
+            "n_bins": int(session.n_bins),
+            "n_units": int(session.n_units),
+            "environments": list(session.environments),
+            "masked_bins": _plain(session.summary.get("masked_bins", {})),
+            "dropped_spikes": _plain(session.summary.get("dropped_spikes", 0)),
+            "summary": _plain(dict(session.summary)),
+        },
+        "environments": env_info,
+        "counts": {"cells": int(len(cells)),
+                   "by_status": {str(k): int(v) for k, v in
+                                 cells["status"].value_counts().sort_index().items()}},
+    }
+    if out_path is not None:
+        _write_tables(out_path, cells, models, run)
+    return PopulationResult(cells, models, run, _Fits(fits, envs, session, cells), out_path)
+
+
+def _plain(obj):
+    """JSON-ready copy (numpy scalars and arrays to Python)."""
+    return json.loads(json.dumps(obj, default=lambda o: o.tolist() if hasattr(o, "tolist")
+                                 else str(o)))
+
+
+def _tables(records: dict, environments, unit_ids) -> tuple[pd.DataFrame, pd.DataFrame]:
+    cell_rows, model_rows = [], []
+    for env in environments:
+        for unit in unit_ids:
+            rec = records.get((env, unit))
+            if rec is None:
+                continue
+            cell_rows.append(rec["cell"])
+            for r in rec["models"]:
+                model_rows.append({"unit": unit, "environment": env, **r})
+    cells = pd.DataFrame(cell_rows, columns=list(CELL_COLUMNS))
+    models = pd.DataFrame(model_rows, columns=list(MODEL_COLUMNS))
+    for df in (cells, models):
+        df["unit"] = df["unit"].astype(str)
+        df["environment"] = df["environment"].astype(str)
+    return cells, models
+
+
+README = """encodex fit output
+==================
+
+cells.csv   one row per unit and environment:
+  unit, environment, n_spikes, mean_rate_hz (spikes / usable time, Hz),
+  status ("ok" = labelled; otherwise "too few spikes", "no variables", "too few bins",
+          "error") and reason,
+  variables (the label: variables carried, in canonical order joined by "+", "none" when
+             none; empty when the cell was not labelled),
+  bits_per_spike (held-out log-likelihood gain of the chosen model over the mean-rate
+                  model, all held-out bins pooled, per held-out spike),
+  p_value (one-sided Wilcoxon signed-rank p of the chosen model against the mean-rate model
+           across folds; for "none", that of the best single-variable model),
+  gain_<variable> (held-out bits per spike that the variable adds to the chosen model, or
+                   that removing it costs when it is in the model; NaN if not analysed),
+  shuffle_p (empirical p of the held-out gain against circular shifts; NaN when off),
+  ambiguous_with (other models with as many variables that the chosen one does not beat
+                  significantly, ";"-separated),
+  pseudo_r2 (McFadden, held-out), deviance_explained (held-out), selection_path.
+models.csv  one row per unit, environment, model (label) and fold, with held-out scores.
+run.json    settings, package versions, timings, masked bins and dropped spikes.
+units/<environment>/<unit>.npz   response curves of the chosen model and the occupancy map.
+
+What a label means
+------------------
+{statement}
+"""
+
+
+def _write_tables(out: Path, cells: pd.DataFrame, models: pd.DataFrame, run: dict) -> None:
+    atomic_write_text(out / "cells.csv", cells.to_csv(index=False, float_format="%.10g"))
+    atomic_write_text(out / "models.csv", models.to_csv(index=False, float_format="%.10g"))
+    atomic_write_text(out / "run.json", json.dumps(_plain(run), indent=2, allow_nan=True))
+    atomic_write_text(out / "README.txt", README.format(statement=LABEL_STATEMENT))

@@ -1,0 +1,161 @@
+"""Folds, held-out scores and the selection rule (no model fitting involved)."""
+
+import numpy as np
+import pytest
+
+from encodex.compare.folds import chunked_folds
+from encodex.compare.scores import heldout_score, mean_rate_counts, poisson_loglik
+from encodex.compare.selection import improvement_p, select_variables
+from encodex.errors import SettingsError
+
+
+def test_folds_are_contiguous_chunks_balanced_and_seeded():
+    f = chunked_folds(1000, k=10, chunks_per_fold=3, rng=7)
+    assert f.fold.shape == (1000,)
+    sizes = np.bincount(f.fold, minlength=10)
+    assert sizes.min() >= 99 and sizes.max() <= 101
+    # 30 chunks -> at most 29 changes of fold along time.
+    changes = np.count_nonzero(np.diff(f.fold))
+    assert changes <= 29 and changes >= 10
+    # Same seed, same folds; other seed, other folds.
+    assert np.array_equal(f.fold, chunked_folds(1000, 10, 3, rng=7).fold)
+    assert not np.array_equal(f.fold, chunked_folds(1000, 10, 3, rng=8).fold)
+    splits = f.splits()
+    assert len(splits) == 10
+    for i, (tr, te) in enumerate(splits):
+        assert np.array_equal(te, f.test_rows(i))
+        assert np.array_equal(tr, f.train_rows(i))
+        assert len(tr) + len(te) == 1000
+
+
+def test_folds_reject_bad_settings():
+    with pytest.raises(SettingsError, match="folds"):
+        chunked_folds(100, k=1)
+    with pytest.raises(SettingsError, match="usable bins"):
+        chunked_folds(20, k=10, chunks_per_fold=3)
+
+
+def test_scores_of_true_and_mean_models():
+    rng = np.random.default_rng(0)
+    rate = np.where(np.arange(4000) % 400 < 200, 0.5, 0.02)
+    y = rng.poisson(rate)
+    off = np.zeros_like(rate)
+    mu0 = mean_rate_counts(y, off, off)
+    assert np.allclose(mu0, y.mean())
+    s_true = heldout_score(y, rate, mu0)
+    s_mean = heldout_score(y, mu0, mu0)
+    assert s_mean.bits_per_spike == 0.0 and s_mean.deviance_explained == 0.0
+    assert s_true.bits_per_spike > 0.5
+    assert 0 < s_true.pseudo_r2 < 1 and 0 < s_true.deviance_explained < 1
+    # bits/spike by hand: (LL - LL0) / (n ln 2)
+    manual = (np.sum(y * np.log(rate) - rate) - np.sum(y * np.log(mu0) - mu0)) / (
+        y.sum() * np.log(2)
+    )
+    assert s_true.bits_per_spike == pytest.approx(manual, rel=1e-12)
+
+
+def test_loglik_matches_scipy_poisson():
+    # Source: scipy.stats.poisson.logpmf
+    from scipy.stats import poisson
+
+    y = np.array([0, 1, 3, 7])
+    mu = np.array([0.2, 1.5, 2.0, 6.0])
+    assert poisson_loglik(y, mu) == pytest.approx(poisson.logpmf(y, mu).sum(), rel=1e-12)
+
+
+def test_improvement_p_one_sided():
+    better = np.array([0.1, 0.2, 0.15, 0.3, 0.05, 0.12, 0.2, 0.1, 0.25, 0.3])
+    zero = np.zeros(10)
+    assert improvement_p(better, zero) == pytest.approx(2.0**-10)
+    assert improvement_p(zero, better) == pytest.approx(1.0)
+    assert improvement_p(zero, zero) == 1.0
+
+
+def _scorer(table):
+    calls = []
+
+    def score(model):
+        calls.append(model)
+        return np.asarray(table.get(model, np.full(10, -0.01)))
+
+    return score, calls
+
+
+def _up(x):
+    # Positive per-fold improvements with distinct values (all folds agree).
+    return x + np.linspace(0.001, 0.01, 10)
+
+
+def test_forward_selection_picks_two_variables_and_stops():
+    z = np.zeros(10)
+    table = {
+        (): z,
+        ("position",): _up(0.30 + z),
+        ("speed",): _up(0.05 + z),
+        ("heading",): _up(0.01 + z),
+        ("position", "speed"): _up(0.36 + z),
+        ("position", "heading"): _up(0.30 + z) - 0.0005,
+        ("position", "heading", "speed"): _up(0.36 + z) - 0.001,
+    }
+    score, calls = _scorer(table)
+    sel = select_variables(["speed", "heading", "position"], score, alpha=0.05)
+    assert sel.chosen == ("position", "speed")
+    assert sel.label == "position+speed"
+    assert [s.accepted for s in sel.steps] == [True, True, False]
+    assert sel.steps[0].best == ("position",)
+    assert sel.gains["speed"] == pytest.approx(0.06, abs=1e-9)
+    assert sel.gains["heading"] < 0
+    # no model scored twice
+    assert len(calls) == len(set(calls))
+    assert sel.p_value == pytest.approx(2.0**-10)
+
+
+def test_selection_none_when_nothing_beats_mean_rate():
+    rng = np.random.default_rng(3)
+    table = {(): np.zeros(10)}
+    for v in ("position", "heading"):
+        table[(v,)] = rng.normal(-0.001, 0.002, 10)
+    score, _ = _scorer(table)
+    sel = select_variables(["position", "heading"], score)
+    assert sel.chosen == () and sel.label == "none"
+    assert sel.p_value >= 0.05
+    assert sel.ambiguous_with == ()
+
+
+def test_exhaustive_scores_lattice_and_agrees_with_forward():
+    rng = np.random.default_rng(5)
+    vars_ = ("position", "heading", "speed")
+    table = {(): np.zeros(10)}
+    import itertools
+
+    for r in (1, 2, 3):
+        for sub in itertools.combinations(vars_, r):
+            base = 0.2 * ("position" in sub) + 0.05 * ("speed" in sub) - 0.01 * len(sub)
+            table[sub] = base + rng.normal(0, 0.005, 10)
+    s1, c1 = _scorer(table)
+    s2, c2 = _scorer(table)
+    fwd = select_variables(vars_, s1)
+    exh = select_variables(vars_, s2, exhaustive=True)
+    assert fwd.chosen == exh.chosen == ("position", "speed")
+    assert len(c2) == 8 and len(c1) < 8
+    assert set(exh.scores) == set(table)
+
+
+def test_ambiguous_when_two_candidates_tie():
+    z = np.zeros(10)
+    table = {
+        (): z,
+        ("distance",): _up(0.2 + z),
+        ("time",): _up(0.2 + z) - 0.0001 * np.array([1, -1] * 5),
+        ("distance", "time"): _up(0.2 + z) - 0.002,
+    }
+    score, _ = _scorer(table)
+    sel = select_variables(["distance", "time"], score)
+    assert len(sel.chosen) == 1
+    other = "time" if sel.chosen == ("distance",) else "distance"
+    assert sel.ambiguous_with == (other,)
+
+
+def test_bad_alpha():
+    with pytest.raises(SettingsError, match="alpha"):
+        select_variables(["position"], lambda m: np.zeros(5), alpha=1.5)
