@@ -1,0 +1,151 @@
+"""Population runs: output folder contract, determinism across jobs, checkpoints, dask."""
+
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from encodex.errors import CheckpointMismatchError, SettingsError
+from encodex.population import CELL_COLUMNS, MODEL_COLUMNS, RunInterrupted, run_population
+from encodex.population import run as run_module
+from encodex.session import build_session
+from encodex.simulate import simulate_recording
+
+# Small and fast: two environments, six cells, 0.1 s bins, two variables, 5 folds.
+SETTINGS = dict(variables=("heading", "speed"), folds=5, chunks_per_fold=2, seed=3)
+
+
+@pytest.fixture(scope="module")
+def session():
+    rec, truth = simulate_recording(seed=11, n_cells=6, duration_s=240.0,
+                                    environments=("arena", "annex"))
+    return build_session(rec, bin_size=0.1)
+
+
+@pytest.fixture(scope="module")
+def first_run(session, tmp_path_factory):
+    out = tmp_path_factory.mktemp("run") / "out"
+    return run_population(session, out, jobs=1, **SETTINGS)
+
+
+def test_output_folder_contract(first_run, session):
+    out = first_run.out
+    cells = pd.read_csv(out / "cells.csv", dtype={"unit": str, "environment": str})
+    models = pd.read_csv(out / "models.csv", dtype={"unit": str, "environment": str})
+    assert tuple(cells.columns[:16]) == CELL_COLUMNS[:16]
+    assert tuple(models.columns) == MODEL_COLUMNS
+    assert len(cells) == 2 * session.n_units
+    # one row per unit and environment, in session order
+    assert list(cells["environment"]) == ["arena"] * 6 + ["annex"] * 6
+    assert list(cells["unit"]) == list(session.unit_ids) * 2
+    ok = cells[cells["status"] == "ok"]
+    assert set(ok["variables"]) <= {"none", "heading", "speed", "heading+speed"}
+    # every model x fold kept; the chosen model's pooled score appears in cells.csv
+    for (_, c) in ok.iterrows():
+        m = models[(models["unit"] == c["unit"]) & (models["environment"] == c["environment"])]
+        assert set(m["fold"]) == set(range(5))
+        assert "none" in set(m["model"]) and c["variables"] in set(m["model"])
+        assert len(m) == 5 * m["model"].nunique()
+    # non-labelled cells still have a row with a reason
+    for (_, c) in cells[cells["status"] != "ok"].iterrows():
+        assert c["reason"]
+    run = json.loads((out / "run.json").read_text())
+    assert "not proof" in run["statement"]
+    assert run["settings"]["folds"] == 5 and run["settings"]["seed"] == 3
+    assert run["versions"]["numpy"] == np.__version__
+    assert "masked_bins" in run["session"] and "dropped_spikes" in run["session"]
+    assert "not proof" in (out / "README.txt").read_text()
+    # unit files: plain arrays only, response curves of the chosen model, occupancy map
+    for (_, c) in ok.iterrows():
+        f = out / "units" / c["environment"] / f"{c['unit']}.npz"
+        with np.load(f, allow_pickle=False) as z:
+            keys = set(z.files)
+            assert {"ratemap__occupancy_s", "ratemap__spikes", "ratemap__edges_x",
+                    "ratemap__edges_y"} <= keys
+            assert z["ratemap__spikes"].sum() <= c["n_spikes"]
+            for v in c["variables"].split("+") if c["variables"] != "none" else []:
+                assert z[f"{v}__log_gain"].shape == z[f"{v}__grid"].shape == z[f"{v}__se"].shape
+
+
+def test_python_result_matches_files(first_run):
+    cells = pd.read_csv(first_run.out / "cells.csv", dtype={"unit": str, "environment": str},
+                        keep_default_na=False, na_values=[""])
+    assert list(cells["unit"]) == list(first_run.cells["unit"])
+    assert np.allclose(cells["bits_per_spike"].astype(float),
+                       first_run.cells["bits_per_spike"].astype(float), equal_nan=True)
+    labelled = [k for k in first_run.fits]
+    for key in labelled:
+        fit = first_run.fits[key]
+        env, unit = key
+        lab = first_run.label(unit, env)
+        assert set(fit.names) == set(lab.split("+"))
+
+
+def test_results_identical_whatever_jobs(first_run, session, tmp_path):
+    other = run_population(session, tmp_path / "j2", jobs=2, **SETTINGS)
+    a = (first_run.out / "cells.csv").read_text()
+    b = (other.out / "cells.csv").read_text()
+    assert a == b
+    assert (first_run.out / "models.csv").read_text() == (other.out / "models.csv").read_text()
+
+
+def test_resume_skips_finished_units_and_refuses_other_settings(first_run, session, tmp_path):
+    import shutil
+
+    out = tmp_path / "copy"
+    shutil.copytree(first_run.out, out)
+    (out / "units" / "annex" / "c002.npz").unlink()
+    (out / "cells.csv").unlink()
+    again = run_population(session, out, jobs=1, **SETTINGS)
+    assert again.run["execution"]["units_computed"] == 1
+    assert again.run["execution"]["units_from_checkpoint"] == 11
+    assert (out / "cells.csv").read_text() == (first_run.out / "cells.csv").read_text()
+    with pytest.raises(CheckpointMismatchError, match="folds: 5 -> 4"):
+        run_population(session, out, jobs=1, **{**SETTINGS, "folds": 4})
+    other = session.replace(counts=session.counts * 2)
+    with pytest.raises(CheckpointMismatchError, match="different input"):
+        run_population(other, out, jobs=1, **SETTINGS)
+
+
+def test_interrupt_saves_finished_units_and_says_how_to_resume(session, tmp_path, monkeypatch):
+    real = run_module.analyse_unit
+    calls = {"n": 0}
+
+    def flaky(*a, **k):
+        calls["n"] += 1
+        if calls["n"] == 3:
+            raise KeyboardInterrupt
+        return real(*a, **k)
+
+    monkeypatch.setattr(run_module, "analyse_unit", flaky)
+    out = tmp_path / "int"
+    with pytest.raises(RunInterrupted, match="run the same command again to resume") as e:
+        run_population(session, out, jobs=1, **SETTINGS)
+    assert "2 of 12" in e.value.message
+    assert len(list((out / "units").rglob("*.npz"))) == 2
+    monkeypatch.setattr(run_module, "analyse_unit", real)
+    done = run_population(session, out, jobs=1, **SETTINGS)
+    assert done.run["execution"]["units_computed"] == 10
+
+
+def test_too_few_spikes_never_labelled(session):
+    r = run_population(session, None, min_spikes=10**6, **SETTINGS)
+    assert set(r.cells["status"]) == {"too few spikes"}
+    assert set(r.cells["variables"]) == {""}
+    assert r.models.empty and len(r.fits) == 0
+
+
+def test_bad_settings_are_one_line_errors(session):
+    with pytest.raises(SettingsError, match="unknown variable"):
+        run_population(session, None, variables=("place",))
+    with pytest.raises(SettingsError, match="jobs"):
+        run_population(session, None, jobs=0)
+    with pytest.raises(SettingsError, match="unknown setting"):
+        run_population(session, None, fold=3)
+
+
+def test_dask_local_cluster_gives_same_results(first_run, session):
+    r = run_population(session, None, jobs=2, cluster="local", **SETTINGS)
+    pd.testing.assert_frame_equal(r.cells, first_run.cells)
+    pd.testing.assert_frame_equal(r.models, first_run.models)
