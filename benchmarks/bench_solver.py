@@ -174,6 +174,7 @@ def run(args) -> dict:
     repeats = args.repeats or (1 if args.quick else 5)
     laml_repeats = 1 if args.quick else 3
     wall0 = time.perf_counter()
+    load0 = os.getloadavg()[0]
     with threadpool_limits(limits=1):
         threads = sorted({(i["user_api"], i["num_threads"]) for i in threadpool_info()})
         problem = _peers.make_problem(duration, seed=args.seed)
@@ -183,12 +184,10 @@ def run(args) -> dict:
         t_laml, t_laml_all, laml_fit = timed(lambda: fit_poisson(d, y, off), laml_repeats)
         lam = np.asarray(laml_fit.lambdas, dtype=float)
 
-        # 2. encodex at fixed smoothing: default and tighter stopping rule.
+        # 2. encodex at fixed smoothing (default and tighter stopping rule), before the peers'
+        # dense design exists, so that the process high-water mark is encodex's alone.
         tight = FitOptions(newton=NewtonOptions(tol=TIGHT_TOL))
         fit_enc = fit_poisson(d, y, off, lambdas=lam)  # warm-up (cached design layout)
-        t_enc, t_enc_all, fit_enc = timed(lambda: fit_poisson(d, y, off, lambdas=lam), repeats)
-        t_tight, t_tight_all, fit_tight = timed(
-            lambda: fit_poisson(d, y, off, lambdas=lam, options=tight), repeats)
         mem_enc = traced_peak_mb(lambda: fit_poisson(d, y, off, lambdas=lam))
         rss_after_encodex = maxrss_mb()
         shares = profile_shares(lambda: fit_poisson(d, y, off, lambdas=lam))
@@ -201,18 +200,35 @@ def run(args) -> dict:
         theta0 = _peers.start_theta(y, off, A.shape[1])
         ref = fit_enc.theta
         f_ref = _peers.objective(A, y, off, S, ref)
-        peers = {
+        solvers = {
+            "encodex": lambda: fit_poisson(d, y, off, lambdas=lam),
+            "encodex_tight": lambda: fit_poisson(d, y, off, lambdas=lam, options=tight),
             "statsmodels": lambda: _peers.fit_statsmodels(A, y, off, S, theta0),
             "glum": lambda: _peers.fit_glum(A, y, off, S),
         }
+        peers = ("statsmodels", "glum")
+        for name in peers:
+            solvers[name]()  # warm-up: imports and first-call caches are not timed
+        # Repeats are interleaved across solvers so that a change in machine load during the
+        # run affects every solver alike.
+        times = {name: [] for name in solvers}
+        last = {}
+        for _ in range(repeats):
+            for name, fn in solvers.items():
+                t0 = time.perf_counter()
+                last[name] = fn()
+                times[name].append(time.perf_counter() - t0)
+        med = {name: statistics.median(v) for name, v in times.items()}
+        t_enc, t_enc_all, fit_enc = med["encodex"], times["encodex"], last["encodex"]
+        t_tight, t_tight_all, fit_tight = (med["encodex_tight"], times["encodex_tight"],
+                                           last["encodex_tight"])
         results, thetas = {}, {}
-        for name, fn in peers.items():
-            fn()  # warm-up: imports and first-call caches are not timed
-            t, t_all, (theta, n_iter) = timed(fn, repeats)
+        for name in peers:
+            theta, n_iter = last[name]
             thetas[name] = theta
-            results[name] = {"seconds": t, "seconds_all": t_all, "n_iter": n_iter,
-                             "ratio_to_encodex": t / t_enc,
-                             "peak_traced_mb": traced_peak_mb(fn),
+            results[name] = {"seconds": med[name], "seconds_all": times[name], "n_iter": n_iter,
+                             "ratio_to_encodex": med[name] / t_enc,
+                             "peak_traced_mb": traced_peak_mb(solvers[name]),
                              **compare(theta, ref, A, y, off, S, f_ref)}
         enc_tight = compare(fit_tight.theta, ref, A, y, off, S, f_ref)
         # Agreement of the peers with encodex's tight solution: tells a gap due to encodex's
@@ -227,7 +243,7 @@ def run(args) -> dict:
         "date_utc": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "command": " ".join([Path(sys.executable).name, *sys.argv]),
         "quick": bool(args.quick),
-        "machine": machine(),
+        "machine": {**machine(), "loadavg_1min_start": load0},
         "versions": versions(),
         "threads": [list(t) for t in threads],
         "problem": {"n_bins": problem.n_bins, "bin_size_s": _peers.BIN_SIZE,
@@ -281,7 +297,9 @@ def table(res: dict) -> str:
                      r["max_abs_gradient"], r["n_iter"], r["peak_traced_mb"]))
     lines = [
         f"{p['n_bins']} bins x {p['n_coef']} coefficients, unit {p['unit']} "
-        f"({p['n_spikes']} spikes), {res['repeats']} repeat(s), 1 BLAS/OpenMP thread",
+        f"({p['n_spikes']} spikes), {res['repeats']} repeat(s), 1 BLAS/OpenMP thread; "
+        f"load average {res['machine']['loadavg_1min_start']:.1f} at start, "
+        f"{res['machine']['loadavg_1min']:.1f} at end on {res['machine']['nproc']} CPUs",
         "",
         "| solver | s per fit (median) | peer / encodex | max rel. coef. diff vs encodex "
         "| max abs gradient of f | iterations | peak traced MB |",
