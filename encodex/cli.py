@@ -157,15 +157,11 @@ def main(argv=None) -> int:
     """Entry point; returns the exit code (0 ok, 2 bad input or option, 130 interrupted)."""
     parser = build_parser()
     args = parser.parse_args(argv)
-    from encodex.population import RunInterrupted
-
     try:
         return int(args.func(args) or 0)
-    except RunInterrupted as exc:
-        print(f"encodex: {exc.message}", file=sys.stderr)
-        return 130
-    except KeyboardInterrupt:
-        print("encodex: interrupted", file=sys.stderr)
+    except KeyboardInterrupt as exc:
+        # encodex.population.RunInterrupted carries how to resume; a bare Ctrl-C does not.
+        print(f"encodex: {getattr(exc, 'message', 'interrupted')}", file=sys.stderr)
         return 130
     except EncodexError as exc:
         print(f"encodex: error: {' '.join(str(exc).split())}", file=sys.stderr)

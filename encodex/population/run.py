@@ -414,7 +414,7 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
             "finished_utc": _dt.datetime.now(_dt.timezone.utc).isoformat(),
             "seconds_total": round(time.time() - t_start, 3),
             "seconds_computing": round(time.time() - t_compute, 3),
-            "seconds_per_cell_median": float(np.median(seconds)) if seconds else None,
+            "cpu_seconds_per_cell_median": float(np.median(seconds)) if seconds else None,
             "cpu_seconds_cells": round(float(np.sum(seconds)), 3),
         },
         "methods": {"folds": FOLD_STATEMENT, "smoothness": SMOOTHNESS_STATEMENT,
