@@ -198,13 +198,14 @@ def run(args) -> dict:
         R = _peers.penalty_root(S)
         root_err = float(np.max(np.abs(R.T @ R - S)) / np.max(np.abs(S)))
         theta0 = _peers.start_theta(y, off, A.shape[1])
+        X_glum = _peers.glum_design(A)
         ref = fit_enc.theta
         f_ref = _peers.objective(A, y, off, S, ref)
         solvers = {
             "encodex": lambda: fit_poisson(d, y, off, lambdas=lam),
             "encodex_tight": lambda: fit_poisson(d, y, off, lambdas=lam, options=tight),
             "statsmodels": lambda: _peers.fit_statsmodels(A, y, off, S, theta0),
-            "glum": lambda: _peers.fit_glum(A, y, off, S),
+            "glum": lambda: _peers.fit_glum(X_glum, y, off, S),
         }
         peers = ("statsmodels", "glum")
         for name in peers:
