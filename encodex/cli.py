@@ -144,12 +144,9 @@ def build_parser() -> argparse.ArgumentParser:
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     sub.required = True
     add_fit_command(sub)
-    try:
-        from encodex.report.commands import register_report_commands
-    except ImportError:  # report stage not installed yet
-        register_report_commands = None
-    if register_report_commands is not None:
-        register_report_commands(sub)
+    from encodex.report.commands import register_report_commands
+
+    register_report_commands(sub)
     return parser
 
 
