@@ -69,6 +69,13 @@ def _img(fig, alt: str) -> str:
     return f"<img class='fig' alt='{html.escape(alt)}' src='data:image/png;base64,{data}'>"
 
 
+def _bin_size(run: dict):
+    b = setting(run, "bin_size")
+    if b is None and isinstance(run.get("session"), dict):
+        b = run["session"].get("bin_size_s")
+    return "?" if b is None else f"{b:g}"
+
+
 def _pairs(envs: tuple[str, ...], between) -> list[tuple[str, str]]:
     if between:
         a, b = between
@@ -142,7 +149,7 @@ def render_report(run: RunFolder, between=None, max_cells: int = 30,
         f"<p>{n_units} units in {len(envs)} environment(s): "
         f"{html.escape(', '.join(envs))}. Significance level alpha = {alpha:g}; "
         f"{setting(run.run, 'folds', '?')}-fold cross-validation; time bins of "
-        f"{setting(run.run, 'bin_size', '?')} s.</p>",
+        f"{_bin_size(run.run)} s.</p>",
         _table(pd.DataFrame(summary_rows)), "</section>",
         "<section id='tables'><h2>Tables</h2>",
         "<h3>Cells per label</h3>",

@@ -73,6 +73,9 @@ def methods_paragraph(run: dict, with_references: bool = True) -> str:
     """
     get = lambda k, d=None: setting(run, k, d)  # noqa: E731
     bin_size = get("bin_size")
+    if bin_size is None and isinstance(run.get("session"), dict):
+        # the reader's default width is recorded with the session, not in the settings
+        bin_size = run["session"].get("bin_size_s")
     folds = get("folds")
     chunks = get("chunks_per_fold")
     alpha = get("alpha", 0.05)
