@@ -25,6 +25,7 @@ from dataclasses import dataclass
 from functools import cached_property
 
 import numpy as np
+from scipy import sparse
 from scipy.linalg.blas import dsyrk
 
 from encodex.errors import InputError
@@ -147,27 +148,26 @@ class Design:
         return self.Z @ theta
 
     # --- products with the design -------------------------------------------------------
+    @cached_property
+    def _csr(self):
+        """The design (with intercept) as a CSR matrix: its products run in compiled loops."""
+        vals, cols = self._row_layout
+        n, q = vals.shape
+        return sparse.csr_array((vals.ravel(), cols.ravel().astype(np.int32),
+                                 np.arange(0, n * q + 1, q, dtype=np.int64)),
+                                shape=(n, self.n_beta))
+
     def linear_predictor(self, theta: np.ndarray, rows: np.ndarray | None = None) -> np.ndarray:
         """``X beta`` (without offset) on all rows or on ``rows`` (index array)."""
         beta = self.beta(theta)
-        eta = np.full(self.n_rows if rows is None else len(rows), beta[0])
-        for t in self.terms:
-            b = beta[self.beta_slices[t.name]]
-            vals, cols = t.block.values, t.block.columns
-            if rows is not None:
-                vals, cols = vals[rows], cols[rows]
-            eta += np.einsum("ij,ij->i", vals, b[cols])
-        return eta
+        if rows is None:
+            return self._csr @ beta
+        vals, cols = self._row_layout
+        return np.einsum("ij,ij->i", vals[rows], beta[cols[rows]])
 
     def transpose_dot(self, r: np.ndarray) -> np.ndarray:
         """``Z' X' r`` for a vector ``r`` over all rows (zeros exclude rows)."""
-        out = np.empty(self.n_theta)
-        out[0] = r.sum()
-        for t in self.terms:
-            xr = np.bincount(t.block.columns.ravel(), weights=(t.block.values * r[:, None]).ravel(),
-                             minlength=t.n_beta)
-            out[self.theta_slices[t.name]] = t.Z.T @ xr
-        return out
+        return self.Z.T @ (self._csr.T @ r)
 
     @cached_property
     def _row_layout(self) -> tuple[np.ndarray, np.ndarray]:
@@ -180,14 +180,27 @@ class Design:
             cols.append(t.block.columns + np.int32(self.beta_slices[t.name].start))
         return np.hstack(vals), np.hstack(cols).astype(np.intp)
 
+    @cached_property
+    def _local_term(self) -> Term | None:
+        """The term worth handling by row groups: the widest, if much wider than its support."""
+        if not self.terms:
+            return None
+        widest = max(self.terms, key=lambda t: t.n_beta)
+        q = widest.block.values.shape[1]
+        return widest if widest.n_beta >= 3 * q else None
+
+    def _gram_plan(self, groups: np.ndarray | None) -> "_GramPlan":
+        key = None if groups is None else hash(np.asarray(groups).tobytes())
+        cache = self.__dict__.setdefault("_gram_plans", {})
+        if key not in cache:
+            if len(cache) > 4:
+                cache.clear()
+            cache[key] = _GramPlan.build(self, groups)
+        return cache[key]
+
     def weighted_gram(self, w: np.ndarray, groups: np.ndarray | None = None,
                       n_groups: int | None = None) -> np.ndarray:
         """``Z' X' diag(w) X Z`` for non-negative weights ``w`` over all rows.
-
-        The product is accumulated over dense chunks of :data:`GRAM_CHUNK_ROWS` rows, each
-        filled from the non-zeros of its rows and added with the BLAS symmetric rank-k
-        update, so memory stays at one chunk whatever the number of bins. Rows with zero
-        weight contribute nothing.
 
         Parameters
         ----------
@@ -196,30 +209,33 @@ class Design:
         groups : ndarray of int, shape (n_rows,), optional
             Group of each row (e.g. its cross-validation fold; negative = left out). When
             given, one matrix per group is returned, shape (n_groups, n_theta, n_theta), at the
-            cost of a single pass over the rows; groups should come in contiguous runs.
+            cost of a single pass over the rows.
         n_groups : int, optional
             Number of groups (default ``groups.max() + 1``).
+
+        Notes
+        -----
+        Only the products of non-zeros that can meet are formed. Rows are grouped (once per
+        design, cached) by the support of the widest term, e.g. the 4 x 4 position functions
+        that are non-zero in a bin: within a group that term occupies the same 16 columns, so
+        each group's rows form a narrow dense matrix ``[1 | 16 local | other terms]`` (57
+        instead of 141 columns for the default five-variable design, a sixth of the
+        multiply-adds). Each group is accumulated in chunks of :data:`GRAM_CHUNK_ROWS` rows
+        with the BLAS symmetric rank-k update and added into its place in ``X' W X``; memory
+        stays at one chunk whatever the number of bins.
         """
-        vals, cols = self._row_layout
+        plan = self._gram_plan(groups)
+        n_out = 1 if groups is None else (int(np.max(groups)) + 1 if n_groups is None
+                                          else int(n_groups))
         p = self.n_beta
-        n = self.n_rows
-        if groups is None:
-            run_starts, run_groups = np.array([0]), np.array([0])
-            n_out = 1
-        else:
-            groups = np.asarray(groups)
-            run_starts = np.concatenate([[0], np.flatnonzero(np.diff(groups)) + 1])
-            run_groups = groups[run_starts]
-            n_out = int(groups.max()) + 1 if n_groups is None else int(n_groups)
-        run_stops = np.append(run_starts[1:], n)
-        out = np.zeros((n_out, p, p), order="C")
-        sw = np.sqrt(w)
-        chunk = np.zeros((GRAM_CHUNK_ROWS, p))
-        base = (np.arange(GRAM_CHUNK_ROWS) * p)[:, None]
-        for r0, r1, gid in zip(run_starts, run_stops, run_groups):
-            if gid < 0:
-                continue
-            g = np.zeros((p, p), order="F")
+        out = np.zeros((n_out, p, p))
+        sw = np.sqrt(np.asarray(w, dtype=float)[plan.order])
+        width = plan.width
+        chunk = np.zeros((GRAM_CHUNK_ROWS, width))
+        base = (np.arange(GRAM_CHUNK_ROWS) * width)[:, None]
+        for r0, r1, gid, cols in zip(plan.starts, plan.stops, plan.group_ids, plan.columns):
+            g = np.zeros((width, width), order="F")
+            used = False
             for start in range(r0, r1, GRAM_CHUNK_ROWS):
                 stop = min(start + GRAM_CHUNK_ROWS, r1)
                 m = stop - start
@@ -227,11 +243,13 @@ class Design:
                     continue
                 c = chunk[:m]
                 c.fill(0.0)
-                c.reshape(-1)[(base[:m] + cols[start:stop]).ravel()] = (
-                    vals[start:stop] * sw[start:stop, None]).ravel()
+                c.reshape(-1)[(base[:m] + plan.chunk_cols[start:stop]).ravel()] = (
+                    plan.values[start:stop] * sw[start:stop, None]).ravel()
                 # dsyrk with trans=1 adds c' c to the upper triangle of g.
                 g = dsyrk(1.0, c, beta=1.0, c=g, trans=1, lower=0, overwrite_c=1)
-            out[gid] += np.triu(g) + np.triu(g, 1).T
+                used = True
+            if used:
+                out[gid][np.ix_(cols, cols)] += np.triu(g) + np.triu(g, 1).T
         out = self.Z.T @ out @ self.Z
         return out[0] if groups is None else out
 
@@ -302,3 +320,84 @@ def build_design(covariates: Mapping[str, np.ndarray], bases: Mapping[str, Basis
             raise InputError("no covariates given: cannot tell the number of bins")
         n_rows = len(first)
     return Design(int(n_rows), tuple(terms))
+
+
+@dataclass(frozen=True)
+class _GramPlan:
+    """Row order and chunk layout used by :meth:`Design.weighted_gram` (see its notes).
+
+    Attributes
+    ----------
+    order : ndarray
+        Row permutation grouping rows by (group, support of the local term).
+    starts, stops, group_ids : ndarray
+        Runs of rows (in ``order``) sharing group and local support.
+    columns : list of ndarray
+        For each run, the beta column of every chunk column.
+    values, chunk_cols : ndarray, shape (n, nnz)
+        Row non-zeros in ``order``, and their column within the chunk.
+    width : int
+        Chunk width: intercept, the local term's support, then every other term's columns.
+    """
+
+    order: np.ndarray
+    starts: np.ndarray
+    stops: np.ndarray
+    group_ids: np.ndarray
+    columns: list
+    values: np.ndarray
+    chunk_cols: np.ndarray
+    width: int
+
+    @classmethod
+    def build(cls, design: "Design", groups: np.ndarray | None) -> "_GramPlan":
+        n = design.n_rows
+        vals, cols = design._row_layout
+        local = design._local_term
+        g = np.zeros(n, dtype=np.int64) if groups is None else np.asarray(groups, dtype=np.int64)
+        if local is None:
+            q = 0
+            key = np.zeros(n, dtype=np.int64)
+        else:
+            q = local.block.values.shape[1]
+            # Rows whose local term starts at the same column share all its columns.
+            key = local.block.columns[:, 0].astype(np.int64)
+        combined = g * (int(key.max()) + 1 if n else 1) + key
+        order = np.argsort(combined, kind="stable")
+        keep = g[order] >= 0
+        order = order[keep]
+        combined = combined[order]
+        bounds = np.flatnonzero(np.diff(combined)) + 1
+        starts = np.concatenate([[0], bounds]) if order.size else np.empty(0, dtype=np.intp)
+        stops = np.append(starts[1:], order.size) if order.size else np.empty(0, dtype=np.intp)
+        group_ids = g[order[starts]] if order.size else np.empty(0, dtype=np.int64)
+
+        # Chunk column of every non-zero: intercept 0, local slots 1..q, then the other terms'
+        # columns in beta order.
+        p = design.n_beta
+        other_cols = np.ones(p, dtype=bool)
+        if local is not None:
+            sl = design.beta_slices[local.name]
+            other_cols[sl] = False
+        other_cols[0] = False
+        other_index = np.full(p, -1, dtype=np.intp)
+        other_index[other_cols] = 1 + q + np.arange(int(other_cols.sum()))
+        other_beta = np.flatnonzero(other_cols)
+        width = 1 + q + other_beta.size
+        v = vals[order]
+        c = cols[order]
+        chunk_cols = other_index[c]
+        chunk_cols[:, 0] = 0
+        columns = []
+        if local is not None:
+            lo = 1 + sum(t.n_beta for t in design.terms[:design.terms.index(local)])
+            # Non-zeros of the local term sit at positions lo_pos .. lo_pos + q in each row.
+            lo_pos = 1 + sum(t.block.values.shape[1] for t in design.terms[:design.terms.index(local)])
+            chunk_cols[:, lo_pos:lo_pos + q] = 1 + np.arange(q)
+            for s0 in starts:
+                columns.append(np.concatenate([[0], c[s0, lo_pos:lo_pos + q], other_beta]))
+            del lo
+        else:
+            full = np.concatenate([[0], other_beta])
+            columns = [full] * len(starts)
+        return cls(order, starts, stops, group_ids, columns, v, chunk_cols, width)
