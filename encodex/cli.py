@@ -100,6 +100,9 @@ def add_fit_command(subparsers) -> None:
                    help="smallest circular shift in seconds (default 20)")
     p.add_argument("--alpha", type=float, default=0.05, metavar="A",
                    help="level of the one-sided Wilcoxon test of each variable (default 0.05)")
+    p.add_argument("--correction", choices=("bonferroni", "none"), default="bonferroni",
+                   help="test the best of m candidates of a step at alpha/m (bonferroni, "
+                        "default: untuned cells labelled at most at rate alpha) or at alpha")
     p.add_argument("--min-spikes", type=_positive_int, default=100, metavar="N",
                    help="cells with fewer spikes in an environment are not labelled "
                         "(default 100)")
@@ -115,6 +118,7 @@ def _run_fit(args) -> int:
 
     settings = dict(folds=args.folds, seed=args.seed, exhaustive=args.exhaustive,
                     shuffles=args.shuffles, min_shift_s=args.min_shift, alpha=args.alpha,
+                    correction=args.correction,
                     min_spikes=args.min_spikes)
     if args.bin_size is not None:
         settings["bin_size"] = args.bin_size

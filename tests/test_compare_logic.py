@@ -159,3 +159,22 @@ def test_ambiguous_when_two_candidates_tie():
 def test_bad_alpha():
     with pytest.raises(SettingsError, match="alpha"):
         select_variables(["position"], lambda m: np.zeros(5), alpha=1.5)
+
+
+def test_bonferroni_over_the_candidates_of_a_step():
+    # Two negative folds of middling rank: exact one-sided p = 19/1024 = 0.0186, significant
+    # at 0.05 but not at 0.05 / 5 = 0.01.
+    d = np.array([0.05, 0.06, 0.07, 0.08, 0.09, 0.10, 0.11, 0.12, -0.065, -0.066])
+    p = improvement_p(d, np.zeros(10))
+    assert 0.01 < p < 0.05
+    vars_ = ("position", "heading", "speed", "distance", "time")
+    table = {(): np.zeros(10), ("position",): d}
+    for v in vars_[1:]:
+        table[(v,)] = np.full(10, -0.01)
+    s_none, _ = _scorer(table)
+    s_bonf, _ = _scorer(table)
+    assert select_variables(vars_, s_none, correction="none").chosen[:1] == ("position",)
+    sel = select_variables(vars_, s_bonf)  # default: alpha / 5 per step
+    assert sel.chosen == () and sel.p_value == pytest.approx(p)
+    with pytest.raises(SettingsError, match="correction"):
+        select_variables(vars_, s_bonf, correction="holm")

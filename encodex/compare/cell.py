@@ -126,7 +126,7 @@ def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
                  variables, alpha: float = 0.05, exhaustive: bool = False,
                  shuffles: int = 0, min_shift_bins: int = 0,
                  rng: np.random.Generator | None = None, fit_options=None,
-                 refit: bool = True) -> CellAnalysis:
+                 refit: bool = True, correction: str = "bonferroni") -> CellAnalysis:
     """Choose the variables one cell carries and score every model tried.
 
     Parameters
@@ -145,6 +145,9 @@ def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
         Level of each one-sided Wilcoxon signed-rank test.
     exhaustive : bool
         Score every subset (same decision rule).
+    correction : {"bonferroni", "none"}
+        Multiple-candidate correction of each forward step (see
+        :func:`encodex.compare.selection.select_variables`).
     shuffles : int
         Circular shifts of the spike train for the empirical null of the held-out gain of
         the chosen model (of the best single-variable model for "none"); 0 disables.
@@ -166,7 +169,8 @@ def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
         cvs[model] = cross_validate(design, model, y, offset, folds, fit_options)
         return cvs[model].bits_per_spike
 
-    selection = select_variables(variables, score, alpha=alpha, exhaustive=exhaustive)
+    selection = select_variables(variables, score, alpha=alpha, exhaustive=exhaustive,
+                                 correction=correction)
     notes = []
     n_bad = sum(cv.n_not_converged for cv in cvs.values())
     if n_bad:

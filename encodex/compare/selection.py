@@ -7,6 +7,13 @@ score (bits per spike, averaged over folds), and keep it only if it beats the cu
 fold by fold by a one-sided Wilcoxon signed-rank test at level ``alpha``
 (:func:`scipy.stats.wilcoxon`); stop at the first step that is not significant.
 
+Multiple candidates: at each step the best of m candidates is tested, which would make the
+chance of adding a variable to an untuned cell larger than ``alpha``. By default the test of
+the best candidate is therefore held to ``alpha / m`` (Bonferroni over the candidates of the
+step; Bonferroni 1936, Pubbl. R. Ist. Sup. Sci. Econ. Commer. Firenze 8:3), so that an
+untuned cell is labelled with probability at most ``alpha`` at the first step; the p-values
+reported are the raw ones. ``correction="none"`` tests at ``alpha`` (the uncorrected rule).
+
 Exhaustive mode scores every subset of the variables first, then applies the same rule on the
 whole lattice. Because the rule only reads scores, both modes give the same label; exhaustive
 mode keeps the scores of all models for users who want the whole lattice.
@@ -112,6 +119,7 @@ def select_variables(
     score: ScoreFn,
     alpha: float = 0.05,
     exhaustive: bool = False,
+    correction: str = "bonferroni",
 ) -> Selection:
     """Choose the variables a cell carries by nested, cross-validated comparison.
 
@@ -127,6 +135,8 @@ def select_variables(
         Level of the one-sided Wilcoxon signed-rank test of each addition.
     exhaustive : bool
         Score every subset before deciding (same rule, whole lattice kept).
+    correction : {"bonferroni", "none"}
+        Hold the best of m candidates of a step to ``alpha / m`` (default), or to ``alpha``.
 
     Returns
     -------
@@ -134,6 +144,8 @@ def select_variables(
     """
     if not 0.0 < alpha < 1.0:
         raise SettingsError(f"alpha must be in (0, 1) (got {alpha}); use 0.05")
+    if correction not in ("bonferroni", "none"):
+        raise SettingsError(f"correction must be 'bonferroni' or 'none' (got {correction!r})")
     available = _key(variables)
     if len(set(variables)) != len(tuple(variables)):
         raise SettingsError(f"variables listed twice: {list(variables)}")
@@ -163,7 +175,8 @@ def select_variables(
         best = cands[int(np.argmax(means))]
         p = improvement_p(get(best), get(current))
         gain = float(np.nanmean(get(best)) - np.nanmean(get(current)))
-        accepted = p < alpha
+        level = alpha / len(cands) if correction == "bonferroni" else alpha
+        accepted = p < level
         steps.append(Step(current, cands, best, gain, p, accepted))
         if not accepted:
             break

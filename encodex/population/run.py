@@ -293,7 +293,8 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
         Only these unit ids (default: all).
     **settings
         Fields of :class:`RunSettings`: ``variables``, ``folds`` (10), ``seed`` (0),
-        ``alpha`` (0.05), ``exhaustive`` (False), ``shuffles`` (0), ``min_shift_s`` (20 s),
+        ``alpha`` (0.05), ``correction`` ("bonferroni"), ``exhaustive`` (False),
+        ``shuffles`` (0), ``min_shift_s`` (20 s),
         ``min_spikes`` (100), ``bin_size`` (s), ``basis_sizes``, ``chunks_per_fold`` (3).
 
     Returns
@@ -421,6 +422,8 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
                     "selection": ("forward selection from the mean-rate model; a variable is "
                                   "kept if it improves held-out bits per spike across folds by "
                                   f"a one-sided Wilcoxon signed-rank test at alpha={rs.alpha}"
+                                  + (" divided by the number of candidates of the step "
+                                     "(Bonferroni)" if rs.correction == "bonferroni" else "")
                                   + ("; every subset scored (exhaustive)"
                                      if rs.exhaustive else ""))},
         "session": {

@@ -40,6 +40,9 @@ class RunSettings:
         Level of the one-sided Wilcoxon signed-rank test of each added variable.
     exhaustive : bool
         Score every subset of the variables (same decision rule as forward selection).
+    correction : str
+        "bonferroni" (default): the best of m candidates of a forward step is tested at
+        alpha / m, so that untuned cells are labelled at most at rate alpha; "none": at alpha.
     shuffles : int
         Number of circular shifts of each spike train for the empirical null (0: off).
     min_shift_s : float
@@ -61,6 +64,7 @@ class RunSettings:
     seed: int = 0
     alpha: float = 0.05
     exhaustive: bool = False
+    correction: str = "bonferroni"
     shuffles: int = 0
     min_shift_s: float = 20.0
     min_spikes: int = 100
@@ -88,6 +92,9 @@ class RunSettings:
         _int_at_least("min_spikes", self.min_spikes, 1, "100")
         if not (isinstance(self.alpha, (int, float)) and 0 < self.alpha < 1):
             raise SettingsError(f"alpha must be between 0 and 1 (got {self.alpha}); use 0.05")
+        if self.correction not in ("bonferroni", "none"):
+            raise SettingsError(f"correction must be 'bonferroni' or 'none' (got "
+                                f"{self.correction!r})")
         if not (math.isfinite(self.min_shift_s) and self.min_shift_s >= 0):
             raise SettingsError(f"min_shift_s must be >= 0 seconds (got {self.min_shift_s})")
         if self.bin_size is not None and not (

@@ -177,7 +177,8 @@ def _analyse_cell(env, unit, y, settings, n_spikes, rate, arrays):
     min_shift = int(np.ceil(settings.min_shift_s / env.bin_size))
     a = analyse_cell(
         design, y, offset, folds, env.variables, alpha=settings.alpha,
-        exhaustive=settings.exhaustive, shuffles=settings.shuffles, min_shift_bins=min_shift,
+        exhaustive=settings.exhaustive, correction=settings.correction,
+        shuffles=settings.shuffles, min_shift_bins=min_shift,
         rng=stream(settings.seed, env.name, unit, PURPOSE_SHUFFLES),
     )
     sel = a.selection

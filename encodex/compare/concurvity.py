@@ -1,0 +1,325 @@
+"""Concurvity: how well each smooth term of an additive model is reproduced by the others.
+
+Two variables that move together in a session (travelled distance and elapsed time when the
+running speed barely varies; speed and position near the walls) give smooth terms whose
+function spaces nearly overlap. A held-out test cannot then tell which of the two a cell
+carries, and the label should say so instead of picking one.
+
+Measures (after the concurvity of Wood 2017, sec. 5.6.3 and the ``concurvity`` discussion
+of additive models there). Write a term as ``f_j = X_j b_j`` (its constrained columns) and
+split it into ``g_1``, its orthogonal projection on the column space of the other terms
+(intercept included), and the rest. Each measure is a ratio ``||g_1||^2 / ||f_j||^2`` in
+[0, 1] (0: the term is unrelated to the others; 1: it is exactly a combination of them):
+
+* ``worst``: the largest value the ratio takes over every coefficient vector ``b_j``; the
+  squared cosine of the smallest principal angle between the two column spaces (the largest
+  squared canonical correlation). Between two single terms it is symmetric.
+* ``mean``: the ratio averaged over an orthonormal basis of the term's space (the mean
+  squared canonical correlation), a fit-free summary of the overall overlap; it is the
+  measure :func:`ambiguous_pairs` flags with (see :data:`DEFAULT_MEASURE`).
+* ``observed``: the ratio for the fitted coefficients of one cell, when they are given.
+
+Everything is computed from the p x p Gram matrix ``Z' X' W X Z`` of the design
+(:meth:`encodex.design.Design.weighted_gram`), never from the tall n x p design, so it costs
+one pass over the bins whatever their number. The inner product is the plain sum over the
+bins (``W = I``) unless weights are given (e.g. the fitted Poisson means, which measure the
+overlap where the cell actually fires).
+
+References
+----------
+Wood, S. N. (2017). *Generalized Additive Models: An Introduction with R*, 2nd ed., CRC
+Press (concurvity of smooth terms: section 5.6.3 from memory; the three-way split into a
+worst case, an observed and an estimated measure follows the book's description).
+Hastie, T. and Tibshirani, R. (1990). *Generalized Additive Models*, Chapman and Hall,
+sec. 5.3 (concurvity as the non-linear analogue of collinearity).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Mapping
+from dataclasses import dataclass
+
+import numpy as np
+
+from encodex.errors import InputError, SettingsError
+from encodex.variables import canonical_order
+
+#: Default pairwise concurvity (``mean`` measure, the larger of the two directions) at or
+#: above which two variables are called inseparable. 0.8 means that, averaged over the
+#: functions a term can represent, 80% of their energy is reproduced by a function of the
+#: other variable, leaving a fifth for a held-out comparison to tell them apart. Measured on
+#: the simulator (reference_checks/test_concurvity_reference.py, 300 s sessions): distance
+#: and time since trial start reach 0.40-0.50 when speed varies between runs, stops and
+#: trials, and 0.95-0.99 at a nearly constant speed; every other pair of built-in variables
+#: stays below 0.35. The threshold sits between the two groups with a wide margin on each side.
+DEFAULT_THRESHOLD = 0.8
+
+#: Measure used to flag pairs. The worst case is not usable for flagging: a basis function
+#: at the top of both ranges is supported only by the last bins of the longest trial, where
+#: the largest distance and the largest time coincide, so the worst case reaches 0.92-0.998
+#: for distance and time even when speed varies (measured, same check); the mean over the
+#: term's space is not dominated by such thinly supported directions.
+DEFAULT_MEASURE = "mean"
+
+#: Eigenvalues of a Gram block below this fraction of its largest are treated as zero
+#: (basis functions with no data under them, or exact linear dependence).
+_RANK_TOL = 1e-10
+
+
+@dataclass(frozen=True)
+class TermConcurvity:
+    """Concurvity of one term against a set of other terms.
+
+    Attributes
+    ----------
+    term : str
+        The term measured.
+    others : tuple of str
+        The terms it is compared against (the intercept is always included with them).
+    worst : float
+        Largest ``||projection||^2 / ||f||^2`` over every function of the term, in [0, 1].
+    mean : float
+        The same ratio averaged over an orthonormal basis of the term's space, in [0, 1].
+    observed : float
+        The ratio for the fitted coefficients, NaN when no coefficients were given.
+    """
+
+    term: str
+    others: tuple[str, ...]
+    worst: float
+    mean: float
+    observed: float = float("nan")
+
+
+def _whitener(g: np.ndarray) -> np.ndarray:
+    """``W`` with ``W' g W = I`` on the numerical range of the symmetric PSD matrix ``g``."""
+    d, u = np.linalg.eigh(0.5 * (g + g.T))
+    top = float(d.max()) if d.size else 0.0
+    keep = d > _RANK_TOL * max(top, 0.0)
+    if top <= 0 or not keep.any():
+        return np.zeros((g.shape[0], 0))
+    return u[:, keep] / np.sqrt(d[keep])
+
+
+def _gram(design, weights) -> np.ndarray:
+    n = design.n_rows
+    w = np.ones(n) if weights is None else np.asarray(weights, dtype=float)
+    if w.shape != (n,) or not np.all(np.isfinite(w)) or np.any(w < 0):
+        raise InputError(
+            f"weights must be {n} finite non-negative numbers (one per bin); got shape {w.shape}"
+        )
+    return design.weighted_gram(w)
+
+
+def _measure(gram, idx_j, idx_o, b=None):
+    """worst, mean, observed from the Gram matrix and two index sets (theta layout)."""
+    gjj = gram[np.ix_(idx_j, idx_j)]
+    goo = gram[np.ix_(idx_o, idx_o)]
+    gjo = gram[np.ix_(idx_j, idx_o)]
+    wj = _whitener(gjj)
+    wo = _whitener(goo)
+    if wj.shape[1] == 0:
+        return np.nan, np.nan, np.nan
+    if wo.shape[1] == 0:
+        obs = 0.0 if b is not None else np.nan
+        return 0.0, 0.0, obs
+    c = wj.T @ gjo @ wo  # cross-Gram of two orthonormal bases: singular values = cosines
+    s = np.linalg.svd(c, compute_uv=False)
+    s = np.clip(s, 0.0, 1.0)
+    worst = float(s[0] ** 2) if s.size else 0.0
+    mean = float(np.sum(s**2) / wj.shape[1])
+    obs = np.nan
+    if b is not None:
+        b = np.asarray(b, dtype=float)
+        norm2 = float(b @ gjj @ b)
+        if norm2 > 0:
+            proj = wo.T @ (gjo.T @ b)  # coordinates of the projection in the others' basis
+            obs = float(min(max(proj @ proj / norm2, 0.0), 1.0))
+    return worst, mean, obs
+
+
+def _check_terms(design, names, what):
+    names = tuple(names)
+    missing = [v for v in names if v not in design.names]
+    if missing:
+        raise SettingsError(
+            f"{what} {', '.join(missing)} not in the design (terms: "
+            f"{', '.join(design.names) or 'none'}); build the design with every variable"
+        )
+    return names
+
+
+def concurvity(design, terms: Iterable[str] | None = None, coef: np.ndarray | None = None,
+               weights: np.ndarray | None = None) -> dict[str, TermConcurvity]:
+    """Concurvity of each term of a model given all its other terms.
+
+    Parameters
+    ----------
+    design : encodex.design.Design
+        Design holding at least the model's terms (extra terms are ignored).
+    terms : iterable of str, optional
+        The model's terms (a selected model); all terms of the design by default.
+    coef : ndarray, optional
+        Fitted constrained coefficients (``PoissonFit.coef``, theta layout of ``design``
+        restricted to ``terms``, i.e. of ``design.subset(terms)``); gives ``observed``.
+    weights : ndarray, shape (n_rows,), optional
+        Non-negative bin weights of the inner product (default: all ones).
+
+    Returns
+    -------
+    dict
+        term -> :class:`TermConcurvity` (``others`` = the model's other terms), in canonical
+        order. A model with one term has concurvity 0 (only the intercept, to which every
+        term is orthogonal by its sum-to-zero constraint).
+
+    References
+    ----------
+    Wood, S. N. (2017). Generalized Additive Models, 2nd ed., CRC Press (concurvity).
+    """
+    terms = canonical_order(design.names if terms is None else terms)
+    _check_terms(design, terms, "model terms")
+    sub = design.subset(terms)
+    gram = _gram(sub, weights)
+    if coef is not None:
+        coef = np.asarray(coef, dtype=float).ravel()
+        if coef.size != sub.n_theta:
+            raise InputError(
+                f"coef has {coef.size} values but the model {'+'.join(terms)} has "
+                f"{sub.n_theta}; pass the fit of design.subset(terms)"
+            )
+    sl = sub.theta_slices
+    out = {}
+    for t in terms:
+        idx_j = np.arange(sl[t].start, sl[t].stop)
+        others = tuple(o for o in terms if o != t)
+        idx_o = np.concatenate([[0]] + [np.arange(sl[o].start, sl[o].stop) for o in others])
+        b = None if coef is None else coef[sl[t]]
+        worst, mean, obs = _measure(gram, idx_j, idx_o.astype(int), b)
+        out[t] = TermConcurvity(t, others, worst, mean, obs)
+    return out
+
+
+def pairwise_concurvity(design, terms: Iterable[str] | None = None,
+                        weights: np.ndarray | None = None,
+                        measure: str = "worst") -> dict[tuple[str, str], float]:
+    """Concurvity of each term given one other term, for every ordered pair.
+
+    Parameters
+    ----------
+    design : encodex.design.Design
+    terms : iterable of str, optional
+        Terms to compare; all terms of the design by default.
+    weights : ndarray, optional
+        Bin weights of the inner product (default ones).
+    measure : {"worst", "mean"}
+        ``worst`` is symmetric in the pair; ``mean`` is not.
+
+    Returns
+    -------
+    dict
+        ``(a, b) -> concurvity of a given b`` (and the intercept), for every a != b.
+    """
+    if measure not in ("worst", "mean"):
+        raise SettingsError(f"unknown concurvity measure {measure!r}; use 'worst' or 'mean'")
+    terms = canonical_order(design.names if terms is None else terms)
+    _check_terms(design, terms, "terms")
+    sub = design.subset(terms)
+    gram = _gram(sub, weights)
+    sl = sub.theta_slices
+    out = {}
+    for a in terms:
+        ia = np.arange(sl[a].start, sl[a].stop)
+        for b in terms:
+            if b == a:
+                continue
+            ib = np.concatenate([[0], np.arange(sl[b].start, sl[b].stop)]).astype(int)
+            worst, mean, _ = _measure(gram, ia, ib)
+            out[(a, b)] = worst if measure == "worst" else mean
+    return out
+
+
+def _as_design(design_or_covariates, variables, kinds):
+    from encodex.design import Design, build_design, default_bases
+
+    if isinstance(design_or_covariates, Design):
+        return design_or_covariates
+    if isinstance(design_or_covariates, Mapping):
+        cov = design_or_covariates
+        names = [v for v in cov if v in set(variables)] if variables else list(cov)
+        rows = np.ones(len(np.asarray(cov[names[0]])), dtype=bool)
+        for v in names:
+            a = np.asarray(cov[v], dtype=float)
+            rows &= np.isfinite(a.reshape(a.shape[0], -1)).all(axis=1)
+        sub = {v: np.asarray(cov[v])[rows] for v in names}
+        return build_design(sub, default_bases(sub, names, kinds=kinds))
+    raise InputError(
+        "ambiguous_pairs needs an encodex.design.Design or a mapping of covariates on the "
+        f"bins; got {type(design_or_covariates).__name__}"
+    )
+
+
+def ambiguous_pairs(design, chosen: Iterable[str], threshold: float = DEFAULT_THRESHOLD,
+                    weights: np.ndarray | None = None,
+                    kinds: Mapping[str, str] | None = None,
+                    measure: str = DEFAULT_MEASURE) -> dict[str, tuple[str, ...]]:
+    """For each chosen variable, the other variables it cannot be told apart from.
+
+    Two variables are inseparable when the pairwise concurvity of their terms
+    (:func:`pairwise_concurvity`), the larger of its two directions, reaches ``threshold``:
+    smooth functions of one are nearly smooth functions of the other on these bins, so a
+    model comparison cannot say which of the two the cell carries.
+
+    Parameters
+    ----------
+    design : encodex.design.Design or mapping of str to ndarray
+        Design with every candidate variable of the environment, on its bins (the one the
+        comparison stage already builds), or the covariates themselves (rows with a NaN in
+        any of them are dropped and default bases are built; ``kinds`` gives the basis kind
+        of user variables).
+    chosen : iterable of str
+        Variables of the selected model (may be empty).
+    threshold : float
+        Concurvity in (0, 1] at or above which a pair is flagged (default
+        :data:`DEFAULT_THRESHOLD`, 0.8; see its comment for the reasoning).
+    weights : ndarray, optional
+        Bin weights of the inner product (default ones).
+    kinds : mapping, optional
+        Basis kinds of user variables, used only when covariates are given.
+    measure : {"mean", "worst"}
+        Pairwise measure (default ``mean``; see :data:`DEFAULT_MEASURE`).
+
+    Returns
+    -------
+    dict
+        chosen variable -> tuple of the other variables (chosen or not, canonical order)
+        it is inseparable from; every chosen variable is a key, with ``()`` when none.
+        The union, joined with ``";"``, fills the ``ambiguous_with`` column of cells.csv.
+
+    Examples
+    --------
+    >>> flags = ambiguous_pairs(design_of_environment, ("distance",))
+    >>> flags
+    {'distance': ('time',)}
+    """
+    if not (np.isfinite(threshold) and 0 < threshold <= 1):
+        raise SettingsError(f"threshold must lie in (0, 1], got {threshold}; default 0.8")
+    chosen = canonical_order(chosen)
+    if not isinstance(design, Mapping):
+        d = _as_design(design, None, kinds)
+    else:
+        d = _as_design(design, tuple(design.keys()), kinds)
+    _check_terms(d, chosen, "chosen variables")
+    if not chosen:
+        return {}
+    pairs = pairwise_concurvity(d, weights=weights, measure=measure)
+    out = {}
+    for a in chosen:
+        flagged = []
+        for b in d.names:
+            if b == a:
+                continue
+            c = max(pairs[(a, b)], pairs[(b, a)])
+            if np.isfinite(c) and c >= threshold:
+                flagged.append(b)
+        out[a] = canonical_order(flagged)
+    return out
