@@ -20,21 +20,27 @@ How each covariate is made (all on the bin grid, bin centres ``t0 + (k + 1/2) * 
   (trapezoid rule); NaN outside trials and for the rest of a trial after a masked gap, since
   the path through a long gap is unknown (reason ``distance_after_gap``).
 * time: seconds since the start of the bin's trial; NaN outside trials.
+* phase (when the recording carries an LFP channel): the instantaneous phase of a band of
+  the LFP (:mod:`encodex.rhythm`), the circular mean of its samples in each bin; NaN (masked,
+  reason ``phase_unknown``) outside the trace and near its edges.
+* user variables (``Recording.extra`` or :meth:`Session.with_variable`): resampled onto the
+  bin centres (on the circle when circular); NaN (masked, reason ``extra_unknown``) where
+  unknown. Their basis kind is kept in ``Session.variable_kinds``.
 """
 
 from __future__ import annotations
 
 import dataclasses
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import scipy.sparse as sp
 from scipy.ndimage import gaussian_filter1d
 
 from encodex.errors import InputError, SettingsError
-from encodex.io.recording import Recording, wrap_angle
-from encodex.variables import VARIABLES
+from encodex.io.recording import SIGNAL_KINDS, Recording, _check_extra_name, wrap_angle
+from encodex.variables import KINDS, VARIABLES, canonical_order
 
 #: Default bin width, s.
 DEFAULT_BIN_SIZE = 0.02
@@ -60,6 +66,8 @@ _MASK_REASONS = (
     "outside_epochs",
     "below_min_speed",
 )
+#: Default band of the rhythm phase, Hz (theta; see encodex.rhythm.DEFAULT_BAND).
+DEFAULT_PHASE_BAND = (6.0, 10.0)
 
 
 @dataclass(frozen=True, eq=False)
@@ -90,6 +98,13 @@ class Session:
         Plain (JSON-ready) record of how the session was built: ``masked_bins`` by reason,
         ``dropped_spikes``, ``objects`` read, ``unavailable`` variables with reasons per
         environment, ``settings``.
+    variable_kinds : Mapping[str, str]
+        Basis kind (``"interval"`` or ``"circular"``) of every covariate beyond the five
+        built-ins and ``phase`` (user-defined variables); empty by default. :attr:`kinds`
+        gives the kind of every covariate.
+    variable_ranges : Mapping[str, tuple of float]
+        Range (lower, upper) given for user interval variables, in their unit; bins outside
+        were masked. Variables without a given range take it from the data.
     """
 
     bin_size: float
@@ -102,6 +117,18 @@ class Session:
     environment: np.ndarray
     environments: tuple[str, ...]
     summary: Mapping
+    variable_kinds: Mapping[str, str] = field(default_factory=dict)
+    variable_ranges: Mapping[str, tuple[float, float]] = field(default_factory=dict)
+
+    @property
+    def kinds(self) -> dict[str, str]:
+        """Basis kind of every covariate: ``planar``, ``circular`` or ``interval``.
+
+        Pass it to :func:`encodex.design.default_bases` (``kinds=session.kinds``) so that
+        user-defined variables get the right basis.
+        """
+        return {name: self.variable_kinds.get(name, KINDS.get(name, "interval"))
+                for name in self.covariates}
 
     @property
     def n_bins(self) -> int:
@@ -157,14 +184,63 @@ class Session:
         return dict(self.summary["unavailable"][name])
 
     def available_variables(self, environment: int | str) -> tuple[str, ...]:
-        """Built-in variables (canonical order) that can be analysed in an environment.
+        """Variables (canonical order) that can be analysed in an environment.
 
+        The built-ins, then ``phase`` when the session has it, then user-defined variables.
         A variable is unavailable when the recording lacks it (distance and time with no
         trials) or when it is constant over the environment's valid bins; the reasons are
         in ``summary["unavailable"]``.
         """
         missing = self.unavailable_variables(environment)
-        return tuple(v for v in VARIABLES if v not in missing)
+        names = canonical_order(set(VARIABLES) | set(self.covariates))
+        return tuple(v for v in names if v not in missing)
+
+    def with_variable(self, name: str, values, kind: str = "interval",
+                      range: tuple[float, float] | None = None) -> Session:
+        """Copy of the session with one more covariate, a user-defined variable.
+
+        Parameters
+        ----------
+        name : str
+            Variable name: a plain identifier other than the built-in names (it sorts after
+            the built-ins and ``phase`` in labels, alphabetically among user variables).
+        values : ndarray of shape (n_bins,), or (times, values)
+            Either one value per bin of this session (NaN where unknown), or samples with
+            their own clock (times in s, strictly increasing), resampled onto the bin centres
+            (linearly; on the circle when circular). Resampling leaves NaN outside the
+            samples' span and in gaps between samples longer than the session's
+            ``max_gap_s``.
+        kind : {"interval", "circular"}
+            Basis kind. ``"circular"`` values are angles in radians (wrapped to [0, 2*pi)),
+            unless ``range`` gives the period.
+        range : (float, float), optional
+            Interval: the basis range in the variable's unit; bins with values outside it are
+            masked (default: the data range). Circular: the values' period, e.g. (0, 1) for a
+            fraction of a cycle or (0, 360) for degrees, mapped linearly onto [0, 2*pi).
+
+        Returns
+        -------
+        Session
+            With ``covariates[name]``, ``variable_kinds[name] = kind``, bins where the value
+            is unknown (or out of range) masked (reason ``extra_unknown``) and
+            ``summary["unavailable"]`` updated.
+
+        Raises
+        ------
+        encodex.errors.InputError
+            Bad name, length, kind or range.
+
+        Examples
+        --------
+        >>> bearing = egocentric_bearing(session.covariates["position"],
+        ...                              session.covariates["heading"], goal_xy=(0.8, 0.2))
+        >>> session = session.with_variable("goal_bearing", bearing, kind="circular")
+        """
+        _check_extra_name(name)
+        if name in self.covariates:
+            raise InputError(f"the session already has a variable {name!r}; choose another name")
+        values = _user_values(self, name, values, kind, range)
+        return _add_covariate(self, name, values, kind, range)
 
     def restrict(self, environment: int | str) -> Session:
         """Session holding only the valid bins of one environment.
@@ -190,11 +266,151 @@ class Session:
             environment=_frozen(np.zeros(rows.size, dtype=np.int64)),
             environments=(name,),
             summary=summary,
+            variable_kinds=dict(self.variable_kinds),
+            variable_ranges=dict(self.variable_ranges),
         )
 
     def replace(self, **changes) -> Session:
         """Copy with some fields replaced (a thin wrapper over dataclasses.replace)."""
         return dataclasses.replace(self, **changes)
+
+
+def egocentric_bearing(position, heading, goal_xy) -> np.ndarray:
+    """Egocentric bearing of a goal point: its direction relative to the animal's heading.
+
+    Parameters
+    ----------
+    position : ndarray, shape (n, 2)
+        Animal position (x, y), metres.
+    heading : ndarray, shape (n,)
+        Heading, radians (0 along +x, counter-clockwise).
+    goal_xy : (float, float)
+        Goal location (x, y), metres, in the same frame as ``position``.
+
+    Returns
+    -------
+    ndarray, shape (n,)
+        Bearing in radians in [0, 2*pi): 0 when the goal is straight ahead, pi/2 when it is
+        to the left (counter-clockwise), pi behind, 3*pi/2 to the right; NaN where position or
+        heading is NaN or the animal stands on the goal.
+
+    Notes
+    -----
+    ``atan2(gy - y, gx - x) - heading``, wrapped (the allocentric direction of the goal minus
+    the head direction).
+    """
+    pos = np.asarray(position, dtype=float)
+    h = np.asarray(heading, dtype=float).ravel()
+    if pos.ndim != 2 or pos.shape[1] != 2:
+        raise InputError(f"position must have shape (n, 2) in metres, got {pos.shape}")
+    if h.size != pos.shape[0]:
+        raise InputError(
+            f"heading has {h.size} values but position has {pos.shape[0]}; give one each"
+        )
+    goal = np.asarray(goal_xy, dtype=float).ravel()
+    if goal.size != 2 or not np.all(np.isfinite(goal)):
+        raise InputError(f"goal_xy must be one finite (x, y) point in metres, got {goal_xy!r}")
+    dx, dy = goal[0] - pos[:, 0], goal[1] - pos[:, 1]
+    out = wrap_angle(np.arctan2(dy, dx) - h)
+    out[(dx == 0) & (dy == 0)] = np.nan
+    return out
+
+
+def _resample(tq, ts, values, kind, max_gap_s):
+    """Signal samples onto query times: linear (circular: unwrapped); NaN outside and in gaps."""
+    ok = np.isfinite(values)
+    out = np.full(tq.size, np.nan)
+    if ok.sum() < 2:
+        return out
+    tg, vg = ts[ok], values[ok]
+    if kind == "circular":
+        out = wrap_angle(np.interp(tq, tg, np.unwrap(vg)))
+    else:
+        out = np.interp(tq, tg, vg)
+    out[(tq < tg[0]) | (tq > tg[-1])] = np.nan
+    median_dt = float(np.median(np.diff(ts)))
+    gap, _, _ = _long_gap_mask(ts, ok, tq, max_gap_s, median_dt)
+    out[gap] = np.nan
+    return out
+
+
+def _user_values(session, name, values, kind, range_):
+    if kind not in SIGNAL_KINDS:
+        raise InputError(f"kind {kind!r} of {name!r} is unknown; use 'interval' or 'circular'")
+    if isinstance(values, tuple) and len(values) == 2:
+        t = np.asarray(values[0], dtype=float).ravel()
+        v = np.asarray(values[1], dtype=float).ravel()
+        if t.size != v.size or t.size < 2:
+            raise InputError(
+                f"variable {name!r}: (times, values) need equal lengths of at least 2, got "
+                f"{t.size} and {v.size}"
+            )
+        if not np.all(np.isfinite(t)) or np.any(np.diff(t) <= 0):
+            raise InputError(
+                f"variable {name!r}: times must be finite and strictly increasing (s); sort "
+                "the samples"
+            )
+        v = _map_range(name, v, kind, range_)
+        gap = float(session.summary.get("settings", {}).get("max_gap_s", DEFAULT_MAX_GAP_S))
+        return _resample(np.asarray(session.time), t, v, kind, gap)
+    v = np.asarray(values, dtype=float)
+    if v.ndim == 2 and v.shape[1] == 1:
+        v = v[:, 0]
+    if v.shape != (session.n_bins,):
+        raise InputError(
+            f"variable {name!r} has shape {v.shape} but the session has {session.n_bins} bins; "
+            "give one value per bin or a (times, values) pair to resample"
+        )
+    return _map_range(name, v, kind, range_)
+
+
+def _map_range(name, v, kind, range_):
+    v = np.where(np.isfinite(v), v, np.nan)
+    if range_ is None:
+        return wrap_angle(v) if kind == "circular" else v
+    try:
+        lo, hi = (float(r) for r in range_)
+    except (TypeError, ValueError):
+        raise InputError(f"range of {name!r} must be (lower, upper), got {range_!r}") from None
+    if not (np.isfinite(lo) and np.isfinite(hi) and hi > lo):
+        raise InputError(f"range of {name!r} must be finite with upper > lower, got {range_!r}")
+    if kind == "circular":
+        return wrap_angle((v - lo) / (hi - lo) * 2.0 * np.pi)
+    out = v.copy()
+    out[(v < lo) | (v > hi)] = np.nan
+    return out
+
+
+def _add_covariate(session, name, values, kind, range_, reason="extra_unknown"):
+    """New session with a covariate added, its unknown bins masked, the summary updated."""
+    values = _frozen(np.asarray(values, dtype=float))
+    unknown = ~np.isfinite(values)
+    valid = np.asarray(session.valid) & ~unknown
+    summary = dict(session.summary)
+    masked = dict(summary.get("masked_bins", {}))
+    masked[reason] = int(masked.get(reason, 0)) + int(unknown.sum())
+    masked["total"] = int((~valid).sum())
+    summary["masked_bins"] = masked
+    summary["n_valid_bins"] = int(valid.sum())
+    env = np.asarray(session.environment)
+    summary["valid_bins_by_environment"] = {
+        e: int(np.sum(valid & (env == k))) for k, e in enumerate(session.environments)}
+    cov = dict(session.covariates)
+    cov[name] = values
+    summary["unavailable"] = _unavailability(
+        cov, valid, env, session.environments, int(summary.get("n_trials", 0)) > 0)
+    extras = dict(summary.get("extra_variables", {}))
+    extras[name] = {"kind": kind, "range": None if range_ is None else list(map(float, range_)),
+                    "unknown_bins": int(unknown.sum())}
+    summary["extra_variables"] = extras
+    kinds = dict(session.variable_kinds)
+    ranges = dict(session.variable_ranges)
+    if name not in KINDS:
+        kinds[name] = kind
+        if range_ is not None and kind == "interval":
+            ranges[name] = (float(range_[0]), float(range_[1]))
+    return dataclasses.replace(session, covariates=cov, valid=_frozen(valid), summary=summary,
+                               variable_kinds=kinds, variable_ranges=ranges)
 
 
 def _frozen(a: np.ndarray) -> np.ndarray:
@@ -369,12 +585,14 @@ def _is_constant(values: np.ndarray) -> bool:
 
 
 def _unavailability(cov, valid, environment, environments, has_trials):
+    """Unavailable variables per environment (built-ins, phase, user variables), with reasons."""
     out: dict[str, dict[str, str]] = {}
+    names = list(VARIABLES) + [v for v in canonical_order(cov) if v not in VARIABLES]
     for k, name in enumerate(environments):
         rows = valid & (environment == k)
         reasons: dict[str, str] = {}
         n = int(rows.sum())
-        for var in VARIABLES:
+        for var in names:
             if var in ("distance", "time") and not has_trials:
                 reasons[var] = "no trials in the recording"
                 continue
@@ -399,6 +617,8 @@ def build_session(
     max_gap_s: float = DEFAULT_MAX_GAP_S,
     min_speed: float | None = None,
     heading_speed_threshold: float = DEFAULT_HEADING_SPEED_THRESHOLD,
+    phase_band: tuple[float, float] = DEFAULT_PHASE_BAND,
+    phase_order: int = 3,
 ) -> Session:
     """Bin a recording on a regular grid and compute the behavioural covariates.
 
@@ -418,6 +638,12 @@ def build_session(
     heading_speed_threshold : float
         With no compass heading, movement direction is defined only where speed is at least
         this, m/s (default 0.03); elsewhere heading is NaN and the bin masked.
+    phase_band : (float, float)
+        With an LFP in the recording: band (low, high) in Hz whose instantaneous phase
+        becomes the covariate ``phase`` (default theta, 6-10 Hz; see :mod:`encodex.rhythm`).
+        Bins must not span more than half a cycle of ``high``.
+    phase_order : int
+        Butterworth order of the band-pass filter (default 3).
 
     Returns
     -------
@@ -522,6 +748,34 @@ def build_session(
     for v in needed:
         valid &= np.isfinite(v)
 
+    # --- rhythm phase and user variables: each masks the bins where it is unknown
+    extra_cov: dict[str, np.ndarray] = {}
+    phase_info = None
+    if recording.lfp is not None:
+        from encodex import rhythm
+
+        rhythm.check_bin_size(bin_size, phase_band)
+        pt, pp = rhythm.lfp_phase(recording.lfp.times, recording.lfp.values, phase_band,
+                                  phase_order)
+        phase = rhythm.phase_on_bins(pt, pp, t0, bin_size, n_bins)
+        extra_cov["phase"] = phase
+        masks["phase_unknown"] = ~np.isfinite(phase)
+        phase_info = {"band_hz": [float(b) for b in phase_band], "order": int(phase_order),
+                      "lfp_rate_hz": recording.lfp.rate_hz,
+                      "source": recording.lfp.source}
+    user_kinds = {}
+    if recording.extra:
+        unknown = np.zeros(n_bins, dtype=bool)
+        for name, sig in recording.extra.items():
+            v = _resample(centres, sig.times, sig.values, sig.kind, max_gap_s)
+            extra_cov[name] = v
+            user_kinds[name] = sig.kind
+            unknown |= ~np.isfinite(v)
+        masks["extra_unknown"] = unknown
+    for m in ("phase_unknown", "extra_unknown"):
+        if m in masks:
+            valid &= ~masks[m]
+
     counts, drop_before, drop_after = _bin_spikes(recording, t0, bin_size, n_bins)
 
     covariates = {
@@ -530,6 +784,7 @@ def build_session(
         "speed": _frozen(speed),
         "distance": _frozen(dist),
         "time": _frozen(elapsed),
+        **{k: _frozen(v) for k, v in extra_cov.items()},
     }
     environment = environment.astype(np.int64)
     unavailable = _unavailability(covariates, valid, environment, environments, has_trials)
@@ -569,6 +824,13 @@ def build_session(
             "heading_speed_threshold": float(heading_speed_threshold),
         },
     }
+    if phase_info is not None:
+        summary["phase"] = phase_info
+        summary["settings"]["phase_band"] = [float(b) for b in phase_band]
+    if user_kinds:
+        summary["extra_variables"] = {
+            name: {"kind": kind, "range": None, "unknown_bins": int(np.sum(
+                ~np.isfinite(extra_cov[name])))} for name, kind in user_kinds.items()}
     return Session(
         bin_size=float(bin_size),
         time=_frozen(centres),
@@ -580,11 +842,14 @@ def build_session(
         environment=_frozen(environment),
         environments=tuple(environments),
         summary=summary,
+        variable_kinds=user_kinds,
     )
 
 
 def load_session(
-    path, object_paths: Mapping[str, str] | None = None, drop_empty_units: bool = False, **kw
+    path, object_paths: Mapping[str, str] | None = None, drop_empty_units: bool = False,
+    lfp: str | None = None, lfp_channel: int = 0, extra: Mapping[str, str] | None = None,
+    extra_kinds: Mapping[str, str] | None = None, **kw
 ) -> Session:
     """Read a recording (``.nwb`` or ``.npz``) and bin it: ``build_session(read_recording(path))``.
 
@@ -597,10 +862,23 @@ def load_session(
         ``epochs``), passed to :func:`encodex.io.read_recording`.
     drop_empty_units : bool
         Drop units without any spike instead of raising InputError.
+    lfp : str, optional
+        NWB path of the LFP ``ElectricalSeries`` (or its ``LFP`` container) whose rhythm
+        phase becomes the variable ``phase``; the band is ``phase_band=(low, high)`` Hz.
+    lfp_channel : int
+        Channel (column) of the LFP series, 0-based.
+    extra : mapping of str to str, optional
+        User variables: name -> NWB path of a ``TimeSeries``.
+    extra_kinds : mapping of str to str, optional
+        ``"interval"`` or ``"circular"`` per user variable (default: circular when the
+        series' unit is an angle).
     **kw
-        Options of :func:`build_session` (``bin_size``, ``speed_smoothing_s``, ...).
+        Options of :func:`build_session` (``bin_size``, ``speed_smoothing_s``,
+        ``phase_band``, ...).
     """
     from encodex.io import read_recording
 
-    rec = read_recording(path, drop_empty_units=drop_empty_units, **dict(object_paths or {}))
+    rec = read_recording(path, drop_empty_units=drop_empty_units, lfp=lfp,
+                         lfp_channel=lfp_channel, extra=extra, extra_kinds=extra_kinds,
+                         **dict(object_paths or {}))
     return build_session(rec, **kw)

@@ -15,6 +15,14 @@ time since trial start), pairs of these (multiplicative), or untuned. Between en
 place fields remap, some cells change type and some fall silent. The rate of each cell is
 scaled to a mean rate drawn in ``mean_rate_hz`` (default 1-4 Hz) in each environment.
 
+Optionally (``lfp_rate_hz``) the recording carries one LFP channel with a theta rhythm
+(frequency wandering around ``theta_hz``, amplitude fluctuating, plus a slow 1-3 Hz
+component and white noise), and ``n_phase_cells`` extra cells fire at a preferred theta
+phase (von Mises in the phase of the theta component: 0 at its peaks, pi at its troughs).
+Optionally (``steady_speed_m_s``) the animal runs without stops at a nearly constant speed,
+so that travelled distance and elapsed time since trial start become nearly proportional.
+Both options draw from their own random streams: the rest of a simulation is unchanged.
+
 Spikes are drawn from the inhomogeneous Poisson process by thinning [1]_: candidate events of
 a homogeneous process at the peak rate are kept with probability rate(t)/peak, the rate
 being linearly interpolated between the 10 ms behaviour samples; spike times are then
@@ -37,7 +45,7 @@ from scipy.ndimage import gaussian_filter1d
 from scipy.signal import lfilter
 
 from encodex.errors import OutputError, SettingsError
-from encodex.io.recording import Recording, wrap_angle
+from encodex.io.recording import Recording, Signal, wrap_angle
 from encodex.variables import label
 
 #: Internal time step of the behaviour and the rate, s.
@@ -80,7 +88,8 @@ def _ou(rng, n, tau_s, sd):
     return lfilter([1.0], [1.0, -a], e)
 
 
-def _simulate_behaviour(rng, duration_s, environments, box, break_s, trial_range):
+def _simulate_behaviour(rng, duration_s, environments, box, break_s, trial_range,
+                        steady_speed=None):
     n_env = len(environments)
     total = n_env * duration_s + (n_env - 1) * break_s
     n = int(round(total / _DT)) + 1  # include the end point so tracking covers every epoch
@@ -117,6 +126,10 @@ def _simulate_behaviour(rng, duration_s, environments, box, break_s, trial_range
     for a, b in trials:
         vigour[(t >= a) & (t < b)] = np.exp(0.35 * rng.standard_normal())
     raw = running * run_speed * vigour * np.exp(_ou(rng, n, 1.0, 0.25))
+    if steady_speed is not None:
+        # A steady runner (after the default draws, so that the other options keep their
+        # random streams): no stops, no vigour changes, 3% fluctuations.
+        raw = steady_speed * np.exp(_ou(rng, n, 1.0, 0.03))
     speed = gaussian_filter1d(raw, 0.25 / _DT, mode="nearest")  # finite accelerations
     speed = np.clip(speed, 0.0, None)
 
@@ -140,6 +153,50 @@ def _simulate_behaviour(rng, duration_s, environments, box, break_s, trial_range
         elapsed[i0:i1] = t[i0:i1] - a
         distance[i0:i1] = np.concatenate([[0.0], np.cumsum(speed[i0 : i1 - 1]) * _DT])
     return _Behaviour(t, pos, heading, speed, distance, elapsed, env, trials, tuple(epochs))
+
+
+def _ou_dt(rng, n, dt, tau_s, sd):
+    """Stationary Ornstein-Uhlenbeck samples at step ``dt`` (AR(1) recursion)."""
+    a = np.exp(-dt / tau_s)
+    e = rng.standard_normal(n) * sd * np.sqrt(1.0 - a * a)
+    e[0] = rng.standard_normal() * sd
+    return lfilter([1.0], [1.0, -a], e)
+
+
+def _simulate_lfp(rng, t_end, rate_hz, theta_hz):
+    """LFP (volts) and the unwrapped phase (rad) of its theta component on a regular grid.
+
+    Theta frequency wanders (OU, 1 s, 0.4 Hz sd) around ``theta_hz``; its amplitude
+    fluctuates by about 25%; a slow 1-3 Hz component and white noise are added. Scale: about
+    100 microvolts of theta.
+    """
+    dt = 1.0 / rate_hz
+    n = int(np.floor(t_end / dt)) + 1
+    t = np.arange(n) * dt
+    freq = theta_hz + _ou_dt(rng, n, dt, 1.0, 0.4)
+    phase = rng.uniform(0, 2 * np.pi) + 2 * np.pi * np.cumsum(freq) * dt
+    amp = np.clip(1.0 + _ou_dt(rng, n, dt, 2.0, 0.25), 0.3, None)
+    slow_f = 2.0 + _ou_dt(rng, n, dt, 3.0, 0.4)
+    slow = 0.5 * np.cos(rng.uniform(0, 2 * np.pi) + 2 * np.pi * np.cumsum(slow_f) * dt)
+    noise = 0.3 * rng.standard_normal(n)
+    lfp = 1e-4 * (amp * np.cos(phase) + slow + noise)
+    return t, lfp, phase
+
+
+def _phase_locked_spikes(rng, epochs, t_lfp, phase, rate_hz, pref, kappa):
+    """Spikes of a von Mises phase-locked cell (mean rate ``rate_hz``) within the epochs."""
+    from scipy.special import i0
+
+    peak = rate_hz * np.exp(kappa) / i0(kappa)
+    out = []
+    for a, b, _ in epochs:
+        n = rng.poisson(peak * (b - a))
+        cand = np.sort(rng.uniform(a, b, n))
+        ph = np.interp(cand, t_lfp, phase)
+        lam = rate_hz * np.exp(kappa * np.cos(ph - pref)) / i0(kappa)
+        out.append(cand[rng.random(n) * peak < lam])
+    keep = np.concatenate(out)
+    return np.unique(np.round(keep * SPIKE_SAMPLING_HZ) / SPIKE_SAMPLING_HZ)
 
 
 def _assign_types(rng, n_cells):
@@ -219,6 +276,10 @@ def simulate_recording(
     tracking_noise_m: float = 0.001,
     dropouts: bool = True,
     with_compass: bool = True,
+    steady_speed_m_s: float | None = None,
+    lfp_rate_hz: float | None = None,
+    theta_hz: float = 8.0,
+    n_phase_cells: int = 0,
 ) -> tuple[Recording, pd.DataFrame]:
     """Simulate a recording with known ground truth (see the module docstring).
 
@@ -254,6 +315,20 @@ def simulate_recording(
     with_compass : bool
         Include the head direction in the recording. Without it, sessions use the movement
         direction (heading cells are still tuned to the head direction).
+    steady_speed_m_s : float, optional
+        Run without stops at this speed (3% fluctuations, no per-trial vigour): distance and
+        time since trial start become nearly proportional (inseparable). Default: the
+        stop-and-run behaviour above.
+    lfp_rate_hz : float, optional
+        Add one LFP channel sampled at this rate, Hz (e.g. 250 or 1000) with a theta rhythm
+        (``Recording.lfp``, volts). Default: no LFP.
+    theta_hz : float
+        Mean theta frequency, Hz (default 8).
+    n_phase_cells : int
+        Extra cells (ids after the others) locked to the theta phase, von Mises with
+        kappa 0.8-1.5 and a uniform preferred phase, in every environment (needs
+        ``lfp_rate_hz``). Their truth rows have ``variables == "phase"`` and the columns
+        ``pref_phase_rad``, ``phase_kappa`` (present whenever there is an LFP).
 
     Returns
     -------
@@ -276,9 +351,21 @@ def simulate_recording(
         raise SettingsError(
             f"tracking_rate_hz {tracking_rate_hz} must divide 100 Hz evenly; use 25, 50 or 100"
         )
+    if n_phase_cells and lfp_rate_hz is None:
+        raise SettingsError("n_phase_cells needs an LFP: give lfp_rate_hz (e.g. 250)")
+    if n_phase_cells < 0:
+        raise SettingsError(f"n_phase_cells must be >= 0, got {n_phase_cells}")
+    if lfp_rate_hz is not None and not (np.isfinite(lfp_rate_hz) and lfp_rate_hz >= 4 * theta_hz
+                                        and theta_hz > 0):
+        raise SettingsError(
+            f"lfp_rate_hz {lfp_rate_hz} must be at least 4 times theta_hz {theta_hz}; use 250"
+        )
+    if steady_speed_m_s is not None and not (0 < steady_speed_m_s < 2.0):
+        raise SettingsError(f"steady_speed_m_s must lie in (0, 2) m/s, got {steady_speed_m_s}")
     rng = np.random.default_rng(seed)
     beh = _simulate_behaviour(
-        rng, duration_s, tuple(environments), box_size_m, break_s, trial_duration_s
+        rng, duration_s, tuple(environments), box_size_m, break_s, trial_duration_s,
+        steady_speed=steady_speed_m_s,
     )
     types = _assign_types(rng, n_cells)
     pool = [v for v, _ in CELL_TYPES]
@@ -361,15 +448,41 @@ def simulate_recording(
                 lost |= (ts >= s) & (ts < s + d)
     pos[lost] = np.nan
     heading[lost] = np.nan
+    lfp = None
+    spike_trains = [np.concatenate(tr) for tr in trains]
+    if lfp_rate_hz is not None:
+        # Own stream: adding an LFP leaves every other draw of the simulation unchanged.
+        lrng = np.random.default_rng([seed, 8])
+        t_lfp, v_lfp, theta_phase = _simulate_lfp(lrng, float(beh.t[-1]), lfp_rate_hz,
+                                                  theta_hz)
+        lfp = Signal(t_lfp, v_lfp, "interval", "simulated LFP", "volts")
+        for rec in records:
+            rec.update(pref_phase_rad=np.nan, phase_kappa=np.nan)
+        for j in range(n_phase_cells):
+            uid = f"c{n_cells + j:03d}"
+            pref = lrng.uniform(0, 2 * np.pi)
+            kappa = lrng.uniform(0.8, 1.5)
+            r = lrng.uniform(*mean_rate_hz)
+            st = _phase_locked_spikes(lrng, beh.epochs, t_lfp, theta_phase, r, pref, kappa)
+            unit_ids = unit_ids + (uid,)
+            spike_trains.append(st)
+            for a, b, name in beh.epochs:
+                rec = {"unit": uid, "environment": name, "variables": "phase",
+                       "silent": False, "changed": False, "mean_rate_hz": r,
+                       "n_spikes": int(np.count_nonzero((st >= a) & (st < b)))}
+                rec.update({k: np.nan for k in records[0] if k not in rec})
+                rec.update(pref_phase_rad=pref, phase_kappa=kappa)
+                records.append(rec)
     recording = Recording(
         timestamps=ts,
         position=pos,
         unit_ids=unit_ids,
-        spike_times=tuple(np.concatenate(tr) for tr in trains),
+        spike_times=tuple(spike_trains),
         heading=heading if with_compass else None,
         trials=beh.trials,
         epochs=beh.epochs,
         provenance={"source": f"encodex.simulate seed={seed}"},
+        lfp=lfp,
     )
     truth = pd.DataFrame.from_records(records)
     return recording, truth

@@ -12,11 +12,13 @@ from pathlib import Path
 from encodex.errors import FileFormatError, InputError, SettingsError
 from encodex.io.bundle import read_bundle, write_bundle
 from encodex.io.nwb import read_nwb, write_nwb
-from encodex.io.recording import MAX_POSITION_EXTENT_M, Recording, make_recording, wrap_angle
+from encodex.io.recording import (MAX_POSITION_EXTENT_M, Recording, Signal, make_recording,
+                                  wrap_angle)
 
 __all__ = [
     "MAX_POSITION_EXTENT_M",
     "Recording",
+    "Signal",
     "make_recording",
     "read_bundle",
     "read_nwb",
@@ -27,7 +29,9 @@ __all__ = [
 ]
 
 
-def read_recording(path, drop_empty_units: bool = False, **object_paths) -> Recording:
+def read_recording(path, drop_empty_units: bool = False, lfp: str | None = None,
+                   lfp_channel: int = 0, extra=None, extra_kinds=None,
+                   **object_paths) -> Recording:
     """Read a recording from an NWB file (``.nwb``) or an npz bundle (``.npz``).
 
     Parameters
@@ -38,6 +42,16 @@ def read_recording(path, drop_empty_units: bool = False, **object_paths) -> Reco
     **object_paths
         NWB only: path inside the file of ``position``, ``heading``, ``units``, ``trials``
         or ``epochs`` (e.g. ``position="processing/tracking/Position/xy"``).
+    lfp : str, optional
+        NWB only: path of the LFP ``ElectricalSeries`` (or its ``LFP`` container) whose
+        rhythm phase becomes the variable ``phase`` (see :func:`encodex.io.read_nwb`).
+    lfp_channel : int
+        NWB only: channel (column) of the LFP series, 0-based.
+    extra : mapping of str to str, optional
+        NWB only: user variables, name -> path of a ``TimeSeries``.
+    extra_kinds : mapping of str to str, optional
+        NWB only: ``"interval"`` or ``"circular"`` per user variable (default: circular when
+        the series' unit is an angle).
 
     Returns
     -------
@@ -53,8 +67,15 @@ def read_recording(path, drop_empty_units: bool = False, **object_paths) -> Reco
         raise InputError(f"no such file: {path}; check the path")
     suffix = path.suffix.lower()
     if suffix == ".nwb":
-        return read_nwb(path, drop_empty_units=drop_empty_units, **object_paths)
+        return read_nwb(path, drop_empty_units=drop_empty_units, lfp=lfp,
+                        lfp_channel=lfp_channel, extra=extra, extra_kinds=extra_kinds,
+                        **object_paths)
     if suffix == ".npz":
+        if lfp or extra or extra_kinds:
+            raise SettingsError(
+                "lfp and extra name objects inside an NWB file; an npz bundle carries its "
+                "LFP (keys lfp_time, lfp_values) and user variables in its own keys"
+            )
         if object_paths:
             raise SettingsError(
                 f"object paths ({', '.join(object_paths)}) apply to NWB files only; "

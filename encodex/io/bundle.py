@@ -18,6 +18,12 @@ key                    shape / dtype    meaning
 ``epoch_start``        (e,) float       epoch starts, s (optional, with the next two)
 ``epoch_stop``         (e,) float       epoch stops, s
 ``epoch_environment``  (e,) str         environment name of each epoch
+``lfp_time``           (l,) float       LFP sample times, s (optional, with ``lfp_values``)
+``lfp_values``         (l,) float       one LFP channel, volts
+``extra_names``        (u,) str         user variables (optional), each with the keys
+``extra_kinds``        (u,) str         ``interval`` or ``circular``
+``extra__<name>__time``   (.,) float    sample times of variable <name>, s
+``extra__<name>__values`` (.,) float    its values (radians when circular)
 =====================  ===============  ====================================================
 """
 
@@ -30,7 +36,7 @@ from pathlib import Path
 import numpy as np
 
 from encodex.errors import FileFormatError, OutputError
-from encodex.io.recording import Recording, make_recording
+from encodex.io.recording import Recording, Signal, make_recording
 
 FORMAT_NAME = "encodex-bundle"
 FORMAT_VERSION = 1
@@ -74,6 +80,15 @@ def write_bundle(recording: Recording, path) -> Path:
         arrays["epoch_start"] = np.array([e[0] for e in recording.epochs])
         arrays["epoch_stop"] = np.array([e[1] for e in recording.epochs])
         arrays["epoch_environment"] = np.array([e[2] for e in recording.epochs], dtype=str)
+    if recording.lfp is not None:
+        arrays["lfp_time"] = recording.lfp.times
+        arrays["lfp_values"] = recording.lfp.values
+    if recording.extra:
+        arrays["extra_names"] = np.array(list(recording.extra), dtype=str)
+        arrays["extra_kinds"] = np.array([s.kind for s in recording.extra.values()], dtype=str)
+        for name, sig in recording.extra.items():
+            arrays[f"extra__{name}__time"] = sig.times
+            arrays[f"extra__{name}__values"] = sig.values
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
         np.savez_compressed(path, **arrays)
@@ -167,6 +182,24 @@ def read_bundle(path, drop_empty_units: bool = False) -> Recording:
                 "length; give one of each per epoch"
             )
         epochs = [(float(x), float(y), str(z)) for x, y, z in zip(a, b, n)]
+    lfp = None
+    if "lfp_time" in data or "lfp_values" in data:
+        if not ("lfp_time" in data and "lfp_values" in data):
+            raise FileFormatError(f"{path.name} has only one of lfp_time/lfp_values; give both")
+        lfp = Signal(np.ravel(data["lfp_time"]), np.ravel(data["lfp_values"]), "interval",
+                     "lfp_values", "volts")
+    extra = {}
+    if "extra_names" in data:
+        names = [str(x) for x in np.ravel(data["extra_names"])]
+        kinds = ([str(x) for x in np.ravel(data["extra_kinds"])] if "extra_kinds" in data
+                 else ["interval"] * len(names))
+        if len(kinds) != len(names):
+            raise FileFormatError(f"{path.name}: extra_kinds must give one kind per extra name")
+        for name, kind in zip(names, kinds):
+            tk, vk = f"extra__{name}__time", f"extra__{name}__values"
+            if tk not in data or vk not in data:
+                raise FileFormatError(f"{path.name} lacks {tk} or {vk} for user variable {name}")
+            extra[name] = Signal(np.ravel(data[tk]), np.ravel(data[vk]), kind, vk)
     provenance = {"source": f"npz bundle {path.name}"}
     if "provenance" in data:
         try:
@@ -182,4 +215,6 @@ def read_bundle(path, drop_empty_units: bool = False) -> Recording:
         epochs=epochs,
         provenance=provenance,
         drop_empty_units=drop_empty_units,
+        lfp=lfp,
+        extra=extra,
     )

@@ -10,7 +10,10 @@ Conventions (docs/data_conventions.md has the full text):
 * spikes: the ``units`` table (one bulk read of ``spike_times`` and its index); ids as
   given, or the ``unit_name`` column when present;
 * trials: the ``trials`` table; epochs: the ``epochs`` table with environment from the column
-  ``environment``, else the first tag.
+  ``environment``, else the first tag;
+* LFP (only when asked for, ``lfp="path"``): one channel of an ``ElectricalSeries`` (raw in
+  ``acquisition`` or inside an ``LFP`` container of a processing module), read as a single
+  column slice; user variables (``extra={"name": "path"}``): a ``TimeSeries`` each.
 
 Every object can be named by its path in the file instead, e.g.
 ``read_nwb(path, position="processing/tracking/Position/xy")``.
@@ -25,7 +28,7 @@ from pathlib import Path
 import numpy as np
 
 from encodex.errors import FileFormatError, InputError, OutputError, SettingsError
-from encodex.io.recording import Recording, make_recording, wrap_angle
+from encodex.io.recording import SIGNAL_KINDS, Recording, Signal, make_recording, wrap_angle
 
 ROLES = ("position", "heading", "units", "trials", "epochs")
 
@@ -78,7 +81,7 @@ def _open(path: Path):
 
 def _children(obj):
     """Named children of a pynwb container (processing module, data interface...)."""
-    for attr in ("data_interfaces", "spatial_series", "time_series"):
+    for attr in ("data_interfaces", "spatial_series", "time_series", "electrical_series"):
         d = getattr(obj, attr, None)
         if isinstance(d, dict) or hasattr(d, "items"):
             try:
@@ -354,10 +357,90 @@ def _epoch_names(table, where):
     )
 
 
+def _read_lfp(nwbfile, path, channel, provenance) -> Signal:
+    """One channel of an ElectricalSeries (or of the single series of an LFP container)."""
+    obj = _resolve(nwbfile, path)
+    where = str(path).strip("/")
+    if type(obj).__name__ in ("LFP", "FilteredEphys"):
+        series = dict(obj.electrical_series.items())
+        if not series:
+            raise FileFormatError(f"{where} holds no ElectricalSeries; name the series itself")
+        if len(series) > 1:
+            raise FileFormatError(
+                f"{where} holds several series ({', '.join(sorted(series))}); name one, e.g. "
+                f"{where}/{sorted(series)[0]}"
+            )
+        name, obj = next(iter(series.items()))
+        where = f"{where}/{name}"
+    if not hasattr(obj, "data") or type(obj).__name__ not in ("ElectricalSeries", "TimeSeries"):
+        raise FileFormatError(
+            f"{where} is a {type(obj).__name__}, not an ElectricalSeries; name the LFP series "
+            "(e.g. processing/ecephys/LFP/lfp or acquisition/ElectricalSeries)"
+        )
+    shape = obj.data.shape
+    n_ch = 1 if len(shape) == 1 else int(shape[1])
+    channel = int(channel)
+    if not 0 <= channel < n_ch:
+        raise SettingsError(
+            f"LFP channel {channel} out of range: {where} has {n_ch} channel(s); use 0.."
+            f"{n_ch - 1}"
+        )
+    if len(shape) > 2:
+        raise FileFormatError(f"{where} has shape {shape}; expected (samples, channels)")
+    # One hyperslab read of the chosen column: the other channels are never loaded.
+    raw = obj.data[:] if len(shape) == 1 else obj.data[:, channel]
+    values = np.asarray(raw, dtype=float)
+    conv = float(getattr(obj, "conversion", 1.0) or 1.0)
+    offset = float(getattr(obj, "offset", 0.0) or 0.0)
+    ch_conv = getattr(obj, "channel_conversion", None)
+    if ch_conv is not None and len(shape) == 2:
+        conv *= float(np.asarray(ch_conv[channel]))
+    values = values * conv + offset
+    times = _series_times(obj, f"LFP series {where}")
+    provenance["lfp"] = f"{where} channel {channel}"
+    return Signal(times, values, "interval", f"{where}[:, {channel}]",
+                  str(getattr(obj, "unit", "") or ""))
+
+
+def _read_extra(nwbfile, name, path, kind, provenance) -> Signal:
+    """A user variable from a TimeSeries (one value per sample)."""
+    obj = _resolve(nwbfile, path)
+    where = str(path).strip("/")
+    if not hasattr(obj, "data") or not hasattr(obj, "timestamps"):
+        raise FileFormatError(
+            f"{where} is a {type(obj).__name__}, not a TimeSeries; name the series holding "
+            f"variable {name!r}"
+        )
+    v = _series_values(obj)
+    if v.ndim == 2 and v.shape[1] == 1:
+        v = v[:, 0]
+    if v.ndim != 1:
+        raise InputError(
+            f"variable {name!r} at {where} has shape {v.shape}; a user variable needs one "
+            "value per sample (split the columns into separate series)"
+        )
+    unit = str(getattr(obj, "unit", "") or "").strip().lower()
+    if kind is None:
+        kind = "circular" if unit in _ANGLE_TO_RAD else "interval"
+    if kind not in SIGNAL_KINDS:
+        raise SettingsError(f"kind {kind!r} of variable {name!r} is unknown; use interval or "
+                            "circular")
+    if kind == "circular":
+        if unit in _ANGLE_TO_RAD:
+            v = v * _ANGLE_TO_RAD[unit]
+        else:
+            provenance[f"extra:{name}_unit_note"] = (
+                f"unit {unit!r} not an angle unit; values taken as radians")
+    provenance[f"extra:{name}"] = f"{where} ({kind})"
+    return Signal(_series_times(obj, f"series {where}"), v, kind, where, unit)
+
+
 # --------------------------------------------------------------------------- public
 
 
-def read_nwb(path, drop_empty_units: bool = False, **object_paths) -> Recording:
+def read_nwb(path, drop_empty_units: bool = False, lfp: str | None = None,
+             lfp_channel: int = 0, extra=None, extra_kinds=None,
+             **object_paths) -> Recording:
     """Read a recording from an NWB file following the encodex conventions.
 
     Parameters
@@ -369,6 +452,18 @@ def read_nwb(path, drop_empty_units: bool = False, **object_paths) -> Recording:
     **object_paths
         Optional path inside the file for ``position``, ``heading``, ``units``, ``trials``,
         ``epochs`` (e.g. ``trials="intervals/runs"``), overriding the search.
+    lfp : str, optional
+        Path of an ``ElectricalSeries`` (e.g. ``acquisition/ElectricalSeries``) or of an
+        ``LFP`` container holding one (e.g. ``processing/ecephys/LFP``): the trace from which
+        the rhythm phase is computed. Only the chosen channel is read.
+    lfp_channel : int
+        Column of the series to read (0-based index into its channels; default 0).
+    extra : mapping of str to str, optional
+        User variables: name -> path of a ``TimeSeries`` (e.g. ``{"goal_bearing":
+        "processing/behavior/goal_bearing"}``).
+    extra_kinds : mapping of str to str, optional
+        Basis kind of each user variable (``"interval"`` or ``"circular"``); by default
+        circular when the series' unit is an angle (radians, degrees), interval otherwise.
 
     Returns
     -------
@@ -420,6 +515,20 @@ def read_nwb(path, drop_empty_units: bool = False, **object_paths) -> Recording:
         if epochs_b is not None and epochs_b.shape[0]:
             env = _epoch_names(etable, provenance["epochs"])
             epochs = [(a, b, n) for (a, b), n in zip(epochs_b, env)]
+        lfp_signal = None
+        if lfp:
+            lfp_signal = _read_lfp(nwbfile, lfp, lfp_channel, provenance)
+        kinds = dict(extra_kinds or {})
+        unknown_kinds = sorted(set(kinds) - set(extra or {}))
+        if unknown_kinds:
+            raise SettingsError(
+                f"kinds given for {', '.join(unknown_kinds)} but no such extra variable; name "
+                "its series in extra={name: path}"
+            )
+        extra_signals = {
+            name: _read_extra(nwbfile, name, p, kinds.get(name), provenance)
+            for name, p in dict(extra or {}).items()
+        }
     finally:
         io.close()
     if len(set(names)) != len(names):
@@ -433,6 +542,8 @@ def read_nwb(path, drop_empty_units: bool = False, **object_paths) -> Recording:
         epochs=epochs,
         provenance=provenance,
         drop_empty_units=drop_empty_units,
+        lfp=lfp_signal,
+        extra=extra_signals,
     )
 
 
@@ -459,6 +570,9 @@ def write_nwb(
     ``processing/behavior/CompassDirection/heading`` (radians), with a starting time and rate
     when the timestamps are regular; spikes to the ``units`` table (string ids in a
     ``unit_name`` column); trials and epochs (with an ``environment`` column) to their tables.
+    An LFP channel goes to the ``ElectricalSeries`` ``processing/ecephys/LFP/lfp`` (volts,
+    one electrode in the electrodes table), user variables to ``TimeSeries``
+    ``processing/behavior/<name>`` (unit ``radians`` when circular).
 
     Parameters
     ----------
@@ -538,6 +652,17 @@ def write_nwb(
         nwbfile.add_epoch_column("environment", "name of the environment of the epoch")
         for a, b, name in recording.epochs:
             nwbfile.add_epoch(start_time=a, stop_time=b, tags=[name], environment=name)
+    if recording.lfp is not None:
+        _add_lfp(nwbfile, recording.lfp)
+    for name, sig in recording.extra.items():
+        from pynwb import TimeSeries
+
+        behavior.add(TimeSeries(
+            name=name, data=np.asarray(sig.values, dtype=float),
+            unit="radians" if sig.kind == "circular" else (sig.unit or "n.a."),
+            description=f"user variable {name} ({sig.kind})",
+            **_timing(sig.times),
+        ))
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
         with NWBHDF5IO(str(path), "w") as io:
@@ -557,4 +682,30 @@ def _spatial_series(name, data, unit, frame, description, timing):
         reference_frame=frame,
         description=description,
         **timing,
+    )
+
+
+def _timing(ts: np.ndarray) -> dict:
+    rate = _regular_rate(ts)
+    return {"starting_time": float(ts[0]), "rate": rate} if rate is not None else {
+        "timestamps": ts}
+
+
+def _add_lfp(nwbfile, sig: Signal) -> None:
+    """One-channel LFP as processing/ecephys/LFP/lfp with the electrode metadata NWB needs."""
+    from pynwb.ecephys import LFP, ElectricalSeries
+
+    device = nwbfile.create_device(name="probe", description="recording probe")
+    group = nwbfile.create_electrode_group(
+        name="shank0", description="electrodes of the LFP channel", location="hippocampus",
+        device=device,
+    )
+    nwbfile.add_electrode(group=group, location="hippocampus")
+    ecephys = nwbfile.create_processing_module("ecephys", "Local field potential")
+    region = nwbfile.create_electrode_table_region([0], "the LFP electrode")
+    lfp = LFP(name="LFP")
+    ecephys.add(lfp)
+    lfp.create_electrical_series(
+        name="lfp", data=np.asarray(sig.values, dtype=float)[:, None], electrodes=region,
+        description="local field potential, volts", **_timing(sig.times),
     )

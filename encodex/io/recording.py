@@ -97,6 +97,70 @@ def _check_intervals(name: str, bounds: np.ndarray) -> np.ndarray:
     return bounds
 
 
+#: Basis kinds a user-defined variable may take.
+SIGNAL_KINDS = ("interval", "circular")
+
+
+@dataclass(frozen=True, eq=False)
+class Signal:
+    """A sampled signal with its own clock: an LFP channel or a user-defined variable.
+
+    Parameters
+    ----------
+    times : ndarray, shape (n,)
+        Sample times, seconds, strictly increasing.
+    values : ndarray, shape (n,)
+        Samples (LFP: volts; a user variable: its own unit, radians when circular); NaN
+        marks unknown samples.
+    kind : str
+        ``"interval"`` (bounded scalar) or ``"circular"`` (angle in radians); for an LFP it
+        is ignored.
+    source : str
+        Where it was read from (object path in the file), for the provenance.
+    unit : str
+        Unit of the values as declared by the file (informational).
+
+    Raises
+    ------
+    encodex.errors.InputError
+        On mismatched lengths, non-increasing times, or a kind other than interval/circular.
+    """
+
+    times: np.ndarray
+    values: np.ndarray
+    kind: str = "interval"
+    source: str = ""
+    unit: str = ""
+
+    def __post_init__(self) -> None:
+        what = self.source or "signal"
+        t = _as_1d_float(f"timestamps of {what}", self.times)
+        v = _as_1d_float(f"values of {what}", self.values)
+        if t.size != v.size:
+            raise InputError(
+                f"{what} has {v.size} samples but {t.size} timestamps; give one time per sample"
+            )
+        if t.size < 2:
+            raise InputError(f"{what} has {t.size} sample(s); at least 2 are needed")
+        _check_increasing(f"timestamps of {what}", t)
+        if self.kind not in SIGNAL_KINDS:
+            raise InputError(
+                f"kind {self.kind!r} of {what} is unknown; use 'interval' or 'circular'"
+            )
+        v = np.where(np.isfinite(v), v, np.nan)
+        if self.kind == "circular":
+            v = wrap_angle(v)
+        t.setflags(write=False)
+        v.setflags(write=False)
+        object.__setattr__(self, "times", t)
+        object.__setattr__(self, "values", v)
+
+    @property
+    def rate_hz(self) -> float:
+        """Median sampling rate, Hz."""
+        return float(1.0 / np.median(np.diff(self.times)))
+
+
 @dataclass(frozen=True, eq=False)
 class Recording:
     """A raw recording: tracking, spikes, trials and environments, in SI units.
@@ -122,6 +186,10 @@ class Recording:
     provenance : Mapping[str, str]
         Which object of the file each part was read from (e.g. ``"position":
         "processing/behavior/Position/position"``) and other notes.
+    lfp : Signal, optional
+        One LFP channel (volts) from which the rhythm phase is computed; None without.
+    extra : Mapping[str, Signal]
+        User-defined variables by name, each with its basis kind.
 
     Raises
     ------
@@ -138,9 +206,21 @@ class Recording:
     trials: np.ndarray = field(default_factory=lambda: np.zeros((0, 2)))
     epochs: tuple[tuple[float, float, str], ...] = ()
     provenance: Mapping[str, str] = field(default_factory=dict)
+    lfp: Signal | None = None
+    extra: Mapping[str, Signal] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
         set_ = object.__setattr__
+        if self.lfp is not None and not isinstance(self.lfp, Signal):
+            raise InputError("lfp must be an encodex.io.Signal (times, values); wrap the trace")
+        extra = dict(self.extra or {})
+        for name, sig in extra.items():
+            _check_extra_name(name)
+            if not isinstance(sig, Signal):
+                raise InputError(
+                    f"extra variable {name!r} must be an encodex.io.Signal(times, values, kind)"
+                )
+        set_(self, "extra", extra)
         t = _as_1d_float("tracking timestamps", self.timestamps)
         if t.size < 2:
             raise InputError(
@@ -250,6 +330,19 @@ class Recording:
         return tuple(seen)
 
 
+def _check_extra_name(name) -> None:
+    from encodex.variables import KINDS, VARIABLES
+
+    if not isinstance(name, str) or not name.isidentifier():
+        raise InputError(
+            f"variable name {name!r} must be a plain identifier (letters, digits, _); rename it"
+        )
+    if name in VARIABLES or name in KINDS:
+        raise InputError(
+            f"variable name {name!r} is built into encodex; give the user variable another name"
+        )
+
+
 def make_recording(
     timestamps,
     position,
@@ -259,6 +352,8 @@ def make_recording(
     epochs=None,
     provenance: Mapping[str, str] | None = None,
     drop_empty_units: bool = False,
+    lfp: Signal | None = None,
+    extra: Mapping[str, Signal] | None = None,
 ) -> Recording:
     """Build a :class:`Recording` from plain arrays (a convenience for in-memory data).
 
@@ -278,6 +373,10 @@ def make_recording(
     provenance : mapping, optional
     drop_empty_units : bool
         Drop units without spikes instead of raising :class:`~encodex.errors.InputError`.
+    lfp : Signal, optional
+        One LFP channel for the rhythm phase.
+    extra : mapping of name to Signal, optional
+        User-defined variables.
 
     Returns
     -------
@@ -306,4 +405,6 @@ def make_recording(
         trials=np.zeros((0, 2)) if trials is None else trials,
         epochs=tuple(epochs or ()),
         provenance=prov,
+        lfp=lfp,
+        extra=dict(extra or {}),
     )
