@@ -183,9 +183,9 @@ def register_report_commands(subparsers) -> None:
                     "NWB, fit every cell, then write tables, the environment comparison and "
                     "the HTML report.")
     p.add_argument("--out", required=True, help="folder for everything the demo writes")
-    p.add_argument("--cells", type=int, default=24, help="simulated units (default 24)")
-    p.add_argument("--duration", type=float, default=600.0,
-                   help="seconds per environment (default 600)")
+    p.add_argument("--cells", type=int, default=12, help="simulated units (default 12)")
+    p.add_argument("--duration", type=float, default=300.0,
+                   help="seconds per environment (default 300)")
     p.add_argument("--jobs", type=int, default=2, help="parallel workers (default 2)")
     p.add_argument("--seed", type=int, default=1, help="seed of the simulation and folds")
     p.set_defaults(func=run_demo)

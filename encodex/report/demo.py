@@ -5,14 +5,12 @@ simulate -> NWB -> fit -> table -> compare -> report, each step timed and printe
 
 from __future__ import annotations
 
-import subprocess
-import sys
 import time
 from pathlib import Path
 
 import pandas as pd
 
-from encodex.errors import EncodexError, OutputError, SettingsError
+from encodex.errors import OutputError, SettingsError
 
 __all__ = ["demo", "DEMO_ENVIRONMENTS"]
 
@@ -21,17 +19,11 @@ DEMO_ENVIRONMENTS = ("room_a", "room_b")
 
 
 def _fit(nwb: Path, out: Path, jobs: int, seed: int, echo) -> None:
-    """Run ``encodex fit`` exactly as a user would, through the command line."""
-    cmd = [sys.executable, "-m", "encodex", "fit", str(nwb), "--out", str(out),
-           "--jobs", str(jobs), "--seed", str(seed)]
-    echo("$ " + " ".join(["encodex", *cmd[3:]]))
-    res = subprocess.run(cmd, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
-    tail = res.stdout.strip().splitlines()[-5:]
-    for line in tail:
-        echo("  " + line[-160:])
-    if res.returncode != 0:
-        raise EncodexError(
-            f"`encodex fit` failed with exit code {res.returncode}; see the lines above")
+    """Fit every cell as ``encodex fit NWB --out OUT --jobs JOBS --seed SEED`` does."""
+    from encodex.population import run_population
+
+    echo(f"  (same as: encodex fit {nwb} --out {out} --jobs {jobs} --seed {seed})")
+    run_population(nwb, out=out, jobs=jobs, seed=seed, progress=True)
 
 
 def recovery_summary(cells: pd.DataFrame, truth: pd.DataFrame) -> pd.DataFrame:
@@ -61,7 +53,7 @@ def recovery_summary(cells: pd.DataFrame, truth: pd.DataFrame) -> pd.DataFrame:
     return pd.DataFrame(rows, columns=["environment", "classified", "exact", "percent_exact"])
 
 
-def demo(out, n_cells: int = 24, duration_s: float = 600.0, jobs: int = 2, seed: int = 1,
+def demo(out, n_cells: int = 12, duration_s: float = 300.0, jobs: int = 2, seed: int = 1,
          echo=print, max_cells: int = 16) -> dict[str, Path]:
     """Run the demo: simulate a session, write NWB, fit, then tables, comparison and report.
 

@@ -380,7 +380,8 @@ def comparison_figure(cmp):
     ax.invert_yaxis()
     ax.set_xlim(0, 118)
     ax.set_xlabel("cells carrying the variable (% of classified, 95% Wilson CI)")
-    ax.legend(frameon=False, fontsize=8, loc="lower right")
+    ax.legend(frameon=False, fontsize=8, loc="upper center", bbox_to_anchor=(0.5, -0.16),
+              ncol=2)
     ax.set_title("paired" if cmp.paired else "unpaired (cells not matched)")
     fig.suptitle(f"{cmp.a} vs {cmp.b}", fontsize=10)
     return fig

@@ -76,6 +76,14 @@ def _bin_size(run: dict):
     return "?" if b is None else f"{b:g}"
 
 
+def _transition_frame(t: pd.DataFrame, a: str, b: str) -> pd.DataFrame:
+    """Transition counts as a flat table whose first column names the A label."""
+    flat = t.copy()
+    flat.columns = [str(c) for c in flat.columns]
+    flat.insert(0, f"{a} \\ {b}", [str(i) for i in flat.index])
+    return flat.reset_index(drop=True)
+
+
 def _pairs(envs: tuple[str, ...], between) -> list[tuple[str, str]]:
     if between:
         a, b = between
@@ -178,8 +186,7 @@ def render_report(run: RunFolder, between=None, max_cells: int = 30,
         if cmp.paired:
             parts += ["<h4>Label transitions (rows: " + html.escape(a) + ", columns: "
                       + html.escape(b) + ")</h4>",
-                      _table(cmp.transitions.reset_index().rename(
-                          columns={cmp.transitions.index.name or "index": f"{a} \\ {b}"}))]
+                      _table(_transition_frame(cmp.transitions, a, b))]
         parts += ["<h4>Per variable</h4>", _table(summary_frame(cmp)),
                   "<h4>Held-out gains</h4>", _table(cmp.gains),
                   "<h4>Active in one environment, silent in the other</h4>",
