@@ -40,9 +40,11 @@ DEFAULT_BAND: tuple[float, float] = (6.0, 10.0)
 DEFAULT_ORDER = 3
 #: Number of periods of the band's low edge marked unknown at each end of every stretch of
 #: trace: the forward-backward filter and the FFT-based Hilbert transform both distort the
-#: phase near the ends (measured in reference_checks/test_phase_reference.py on a clean 8 Hz
-#: sinusoid with the 6-10 Hz band: about 0.15 rad at 1 period, below 0.04 rad beyond 3).
-EDGE_PERIODS = 3.0
+#: phase near the ends, most for frequencies at the band edges (measured on clean sinusoids
+#: of 6-10 Hz with the 6-10 Hz band, 250-2000 Hz sampling: up to 0.12 rad at 3 periods,
+#: below 0.015 rad at 6 periods; reference_checks/test_phase_reference.py). Six periods are
+#: 1 s for theta, a negligible loss in a session of minutes.
+EDGE_PERIODS = 6.0
 #: A trace is decimated before filtering when it is sampled faster than this many times the
 #: band's high edge (and faster than 500 Hz): filtering a 30 kHz trace for a 10 Hz rhythm
 #: wastes time and makes the low-frequency filter sections numerically touchy.

@@ -68,7 +68,7 @@ def test_lfp_phase_splits_at_gaps_and_marks_edges():
     x = x.copy()
     x[(t > 14.0) & (t < 14.01)] = np.nan  # a few NaN samples
     tt, pp = lfp_phase(t[keep], x[keep])
-    edge = 3.0 / 6.0
+    edge = 6.0 / 6.0
     known = np.isfinite(pp)
     # unknown near every stretch edge, known well inside
     for a, b in [(0.0, 8.0), (10.0, 14.0), (14.01, 20.0)]:
@@ -147,7 +147,7 @@ def test_build_session_adds_phase_and_masks_unknown_bins():
     s = build_session(rec, bin_size=0.02)
     ph = np.asarray(s.covariates["phase"])
     t = s.time
-    inner = (t > 5.0 + 0.6) & (t < 40.0 - 0.6)
+    inner = (t > 5.0 + 1.1) & (t < 40.0 - 1.1)
     assert _circ_err(ph[inner], 2 * np.pi * 8.0 * t[inner]).max() < 0.02
     unknown = ~np.isfinite(ph)
     assert unknown[t < 5.0].all()
@@ -180,7 +180,7 @@ def test_phase_band_changes_the_rhythm_followed():
     s = build_session(rec, phase_band=(2.0, 4.0))
     ph = np.asarray(s.covariates["phase"])
     ok = np.isfinite(ph)
-    assert ok.mean() > 0.9
+    assert ok.mean() > 0.8  # 6 periods of 2 Hz (3 s) unknown at each end of 40 s
     assert _circ_err(ph[ok], 2 * np.pi * 3.0 * s.time[ok]).max() < 0.03
 
 

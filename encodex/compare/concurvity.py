@@ -201,7 +201,7 @@ def concurvity(design, terms: Iterable[str] | None = None, coef: np.ndarray | No
 
 def pairwise_concurvity(design, terms: Iterable[str] | None = None,
                         weights: np.ndarray | None = None,
-                        measure: str = "worst") -> dict[tuple[str, str], float]:
+                        measure: str = "mean") -> dict[tuple[str, str], float]:
     """Concurvity of each term given one other term, for every ordered pair.
 
     Parameters
@@ -211,8 +211,9 @@ def pairwise_concurvity(design, terms: Iterable[str] | None = None,
         Terms to compare; all terms of the design by default.
     weights : ndarray, optional
         Bin weights of the inner product (default ones).
-    measure : {"worst", "mean"}
-        ``worst`` is symmetric in the pair; ``mean`` is not.
+    measure : {"mean", "worst"}
+        ``mean`` (default; the measure used for flags) or ``worst`` (symmetric in the pair;
+        ``mean`` is symmetric only between terms with as many columns).
 
     Returns
     -------

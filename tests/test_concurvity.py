@@ -1,0 +1,95 @@
+"""Concurvity measures and the ambiguity flags (encodex.compare.concurvity)."""
+
+import numpy as np
+import pytest
+
+from encodex.compare.concurvity import (DEFAULT_THRESHOLD, TermConcurvity, ambiguous_pairs,
+                                        concurvity, pairwise_concurvity)
+from encodex.design import CircularBasis, IntervalBasis, build_design
+from encodex.errors import InputError, SettingsError
+
+
+@pytest.fixture(scope="module")
+def design():
+    rng = np.random.default_rng(0)
+    n = 4000
+    x = rng.uniform(0, 1, n)
+    cov = {
+        "speed": x,
+        "twin": 2.0 * x + 1.0,  # an exact (linear) function of speed
+        "near": x + rng.normal(0, 0.02, n),  # almost a function of speed
+        "angle": rng.uniform(0, 2 * np.pi, n),  # unrelated
+    }
+    bases = {
+        "speed": IntervalBasis(8, (0.0, 1.0)),
+        "twin": IntervalBasis(8, (1.0, 3.0)),
+        "near": IntervalBasis(8, (cov["near"].min(), cov["near"].max())),
+        "angle": CircularBasis(10),
+    }
+    return build_design(cov, bases)
+
+
+def test_identical_spaces_have_concurvity_one_and_unrelated_terms_near_zero(design):
+    pw = pairwise_concurvity(design)
+    assert pw[("speed", "twin")] == pytest.approx(1.0, abs=1e-8)
+    assert pw[("twin", "speed")] == pytest.approx(1.0, abs=1e-8)
+    assert pw[("speed", "angle")] < 0.02 and pw[("angle", "speed")] < 0.02
+    assert 0.5 < pw[("speed", "near")] < 1.0  # close but not identical
+    worst = pairwise_concurvity(design, measure="worst")
+    for (a, b), v in worst.items():
+        assert v == pytest.approx(worst[(b, a)], abs=1e-9)  # the worst case is symmetric
+        assert pw[(a, b)] <= v + 1e-12  # the mean never exceeds the worst case
+        assert 0.0 <= pw[(a, b)] <= 1.0
+
+
+def test_concurvity_of_a_model_and_its_observed_measure(design):
+    res = concurvity(design, ("speed", "angle"))
+    assert set(res) == {"speed", "angle"}
+    assert isinstance(res["speed"], TermConcurvity)
+    assert res["speed"].others == ("angle",)
+    assert np.isnan(res["speed"].observed)
+    assert res["speed"].worst < 0.05
+    # a one-term model: only the intercept, to which every term is orthogonal
+    single = concurvity(design, ("speed",))
+    assert single["speed"].worst == pytest.approx(0.0, abs=1e-10)
+    # observed: the fitted function of speed is exactly reproduced by twin
+    sub = design.subset(("speed", "twin"))
+    coef = np.random.default_rng(1).normal(size=sub.n_theta)
+    obs = concurvity(design, ("speed", "twin"), coef=coef)
+    assert obs["speed"].observed == pytest.approx(1.0, abs=1e-8)
+    with pytest.raises(InputError, match="coef has"):
+        concurvity(design, ("speed", "twin"), coef=coef[:-1])
+
+
+def test_ambiguous_pairs_flags_inseparable_variables_only(design):
+    flags = ambiguous_pairs(design, ("speed", "angle"))
+    assert flags == {"speed": ("near", "twin"), "angle": ()}  # canonical (alphabetical) order
+    assert ambiguous_pairs(design, ()) == {}
+    strict = ambiguous_pairs(design, ("speed",), threshold=1.0 - 1e-9)
+    assert strict == {"speed": ("twin",)}
+
+
+def test_ambiguous_pairs_from_covariates_drops_unknown_rows_and_uses_kinds():
+    rng = np.random.default_rng(2)
+    n = 3000
+    t = rng.uniform(0, 60, n)
+    d = 0.2 * t * (1 + rng.normal(0, 0.01, n))
+    bearing = rng.uniform(0, 2 * np.pi, n)
+    d[:50] = np.nan
+    cov = {"distance": d, "time": t, "goal_bearing": bearing}
+    flags = ambiguous_pairs(cov, ("distance",), kinds={"goal_bearing": "circular"})
+    assert flags == {"distance": ("time",)}
+
+
+def test_bad_arguments(design):
+    with pytest.raises(SettingsError, match="not in the design"):
+        ambiguous_pairs(design, ("heading",))
+    with pytest.raises(SettingsError, match="threshold"):
+        ambiguous_pairs(design, ("speed",), threshold=1.5)
+    with pytest.raises(SettingsError, match="measure"):
+        pairwise_concurvity(design, measure="best")
+    with pytest.raises(InputError, match="weights"):
+        concurvity(design, weights=np.ones(3))
+    with pytest.raises(InputError, match="Design or a mapping"):
+        ambiguous_pairs([1, 2, 3], ("speed",))
+    assert 0.5 < DEFAULT_THRESHOLD < 1.0
