@@ -128,6 +128,10 @@ def test_methods_paragraph_states_settings_and_cites(run):
     t2 = methods_paragraph(other)
     assert "exhaustive search" in t2 and "200 times" in t2 and "alpha = 0.01" in t2
     assert "forward search" not in t2
+    other["settings"]["correction"] = "bonferroni"
+    assert "Bonferroni-corrected" in methods_paragraph(other)
+    other["settings"]["correction"] = "none"
+    assert "without correction" in methods_paragraph(other)
 
 
 def test_cell_measures_put_skaggs_beside_the_model(run):

@@ -82,6 +82,7 @@ def methods_paragraph(run: dict, with_references: bool = True) -> str:
     min_spikes = get("min_spikes")
     variables = get("variables")
     exhaustive = bool(get("exhaustive", False))
+    correction = get("correction")
     shuffles = int(get("shuffles", 0) or 0)
     min_shift = get("min_shift_s")
     sizes = get("basis_sizes") or {}
@@ -132,8 +133,14 @@ def methods_paragraph(run: dict, with_references: bool = True) -> str:
          ) + (
             f"starting from the mean-rate model, the variable that most improved the mean "
             f"held-out score was kept only if the improvement across folds was significant by "
-            f"a one-sided Wilcoxon signed-rank test (Wilcoxon 1945) at alpha = {_fmt(alpha)}; "
-            f"a cell whose best model did not beat the mean-rate model was labelled \"none\"."
+            f"a one-sided Wilcoxon signed-rank test (Wilcoxon 1945) at alpha = {_fmt(alpha)}"
+            + (f", Bonferroni-corrected for the number m of candidate variables of the step "
+               f"(tested at alpha / m, so that an untuned cell is labelled at a rate of at "
+               f"most alpha)" if correction == "bonferroni" else
+               " without correction for the number of candidates" if correction == "none"
+               else "")
+            + "; a cell whose best model did not beat the mean-rate model was labelled "
+              "\"none\"."
         ),
         f"Cells with fewer than {_fmt(min_spikes)} spikes in an environment were not classified "
         f"(status \"too few spikes\").",
