@@ -37,6 +37,7 @@ def test_cell_figure_position_and_speed(run, tmp_path):
     assert "observed rate (Hz)" in labels
     # colour bars of the fitted map and of the rate map carry their units
     assert "gain (x mean rate)" in labels and "rate (Hz)" in labels
+    assert any("statistical statements at alpha = 0.05" in t.get_text() for t in fig.texts)
     titles = " ".join(ax.get_title() for ax in fig.axes)
     assert "Skaggs" in titles and "bits/spike" in titles
     # the speed panel draws the 95% band as a filled polygon
@@ -65,7 +66,7 @@ def test_heading_axis_in_radians_and_excluded_cell(run):
 
 
 def test_population_figure_counts(run):
-    fig = population_figure(run.cells)
+    fig = population_figure(run.cells, run.alpha)
     bars = fig.axes[0].containers
     assert len(bars) == 2  # one bar series per environment
     heights = {env: sorted(int(r.get_height()) for r in c)
@@ -73,6 +74,7 @@ def test_population_figure_counts(run):
     ok = run.cells[run.cells["status"] == "ok"]
     assert sum(heights["arena_a"]) == (ok["environment"] == "arena_a").sum()
     assert fig.axes[0].get_ylabel() == "cells"
+    assert any("not proof of mechanism" in t.get_text() for t in fig.texts)
     plt.close(fig)
 
 

@@ -49,6 +49,7 @@ def test_written_formats(run, tmp_path):
     names = sorted(p.name for p in files)
     assert names == sorted(f"table_{k}.{e}" for k in ("labels", "variables", "excluded", "cells")
                            for e in ("csv", "md", "tex"))
+    assert "not proof of mechanism" in (tmp_path / "tables" / "README.txt").read_text()
     back = pd.read_csv(tmp_path / "tables" / "table_labels.csv")
     np.testing.assert_allclose(back["percent"], t.labels["percent"])
     md = (tmp_path / "tables" / "table_variables.md").read_text()

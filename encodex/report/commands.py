@@ -97,7 +97,7 @@ def run_report(args) -> int:
     path = build_report(args.dir, out=args.out, between=args.between,
                         max_cells=args.max_cells)
     figdir = path.parent / "figures"
-    fig = population_figure(run.cells)
+    fig = population_figure(run.cells, run.alpha)
     save_figure(fig, figdir / "population")
     plt.close(fig)
     envs = run.environments

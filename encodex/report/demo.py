@@ -128,7 +128,7 @@ def demo(out, n_cells: int = 12, duration_s: float = 300.0, jobs: int = 2, seed:
     import matplotlib.pyplot as plt
 
     for fig, stem in ((comparison_figure(cmp), f"compare_{a}_vs_{b}"),
-                      (population_figure(run.cells), "population")):
+                      (population_figure(run.cells, run.alpha), "population")):
         save_figure(fig, fit_dir / "figures" / stem)
         plt.close(fig)
     echo("  " + cmp.notes[0])

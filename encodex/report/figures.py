@@ -223,6 +223,12 @@ def _plot_observed_predicted(ax, arrays: dict, mean_rate_hz: float) -> None:
     ax.set_title("observed vs predicted, per spatial bin")
 
 
+def _caveat_footer(fig, alpha: float) -> None:
+    fig.text(0.0, -0.01, f"Labels are statistical statements at alpha = {alpha:g} about this "
+             f"session's behaviour (held-out prediction), not proof of mechanism.",
+             fontsize=7, color="0.35", ha="left", va="top")
+
+
 def cell_figure(run: RunFolder, unit: str, environment: str):
     """Figure of one cell in one environment.
 
@@ -273,14 +279,15 @@ def cell_figure(run: RunFolder, unit: str, environment: str):
         f"{int(row['n_spikes'])} spikes"
         + (f", held-out gain {gain:.3f} bits/spike" if np.isfinite(gain) else ""),
         fontsize=10)
+    _caveat_footer(fig, run.alpha)
     return fig
 
 
-def population_figure(cells: pd.DataFrame):
+def population_figure(cells: pd.DataFrame, alpha: float | None = None):
     """How many classified cells carry each combination of variables, per environment.
 
     A bar per combination (label) and environment, with a dot matrix underneath showing which
-    variables the combination holds.
+    variables the combination holds. With ``alpha`` given, a footnote states what a label means.
 
     Returns
     -------
@@ -328,6 +335,8 @@ def population_figure(cells: pd.DataFrame):
     axm.spines["left"].set_visible(False)
     axm.spines["bottom"].set_visible(False)
     axm.tick_params(length=0)
+    if alpha is not None:
+        _caveat_footer(fig, alpha)
     return fig
 
 
@@ -384,4 +393,5 @@ def comparison_figure(cmp):
               ncol=2)
     ax.set_title("paired" if cmp.paired else "unpaired (cells not matched)")
     fig.suptitle(f"{cmp.a} vs {cmp.b}", fontsize=10)
+    _caveat_footer(fig, cmp.alpha)
     return fig

@@ -171,7 +171,7 @@ def render_report(run: RunFolder, between=None, max_cells: int = 30,
                "(bits/spike), peak and mean rate of the occupancy-normalised map (Hz)."),
         f"<p class='small'>{html.escape(caveat)}</p></section>",
         "<section id='population'><h2>Population</h2>",
-        _img(population_figure(cells), "cells per combination of variables"),
+        _img(population_figure(cells, alpha), "cells per combination of variables"),
         "</section>",
         "<section id='compare'><h2>Comparing environments</h2>",
     ]

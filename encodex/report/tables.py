@@ -350,6 +350,13 @@ def write_tables(tables: PaperTables, out_dir: str | Path) -> list[Path]:
              ("excluded", tables.excluded)]
     if tables.cells is not None:
         items.append(("cells", tables.cells))
+    readme = out / "README.txt"
+    try:
+        readme.write_text(
+            "Tables written by `encodex table`: CSV (raw numbers), Markdown and LaTeX "
+            "(booktabs; needs \\usepackage{booktabs}).\n\n" + tables.caveat + "\n")
+    except OSError as exc:
+        raise OutputError(f"cannot write {readme} ({exc.strerror}); check the folder")
     for name, raw in items:
         if name in ("labels", "variables"):
             shown = display_frame(raw, tables.level)
