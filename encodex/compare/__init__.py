@@ -1,10 +1,11 @@
 """Compare stage: folds, held-out scores, forward and exhaustive selection, sklearn estimator."""
 
 from .cell import CellAnalysis, ModelCV, analyse_cell, cross_validate
+from .estimator import SpikeGLM
 from .folds import Folds, chunked_folds
 from .scores import HeldOutScore, heldout_score, mean_rate_counts, pool_scores
 from .selection import Selection, Step, improvement_p, select_variables
 
-__all__ = ["CellAnalysis", "Folds", "HeldOutScore", "ModelCV", "Selection", "Step",
+__all__ = ["CellAnalysis", "Folds", "HeldOutScore", "ModelCV", "Selection", "SpikeGLM", "Step",
            "analyse_cell", "chunked_folds", "cross_validate", "heldout_score", "improvement_p",
            "mean_rate_counts", "pool_scores", "select_variables"]
