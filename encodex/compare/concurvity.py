@@ -36,6 +36,7 @@ sec. 5.3 (concurvity as the non-linear analogue of collinearity).
 
 from __future__ import annotations
 
+import weakref
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 
@@ -101,14 +102,34 @@ def _whitener(g: np.ndarray) -> np.ndarray:
     return u[:, keep] / np.sqrt(d[keep])
 
 
+#: Unweighted Gram matrices of the last few designs (by identity, through weak references):
+#: the comparison stage asks for the flags of many cells of one environment, which share a
+#: design, and the Gram matrix is the only costly step.
+_GRAM_CACHE: dict[int, tuple[weakref.ref, np.ndarray]] = {}
+_GRAM_CACHE_SIZE = 4
+
+
 def _gram(design, weights) -> np.ndarray:
     n = design.n_rows
+    if weights is None:
+        hit = _GRAM_CACHE.get(id(design))
+        if hit is not None and hit[0]() is design:
+            return hit[1]
     w = np.ones(n) if weights is None else np.asarray(weights, dtype=float)
     if w.shape != (n,) or not np.all(np.isfinite(w)) or np.any(w < 0):
         raise InputError(
             f"weights must be {n} finite non-negative numbers (one per bin); got shape {w.shape}"
         )
-    return design.weighted_gram(w)
+    g = design.weighted_gram(w)
+    if weights is None:
+        g.setflags(write=False)
+        while len(_GRAM_CACHE) >= _GRAM_CACHE_SIZE:
+            _GRAM_CACHE.pop(next(iter(_GRAM_CACHE)))
+        try:
+            _GRAM_CACHE[id(design)] = (weakref.ref(design), g)
+        except TypeError:
+            pass  # an object without weak references is simply not cached
+    return g
 
 
 def _measure(gram, idx_j, idx_o, b=None):
@@ -178,8 +199,10 @@ def concurvity(design, terms: Iterable[str] | None = None, coef: np.ndarray | No
     """
     terms = canonical_order(design.names if terms is None else terms)
     _check_terms(design, terms, "model terms")
-    sub = design.subset(terms)
-    gram = _gram(sub, weights)
+    sub = design.subset(terms)  # for the coefficient layout only
+    # The Gram matrix of the full design holds every sub-model's: each term keeps its
+    # columns and constraint, so blocks are picked out by the full design's slices.
+    gram = _gram(design, weights)
     if coef is not None:
         coef = np.asarray(coef, dtype=float).ravel()
         if coef.size != sub.n_theta:
@@ -187,13 +210,13 @@ def concurvity(design, terms: Iterable[str] | None = None, coef: np.ndarray | No
                 f"coef has {coef.size} values but the model {'+'.join(terms)} has "
                 f"{sub.n_theta}; pass the fit of design.subset(terms)"
             )
-    sl = sub.theta_slices
+    sl = design.theta_slices
     out = {}
     for t in terms:
         idx_j = np.arange(sl[t].start, sl[t].stop)
         others = tuple(o for o in terms if o != t)
         idx_o = np.concatenate([[0]] + [np.arange(sl[o].start, sl[o].stop) for o in others])
-        b = None if coef is None else coef[sl[t]]
+        b = None if coef is None else coef[sub.theta_slices[t]]
         worst, mean, obs = _measure(gram, idx_j, idx_o.astype(int), b)
         out[t] = TermConcurvity(t, others, worst, mean, obs)
     return out
@@ -224,9 +247,8 @@ def pairwise_concurvity(design, terms: Iterable[str] | None = None,
         raise SettingsError(f"unknown concurvity measure {measure!r}; use 'worst' or 'mean'")
     terms = canonical_order(design.names if terms is None else terms)
     _check_terms(design, terms, "terms")
-    sub = design.subset(terms)
-    gram = _gram(sub, weights)
-    sl = sub.theta_slices
+    gram = _gram(design, weights)
+    sl = design.theta_slices
     out = {}
     for a in terms:
         ia = np.arange(sl[a].start, sl[a].stop)
