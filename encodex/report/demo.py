@@ -53,7 +53,7 @@ def recovery_summary(cells: pd.DataFrame, truth: pd.DataFrame) -> pd.DataFrame:
     return pd.DataFrame(rows, columns=["environment", "classified", "exact", "percent_exact"])
 
 
-def demo(out, n_cells: int = 12, duration_s: float = 300.0, jobs: int = 2, seed: int = 1,
+def demo(out, n_cells: int = 12, duration_s: float = 480.0, jobs: int = 2, seed: int = 1,
          echo=print, max_cells: int = 16) -> dict[str, Path]:
     """Run the demo: simulate a session, write NWB, fit, then tables, comparison and report.
 
