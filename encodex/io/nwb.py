@@ -693,7 +693,7 @@ def _timing(ts: np.ndarray) -> dict:
 
 def _add_lfp(nwbfile, sig: Signal) -> None:
     """One-channel LFP as processing/ecephys/LFP/lfp with the electrode metadata NWB needs."""
-    from pynwb.ecephys import LFP, ElectricalSeries
+    from pynwb.ecephys import LFP
 
     device = nwbfile.create_device(name="probe", description="recording probe")
     group = nwbfile.create_electrode_group(
