@@ -187,7 +187,8 @@ def cell_measures(run: RunFolder, min_occupancy_s: float = 0.1) -> pd.DataFrame:
     -------
     DataFrame
         ``unit, environment, status, label, n_spikes, mean_rate_hz, bits_per_spike,
-        skaggs_bits_per_spike, peak_rate_hz, map_mean_rate_hz``.
+        skaggs_bits_per_spike, peak_rate_hz, map_mean_rate_hz, ambiguous_with`` (the last
+        as written by the fit: variables that could stand in for the chosen ones).
     """
     from encodex.classic import rate_map, skaggs_information
 
@@ -208,11 +209,12 @@ def cell_measures(run: RunFolder, min_occupancy_s: float = 0.1) -> pd.DataFrame:
                      "status": d["status"], "label": d["variables"],
                      "n_spikes": d["n_spikes"], "mean_rate_hz": d["mean_rate_hz"],
                      "bits_per_spike": d["bits_per_spike"], "skaggs_bits_per_spike": info,
-                     "peak_rate_hz": peak, "map_mean_rate_hz": mean})
+                     "peak_rate_hz": peak, "map_mean_rate_hz": mean,
+                     "ambiguous_with": d.get("ambiguous_with", "")})
     return pd.DataFrame(rows, columns=["unit", "environment", "status", "label", "n_spikes",
                                        "mean_rate_hz", "bits_per_spike",
                                        "skaggs_bits_per_spike", "peak_rate_hz",
-                                       "map_mean_rate_hz"])
+                                       "map_mean_rate_hz", "ambiguous_with"])
 
 
 @dataclass(frozen=True)
