@@ -49,3 +49,18 @@ def test_recording_refuses_bad_extras():
     with pytest.raises(InputError, match="lfp must be"):
         Recording(rec.timestamps, rec.position, rec.unit_ids, rec.spike_times,
                   lfp=np.zeros(10))
+
+
+def test_parse_extra_option():
+    from encodex.errors import SettingsError
+    from encodex.io import parse_extra_option
+
+    assert parse_extra_option("goal_bearing=processing/behavior/goal_bearing:circular") == (
+        "goal_bearing", "processing/behavior/goal_bearing", "circular")
+    assert parse_extra_option(" pupil = processing/behavior/pupil ") == (
+        "pupil", "processing/behavior/pupil", None)
+    assert parse_extra_option("x=acquisition/x:interval")[2] == "interval"
+    for bad in ("pupil", "=processing/x", "a b=processing/x", "x=processing/x:planar",
+                "x="):
+        with pytest.raises(SettingsError, match="NAME=OBJECT_PATH"):
+            parse_extra_option(bad)

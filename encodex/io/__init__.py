@@ -20,6 +20,7 @@ __all__ = [
     "Recording",
     "Signal",
     "make_recording",
+    "parse_extra_option",
     "read_bundle",
     "read_nwb",
     "read_recording",
@@ -85,3 +86,45 @@ def read_recording(path, drop_empty_units: bool = False, lfp: str | None = None,
     raise FileFormatError(
         f"unknown file type {suffix!r} for {path.name}; give an .nwb file or an .npz bundle"
     )
+
+
+def parse_extra_option(text: str) -> tuple[str, str, str | None]:
+    """Parse a command-line user variable ``NAME=OBJECT_PATH[:KIND]``.
+
+    Parameters
+    ----------
+    text : str
+        E.g. ``"goal_bearing=processing/behavior/goal_bearing:circular"``; ``KIND`` is
+        ``interval`` or ``circular`` and may be left out (then taken from the series' unit).
+
+    Returns
+    -------
+    (name, path, kind)
+        ``kind`` is None when not given. Pass ``extra={name: path}`` and, when given,
+        ``extra_kinds={name: kind}`` to :func:`read_recording` or
+        :func:`encodex.session.load_session`.
+
+    Raises
+    ------
+    encodex.errors.SettingsError
+        When the text is not of that form.
+    """
+    from encodex.io.recording import SIGNAL_KINDS
+
+    name, sep, rest = str(text).partition("=")
+    name, rest = name.strip(), rest.strip()
+    kind = None
+    if ":" in rest:
+        head, _, tail = rest.rpartition(":")
+        if tail in SIGNAL_KINDS:
+            rest, kind = head, tail
+        elif "/" not in tail:
+            raise SettingsError(
+                f"unknown kind {tail!r} in {text!r}; use NAME=OBJECT_PATH:interval or :circular"
+            )
+    if not sep or not name.isidentifier() or not rest:
+        raise SettingsError(
+            f"cannot read {text!r} as a user variable; write NAME=OBJECT_PATH[:KIND], e.g. "
+            "goal_bearing=processing/behavior/goal_bearing:circular"
+        )
+    return name, rest, kind
