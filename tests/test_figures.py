@@ -1,7 +1,6 @@
 """Figures: files in PNG and PDF, units on axes, the right panels for each cell."""
 
 import matplotlib.pyplot as plt
-import numpy as np
 import pytest
 
 from encodex.errors import InputError

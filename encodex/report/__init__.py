@@ -14,7 +14,11 @@ Every label is a statistical statement at the run's alpha about this session's b
 not proof of mechanism (see :func:`encodex.report.wording.label_caveat`).
 """
 
-from encodex.report.environments import EnvironmentComparison, compare_environments, write_comparison
+from encodex.report.environments import (
+    EnvironmentComparison,
+    compare_environments,
+    write_comparison,
+)
 from encodex.report.figures import cell_figure, comparison_figure, population_figure, save_figure
 from encodex.report.html import build_report, render_report
 from encodex.report.load import RunFolder, load_run
