@@ -289,3 +289,22 @@ def test_simulated_nwb_with_lfp_passes_nwbinspector(tmp_path):
     found = [m for m in inspect_nwbfile(nwbfile_path=str(paths["nwb"]))
              if m.importance in (Importance.CRITICAL, Importance.PYNWB_VALIDATION)]
     assert found == [], [m.message for m in found]
+
+
+def test_wide_band_series_is_decimated_while_read_in_chunks(tmp_path, base_recording,
+                                                           monkeypatch):
+    import encodex.io.nwb as nwb_mod
+
+    rate = 20000.0
+    f = _nwb_with_ephys(tmp_path / "raw.nwb", base_recording, n_ch=2, rate=rate, dur=30.0)
+    monkeypatch.setattr(nwb_mod, "LFP_CHUNK_SAMPLES", 1 << 30)
+    whole = read_recording(f, lfp="acquisition/ElectricalSeries", lfp_channel=1)
+    monkeypatch.setattr(nwb_mod, "LFP_CHUNK_SAMPLES", 50_000)  # twelve chunks
+    rec = read_recording(f, lfp="acquisition/ElectricalSeries", lfp_channel=1)
+    assert rec.lfp.values.size == 30000  # 20 kHz -> 1 kHz
+    assert rec.lfp.rate_hz == pytest.approx(1000.0)
+    assert "decimated from 20000 Hz" in rec.provenance["lfp_note"]
+    np.testing.assert_allclose(rec.lfp.values, whole.lfp.values, rtol=0, atol=1e-9)
+    # the decimated trace is the 8 Hz channel, undistorted
+    np.testing.assert_allclose(rec.lfp.values, 1e-4 * np.cos(2 * np.pi * 8.0 * rec.lfp.times),
+                               atol=2e-7)

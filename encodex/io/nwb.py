@@ -387,19 +387,68 @@ def _read_lfp(nwbfile, path, channel, provenance) -> Signal:
         )
     if len(shape) > 2:
         raise FileFormatError(f"{where} has shape {shape}; expected (samples, channels)")
-    # One hyperslab read of the chosen column: the other channels are never loaded.
-    raw = obj.data[:] if len(shape) == 1 else obj.data[:, channel]
-    values = np.asarray(raw, dtype=float)
     conv = float(getattr(obj, "conversion", 1.0) or 1.0)
     offset = float(getattr(obj, "offset", 0.0) or 0.0)
     ch_conv = getattr(obj, "channel_conversion", None)
     if ch_conv is not None and len(shape) == 2:
         conv *= float(np.asarray(ch_conv[channel]))
-    values = values * conv + offset
-    times = _series_times(obj, f"LFP series {where}")
+
+    def read(a, b):
+        # One hyperslab read of the chosen column: the other channels are never loaded.
+        raw = obj.data[a:b] if len(shape) == 1 else obj.data[a:b, channel]
+        return np.asarray(raw, dtype=float) * conv + offset
+
+    n = int(shape[0])
+    rate = obj.rate
+    unit = str(getattr(obj, "unit", "") or "")
     provenance["lfp"] = f"{where} channel {channel}"
-    return Signal(times, values, "interval", f"{where}[:, {channel}]",
-                  str(getattr(obj, "unit", "") or ""))
+    if obj.timestamps is None and rate and rate > LFP_DECIMATE_ABOVE_HZ:
+        # Wide-band data (20-30 kHz): decimate while reading, a chunk at a time.
+        q = int(rate // LFP_TARGET_RATE_HZ)
+        values = _read_decimated(read, n, float(rate), q)
+        start = float(obj.starting_time or 0.0)
+        times = start + np.arange(values.size) * (q / float(rate))
+        provenance["lfp_note"] = (
+            f"decimated from {float(rate):g} Hz to {float(rate) / q:g} Hz while reading "
+            "(zero-phase low-pass at 0.4 of the new rate)"
+        )
+    else:
+        values = read(0, n)
+        times = _series_times(obj, f"LFP series {where}")
+    return Signal(times, values, "interval", f"{where}[:, {channel}]", unit)
+
+
+#: Regularly sampled LFP series faster than this (Hz) are decimated while being read, so
+#: that an hour of 30 kHz wide-band data never sits in memory at full rate.
+LFP_DECIMATE_ABOVE_HZ = 2500.0
+#: Rate (Hz) wide-band data are decimated to (at least): rhythms up to about 350 Hz keep
+#: their phase (the anti-alias low-pass is at 0.4 of the new rate).
+LFP_TARGET_RATE_HZ = 1000.0
+#: Samples per chunk when decimating while reading (about 16 MB of float64).
+LFP_CHUNK_SAMPLES = 1 << 21
+
+
+def _read_decimated(read, n: int, rate: float, q: int) -> np.ndarray:
+    """Every q-th sample of a zero-phase low-passed trace, read in overlapping chunks.
+
+    Each chunk is filtered with a margin on both sides that is then dropped; the margin is
+    many times the low-pass filter's impulse response, so the result equals filtering the
+    whole trace at once up to rounding (checked in tests/test_rhythm.py).
+    """
+    from scipy import signal as _signal
+
+    sos = _signal.butter(4, 0.4 * rate / q, btype="lowpass", fs=rate, output="sos")
+    margin = 200 * q
+    chunk = max(LFP_CHUNK_SAMPLES // q, 1) * q
+    out = []
+    for start in range(0, n, chunk):
+        stop = min(start + chunk, n)
+        a, b = max(0, start - margin), min(n, stop + margin)
+        x = read(a, b)
+        if x.size > 3 * 9 + 1:
+            x = _signal.sosfiltfilt(sos, x)
+        out.append(x[np.arange(start, stop, q) - a])
+    return np.concatenate(out)
 
 
 def _read_extra(nwbfile, name, path, kind, provenance) -> Signal:
