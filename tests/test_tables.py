@@ -151,3 +151,14 @@ def test_cell_measures_put_skaggs_beside_the_model(run):
     assert sk[("u01", "arena_a")] > 3 * sk[("u05", "arena_a")]
     # a cell without a unit file (too few spikes) has no classic measure
     assert np.isnan(sk[("u09", "arena_a")])
+
+
+def test_only_tested_variables_are_tabulated(tmp_path):
+    d = write_example_run(tmp_path / "fit", labels={
+        "u1": {"e": "position"}, "u2": {"e": "speed"}, "u3": {"e": "none"}})
+    run_json = json.loads((d / "run.json").read_text())
+    run_json["settings"]["variables"] = ["position", "speed"]
+    (d / "run.json").write_text(json.dumps(run_json))
+    t = make_tables(load_run(d))
+    # distance, heading and time were not tested: no "0 cells" rows that would mislead
+    assert t.variables["variable"].tolist() == ["position", "speed"]

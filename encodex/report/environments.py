@@ -48,7 +48,6 @@ from encodex.errors import SettingsError
 from encodex.report.load import CLASSIFIED_STATUS, RunFolder, carried, variables_in
 from encodex.report.tables import _label_sort_key, wilson_interval
 from encodex.report.wording import label_caveat
-from encodex.variables import VARIABLES
 
 __all__ = [
     "EnvironmentComparison",
@@ -308,8 +307,7 @@ def compare_environments(
             f"drop --paired to compare the populations unpaired"
         )
     notes = []
-    names = [v for v in variables_in(cells)
-             if v in VARIABLES or any(v in carried(x) for x in cells["variables"])]
+    names = list(variables_in(cells, run.tested_variables))
     rows, tests = [], []
     if paired:
         la = ok_a.loc[common, "variables"]

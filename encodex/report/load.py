@@ -68,6 +68,14 @@ class RunFolder:
         return tuple(pd.unique(self.cells["environment"]))
 
     @property
+    def tested_variables(self) -> tuple[str, ...] | None:
+        """Variables the run was restricted to (``--variables``), or None for all."""
+        v = setting(self.run, "variables")
+        if isinstance(v, str):
+            v = [x.strip() for x in v.split(",") if x.strip()]
+        return tuple(v) if v else None
+
+    @property
     def alpha(self) -> float:
         """Significance level of the model comparison recorded in ``run.json`` (default 0.05)."""
         return float(setting(self.run, "alpha", 0.05))
@@ -189,11 +197,15 @@ def carried(label: str) -> tuple[str, ...]:
     return parse_label(str(label))
 
 
-def variables_in(cells: pd.DataFrame) -> tuple[str, ...]:
-    """Built-in variables plus any extra variable that appears in the labels, canonical order."""
+def variables_in(cells: pd.DataFrame, tested=None) -> tuple[str, ...]:
+    """Variables to tabulate, canonical order.
+
+    The variables the run tested (``tested``, from run.json's ``variables`` setting; None:
+    every built-in variable) plus any other variable that appears in a label.
+    """
     from encodex.variables import canonical_order
 
-    seen = set(VARIABLES)
+    seen = set(VARIABLES if not tested else tested)
     for lab in cells["variables"]:
         seen.update(carried(lab))
     return canonical_order(seen)

@@ -125,11 +125,12 @@ def label_counts(cells: pd.DataFrame, level: float = 0.95) -> pd.DataFrame:
     return pd.DataFrame(rows, columns=_columns("label"))
 
 
-def variable_counts(cells: pd.DataFrame, level: float = 0.95) -> pd.DataFrame:
+def variable_counts(cells: pd.DataFrame, level: float = 0.95, tested=None) -> pd.DataFrame:
     """Cells carrying each variable (alone or with others), per environment.
 
     A cell labelled ``position+speed`` counts once for position and once for speed, so the
-    percentages of one environment may add up to more than 100.
+    percentages of one environment may add up to more than 100. ``tested`` restricts the rows
+    to the variables the run considered (None: every built-in variable).
 
     Returns
     -------
@@ -138,14 +139,14 @@ def variable_counts(cells: pd.DataFrame, level: float = 0.95) -> pd.DataFrame:
         is the cell's ``gain_<variable>`` column (bits per spike) among the cells carrying it.
     """
     rows = []
-    names = variables_in(cells)
+    names = variables_in(cells, tested)
     for env in pd.unique(cells["environment"]):
         ok = classified(cells[cells["environment"] == env])
         n = len(ok)
         sets = [set(carried(lab)) for lab in ok["variables"]]
         for v in names:
             has = np.array([v in s for s in sets], dtype=bool)
-            if v not in VARIABLES and not has.any():
+            if v not in (tested or VARIABLES) and not has.any():
                 continue
             col = f"gain_{v}"
             gains = _gain_summary(ok.loc[has, col]) if col in ok else (np.nan,) * 3
@@ -237,7 +238,7 @@ def make_tables(run: RunFolder, level: float = 0.95) -> PaperTables:
     """Build the label, variable and exclusion tables of a fit run."""
     return PaperTables(
         labels=label_counts(run.cells, level),
-        variables=variable_counts(run.cells, level),
+        variables=variable_counts(run.cells, level, run.tested_variables),
         excluded=excluded_cells(run.cells),
         alpha=run.alpha,
         level=level,
