@@ -50,9 +50,12 @@ from encodex.variables import canonical_order
 #: functions a term can represent, 80% of their energy is reproduced by a function of the
 #: other variable, leaving a fifth for a held-out comparison to tell them apart. Measured on
 #: the simulator (reference_checks/test_concurvity_reference.py, 300 s sessions): distance
-#: and time since trial start reach 0.40-0.50 when speed varies between runs, stops and
-#: trials, and 0.95-0.99 at a nearly constant speed; every other pair of built-in variables
-#: stays below 0.35. The threshold sits between the two groups with a wide margin on each side.
+#: and time since trial start reach 0.20-0.50 when speed varies between runs, stops and
+#: trials (8-10 minute environments of the default simulation: 0.2-0.4), and 0.95-0.99 at a
+#: nearly constant speed; every other pair of built-in variables stays below 0.45 in
+#: environments of 5 minutes or more. The threshold sits between the two groups with a wide
+#: margin on each side. Overlaps grow in short environments, where the trajectory covers
+#: few distinct paths: in 2-minute environments pairs with position reach 0.55-0.65.
 DEFAULT_THRESHOLD = 0.8
 
 #: Measure used to flag pairs. The worst case is not usable for flagging: a basis function
