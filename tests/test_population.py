@@ -107,6 +107,11 @@ def test_resume_skips_finished_units_and_refuses_other_settings(first_run, sessi
     assert again.run["execution"]["units_computed"] == 1
     assert again.run["execution"]["units_from_checkpoint"] == 11
     assert (out / "cells.csv").read_text() == (first_run.out / "cells.csv").read_text()
+    # Fits of units read back from the checkpoint are refitted on demand, identically.
+    for key in again.fits:
+        a, b = again.fits[key], first_run.fits[key]
+        assert a.names == b.names
+        assert np.allclose(a.theta, b.theta, rtol=1e-8, atol=1e-10)
     with pytest.raises(CheckpointMismatchError, match="folds: 5 -> 4"):
         run_population(session, out, jobs=1, **{**SETTINGS, "folds": 4})
     other = session.replace(counts=session.counts * 2)
