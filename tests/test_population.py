@@ -47,6 +47,20 @@ def test_output_folder_contract(first_run, session):
         assert set(m["fold"]) == set(range(5))
         assert "none" in set(m["model"]) and c["variables"] in set(m["model"])
         assert len(m) == 5 * m["model"].nunique()
+    # ambiguous_with is the concurvity flag of the chosen variables on the environment's bins
+    from encodex.compare.concurvity import ambiguous_pairs
+    from encodex.design import build_design, default_bases
+
+    for env in ("arena", "annex"):
+        k = session.environments.index(env)
+        rows = session.valid & (session.environment == k)
+        cov = {v: np.asarray(session.covariates[v])[rows] for v in ("heading", "speed")}
+        design = build_design(cov, default_bases(cov))
+        for (_, c) in ok[(ok["environment"] == env) & (ok["variables"] != "none")].iterrows():
+            flags = ambiguous_pairs(design, c["variables"].split("+"))
+            want = sorted({v for vs in flags.values() for v in vs})
+            got = c["ambiguous_with"]
+            assert (got.split(";") if isinstance(got, str) and got else []) == want
     # non-labelled cells still have a row with a reason
     for (_, c) in cells[cells["status"] != "ok"].iterrows():
         assert c["reason"]

@@ -32,7 +32,7 @@ from encodex.variables import VARIABLES, canonical_order
 CELL_COLUMNS = (
     "unit", "environment", "n_spikes", "mean_rate_hz", "status", "reason", "variables",
     "bits_per_spike", "p_value", *(f"gain_{v}" for v in VARIABLES), "shuffle_p",
-    "ambiguous_with", "pseudo_r2", "deviance_explained", "selection_path",
+    "ambiguous_with", "pseudo_r2", "deviance_explained", "selection_path", "tied_with",
 )
 MODEL_COLUMNS = (
     "unit", "environment", "model", "fold", "n_spikes_test", "loglik_test", "bits_per_spike",
@@ -485,9 +485,12 @@ cells.csv   one row per unit and environment:
   gain_<variable> (held-out bits per spike that the variable adds to the chosen model, or
                    that removing it costs when it is in the model; NaN if not analysed),
   shuffle_p (empirical p of the held-out gain against circular shifts; NaN when off),
-  ambiguous_with (other models with as many variables that the chosen one does not beat
-                  significantly, ";"-separated),
-  pseudo_r2 (McFadden, held-out), deviance_explained (held-out), selection_path.
+  ambiguous_with (variables that a chosen variable cannot be told apart from in this
+                  environment because their smooth terms overlap - concurvity of the
+                  design >= 0.8, see encodex.compare.concurvity - ";"-separated),
+  pseudo_r2 (McFadden, held-out), deviance_explained (held-out), selection_path,
+  tied_with (other models with as many variables that the chosen one does not beat
+             significantly across folds, ";"-separated labels).
 models.csv  one row per unit, environment, model (label) and fold, with held-out scores.
 run.json    settings, package versions, timings, masked bins and dropped spikes.
 units/<environment>/<unit>.npz   response curves of the chosen model and the occupancy map.

@@ -16,7 +16,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from encodex.population.settings import RunSettings
-from encodex.variables import VARIABLES, label
+from encodex.variables import VARIABLES, canonical_order, label
 
 #: Status of a cell whose label is a statistical statement.
 STATUS_OK = "ok"
@@ -126,7 +126,7 @@ def empty_cell_row(unit: str, environment: str, n_spikes: int, rate: float, stat
     for v in VARIABLES:
         row[f"gain_{v}"] = np.nan
     row.update(shuffle_p=np.nan, ambiguous_with="", pseudo_r2=np.nan,
-               deviance_explained=np.nan, selection_path="")
+               deviance_explained=np.nan, selection_path="", tied_with="")
     return row
 
 
@@ -191,15 +191,22 @@ def _analyse_cell(env, unit, y, settings, n_spikes, rate, arrays):
     }
     for v in VARIABLES:
         row[f"gain_{v}"] = sel.gains.get(v, np.nan)
+    # Concurvity flags (encodex.compare.concurvity): variables the chosen ones cannot be told
+    # apart from on this environment's bins, whatever the spikes.
+    from encodex.compare.concurvity import ambiguous_pairs
+
+    flags = ambiguous_pairs(design, sel.chosen) if sel.chosen else {}
+    flagged = canonical_order({v for vs in flags.values() for v in vs})
     row.update(
         shuffle_p=a.shuffle_p,
-        ambiguous_with=";".join(sel.ambiguous_with),
+        ambiguous_with=";".join(flagged),
         pseudo_r2=chosen_cv.pooled.pseudo_r2 if sel.chosen else 0.0,
         deviance_explained=chosen_cv.pooled.deviance_explained if sel.chosen else 0.0,
         selection_path=" > ".join(
             f"{'+' if s.accepted else 'x'}{label(set(s.best) - set(s.base))}(p={s.p_value:.3g})"
             for s in sel.steps
         ),
+        tied_with=";".join(sel.ambiguous_with),
     )
     if a.final_fit is not None:
         arrays.update(_responses(a.final_fit))
