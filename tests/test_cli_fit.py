@@ -9,7 +9,7 @@ import pytest
 from encodex.cli import main
 from encodex.simulate import simulate_to_files
 
-ARGS = ["--variables", "heading,speed", "--folds", "5", "--bin-size", "0.1", "--seed", "2"]
+ARGS = ["--variables", "heading,speed", "--folds", "6", "--bin-size", "0.1", "--seed", "2"]
 
 
 @pytest.fixture(scope="module")
@@ -50,23 +50,24 @@ def test_npz_bundle_gives_same_results_as_nwb(files, tmp_path):
     # Both files hold the same simulated recording (one via pynwb, one as an npz bundle).
     b = tmp_path / "b"
     assert main(["fit", str(files["npz"]), "--out", str(b), *ARGS, "--no-progress",
-                 "--variables", "heading", "--folds", "4"]) == 0
+                 "--variables", "heading", "--folds", "5"]) == 0
     a = tmp_path / "a"
     assert main(["fit", str(files["nwb"]), "--out", str(a), *ARGS, "--no-progress",
-                 "--variables", "heading", "--folds", "4"]) == 0
+                 "--variables", "heading", "--folds", "5"]) == 0
     ca, cb = pd.read_csv(a / "cells.csv"), pd.read_csv(b / "cells.csv")
     assert list(ca["variables"]) == list(cb["variables"])
     assert list(ca["bits_per_spike"]) == pytest.approx(list(cb["bits_per_spike"]), rel=1e-9)
 
 
-def test_bad_inputs_and_options_exit_2_with_one_line(tmp_path, capsys):
+def test_bad_inputs_and_options_exit_2_with_one_line(files, tmp_path, capsys):
     junk = tmp_path / "junk.nwb"
     junk.write_text("not an nwb file")
     cases = [
         ["fit", str(junk), "--out", str(tmp_path / "o1")],
         ["fit", str(tmp_path / "missing.nwb"), "--out", str(tmp_path / "o2")],
         ["fit", str(junk), "--out", str(tmp_path / "o3"), "--folds", "0"],
-        ["fit", str(junk), "--out", str(tmp_path / "o4"), "--variables", "place"],
+        ["fit", str(files["npz"]), "--out", str(tmp_path / "o4"), "--variables", "place"],
+        ["fit", str(junk), "--out", str(tmp_path / "o5"), "--variables", "x y"],
         ["fit", str(junk)],
     ]
     for argv in cases:

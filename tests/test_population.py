@@ -12,8 +12,9 @@ from encodex.population import run as run_module
 from encodex.session import build_session
 from encodex.simulate import simulate_recording
 
-# Small and fast: two environments, six cells, 0.1 s bins, two variables, 5 folds.
-SETTINGS = dict(variables=("heading", "speed"), folds=5, chunks_per_fold=2, seed=3)
+# Small and fast: two environments, six cells, 0.1 s bins, two variables, 6 folds (the
+# fewest with which a variable can pass alpha 0.05 / 2 candidates: 2**-6 < 0.025).
+SETTINGS = dict(variables=("heading", "speed"), folds=6, chunks_per_fold=2, seed=3)
 
 
 @pytest.fixture(scope="module")
@@ -44,9 +45,11 @@ def test_output_folder_contract(first_run, session):
     # every model x fold kept; the chosen model's pooled score appears in cells.csv
     for (_, c) in ok.iterrows():
         m = models[(models["unit"] == c["unit"]) & (models["environment"] == c["environment"])]
-        assert set(m["fold"]) == set(range(5))
+        assert set(m["fold"]) == set(range(6))
         assert "none" in set(m["model"]) and c["variables"] in set(m["model"])
-        assert len(m) == 5 * m["model"].nunique()
+        assert len(m) == 6 * m["model"].nunique()
+    # the simulated population holds heading and speed cells: some must be labelled
+    assert (ok["variables"] != "none").sum() >= 2
     # ambiguous_with is the concurvity flag of the chosen variables on the environment's bins
     from encodex.compare.concurvity import ambiguous_pairs
     from encodex.design import build_design, default_bases
@@ -66,7 +69,7 @@ def test_output_folder_contract(first_run, session):
         assert c["reason"]
     run = json.loads((out / "run.json").read_text())
     assert "not proof" in run["statement"]
-    assert run["settings"]["folds"] == 5 and run["settings"]["seed"] == 3
+    assert run["settings"]["folds"] == 6 and run["settings"]["seed"] == 3
     assert run["versions"]["numpy"] == np.__version__
     assert run["session"]["masked_bins"] == json.loads(json.dumps(session.summary["masked_bins"]))
     assert run["session"]["dropped_spikes"] == json.loads(
@@ -126,8 +129,8 @@ def test_resume_skips_finished_units_and_refuses_other_settings(first_run, sessi
         a, b = again.fits[key], first_run.fits[key]
         assert a.names == b.names
         assert np.allclose(a.theta, b.theta, rtol=1e-8, atol=1e-10)
-    with pytest.raises(CheckpointMismatchError, match="folds: 5 -> 4"):
-        run_population(session, out, jobs=1, **{**SETTINGS, "folds": 4})
+    with pytest.raises(CheckpointMismatchError, match="folds: 6 -> 7"):
+        run_population(session, out, jobs=1, **{**SETTINGS, "folds": 7})
     other = session.replace(counts=session.counts * 2)
     with pytest.raises(CheckpointMismatchError, match="different input"):
         run_population(other, out, jobs=1, **SETTINGS)
@@ -168,9 +171,34 @@ def test_bad_settings_are_one_line_errors(session):
         run_population(session, None, jobs=0)
     with pytest.raises(SettingsError, match="unknown setting"):
         run_population(session, None, fold=3)
+    # 5 folds cannot give p < 0.05 / 2: refused instead of labelling every cell "none"
+    with pytest.raises(SettingsError, match="use --folds 6 or more"):
+        run_population(session, None, **{**SETTINGS, "folds": 5})
 
 
 def test_dask_local_cluster_gives_same_results(first_run, session):
     r = run_population(session, None, jobs=2, cluster="local", **SETTINGS)
     pd.testing.assert_frame_equal(r.cells, first_run.cells)
     pd.testing.assert_frame_equal(r.models, first_run.models)
+
+
+def test_user_defined_circular_variable_is_analysed_and_labelled(session):
+    # A cell tuned to a user-defined circular variable (an invented "cue angle") that no
+    # built-in variable explains: it must be labelled with that variable, after the built-ins
+    # in label order, with its own gain column.
+    import scipy.sparse as sp
+
+    rng = np.random.default_rng(9)
+    cue = np.mod(np.cumsum(rng.normal(0, 0.2, session.n_bins)), 2 * np.pi)
+    s2 = session.with_variable("cue", cue, kind="circular")
+    y = rng.poisson(0.1 * 3.0 * np.exp(1.5 * np.cos(cue - 1.0)) / np.i0(1.5))
+    s2 = s2.replace(counts=sp.csc_array(sp.hstack([s2.counts, sp.csc_array(y[:, None])])),
+                    unit_ids=tuple(s2.unit_ids) + ("cue_cell",))
+    r = run_population(s2, None, units=["cue_cell"], **{**SETTINGS,
+                                                         "variables": ("speed", "cue")})
+    assert set(r.cells["variables"]) == {"cue"}
+    assert "gain_cue" in r.cells.columns and (r.cells["gain_cue"] > 0.05).all()
+    fit = r.fits[("arena", "cue_cell")]
+    assert fit.names == ("cue",)
+    with pytest.raises(SettingsError, match="unknown variable"):
+        run_population(s2, None, variables=("cue", "tone"))

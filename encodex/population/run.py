@@ -180,7 +180,7 @@ def _environment_work(session, env_name: str, settings: RunSettings,
     k = session.environments.index(env_name)
     rows = np.flatnonzero(np.asarray(session.valid) & (np.asarray(session.environment) == k))
     available = session.available_variables(env_name)
-    wanted = settings.variables if settings.variables is not None else VARIABLES
+    wanted = settings.variables if settings.variables is not None else available
     variables = canonical_order(v for v in wanted if v in available)
     info = {
         "n_bins_used": int(rows.size),
@@ -207,8 +207,10 @@ def _environment_work(session, env_name: str, settings: RunSettings,
         if np.isfinite(pos).all(axis=1).any():
             ex, ey = spatial_edges(pos, settings.ratemap_bin_m)
     token = stable_hash([fingerprint, env_name, settings.to_dict()])
+    all_kinds = dict(getattr(session, "kinds", {}) or {})
+    kinds = tuple(sorted((v, all_kinds[v]) for v in variables if v in all_kinds))
     work = EnvironmentWork(env_name, token, cov, variables, float(session.bin_size), fold,
-                           settings.folds, settings.basis_sizes, ex, ey, note)
+                           settings.folds, settings.basis_sizes, kinds, ex, ey, note)
     return work, info
 
 
@@ -343,10 +345,31 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
         check = {**rs.to_dict(), "units": None if units is None else unit_ids}
         resumed = open_checkpoint(out_path, check, fingerprint)
 
+    if rs.variables is not None:
+        known = set(VARIABLES) | set(session.covariates)
+        unknown = [v for v in rs.variables if v not in known]
+        if unknown:
+            raise SettingsError(
+                f"unknown variable(s) {unknown}; this session has "
+                f"{', '.join(canonical_order(known & set(session.covariates)))}"
+            )
     envs: dict[str, EnvironmentWork] = {}
     env_info: dict[str, dict] = {}
     for name in session.environments:
         envs[name], env_info[name] = _environment_work(session, name, rs, fingerprint)
+
+    # With k folds the one-sided signed-rank p-value is at least 2**-k: refuse settings under
+    # which no variable could ever be added (every cell would be "none" whatever its spikes).
+    m = max((len(e.variables) for e in envs.values()), default=0)
+    if m:
+        level = rs.alpha / m if rs.correction == "bonferroni" else rs.alpha
+        if 2.0 ** -rs.folds >= level:
+            need = int(np.floor(-np.log2(level))) + 1
+            raise SettingsError(
+                f"with {rs.folds} folds the smallest possible p-value is 2^-{rs.folds} = "
+                f"{2.0 ** -rs.folds:.3g}, which cannot pass the first step's level {level:.3g} "
+                f"(alpha {rs.alpha} over {m} variables); use --folds {need} or more"
+            )
 
     # Work list in deterministic order; finished units (on disk) are skipped.
     records: dict[tuple[str, str], dict] = {}
@@ -461,7 +484,9 @@ def _tables(records: dict, environments, unit_ids) -> tuple[pd.DataFrame, pd.Dat
             cell_rows.append(rec["cell"])
             for r in rec["models"]:
                 model_rows.append({"unit": unit, "environment": env, **r})
-    cells = pd.DataFrame(cell_rows, columns=list(CELL_COLUMNS))
+    extra = canonical_order({k[5:] for r in cell_rows for k in r if k.startswith("gain_")}
+                            - set(VARIABLES))
+    cells = pd.DataFrame(cell_rows, columns=list(CELL_COLUMNS) + [f"gain_{v}" for v in extra])
     models = pd.DataFrame(model_rows, columns=list(MODEL_COLUMNS))
     for df in (cells, models):
         df["unit"] = df["unit"].astype(str)

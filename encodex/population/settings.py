@@ -28,7 +28,8 @@ class RunSettings:
     ----------
     variables : tuple of str or None
         Variables to consider (canonical order); None: every variable available in each
-        environment.
+        environment (the five built-ins, plus ``phase`` and user-defined variables when the
+        session has them).
     folds : int
         Number of cross-validation folds (default 10).
     chunks_per_fold : int
@@ -77,10 +78,13 @@ class RunSettings:
             vs = tuple(self.variables)
             if not vs:
                 raise SettingsError("no variables given; name at least one, e.g. --variables position")
-            bad = [v for v in vs if v not in VARIABLES]
+            # Built-ins, phase or user-defined variables of the session: names are checked
+            # against the session when the run starts.
+            bad = [v for v in vs if not (isinstance(v, str) and v.isidentifier())]
             if bad:
                 raise SettingsError(
-                    f"unknown variable(s) {bad}; choose from {', '.join(VARIABLES)}"
+                    f"unknown variable(s) {bad}; choose from {', '.join(VARIABLES)} or a "
+                    "variable of the session"
                 )
             if len(set(vs)) != len(vs):
                 raise SettingsError(f"variable listed twice in {list(vs)}; list each once")

@@ -61,6 +61,8 @@ class EnvironmentWork:
     k : int
         Number of folds.
     basis_sizes : tuple of (str, int)
+    kinds : tuple of (str, str)
+        Basis kind of every variable (user-defined variables included).
     edges_x, edges_y : ndarray or None
         Spatial bins of the occupancy map (metres), None without position.
     note : str
@@ -75,6 +77,7 @@ class EnvironmentWork:
     fold: np.ndarray
     k: int
     basis_sizes: tuple
+    kinds: tuple
     edges_x: np.ndarray | None
     edges_y: np.ndarray | None
     note: str = ""
@@ -95,7 +98,8 @@ def environment_design(env: EnvironmentWork):
     from encodex.design import build_design, default_bases
 
     cov = {v: env.covariates[v] for v in env.variables}
-    bases = default_bases(cov, env.variables, sizes=dict(env.basis_sizes))
+    bases = default_bases(cov, env.variables, sizes=dict(env.basis_sizes),
+                          kinds=dict(env.kinds))
     design = build_design(cov, bases)
     _DESIGNS[env.token] = design
     while len(_DESIGNS) > 2:
@@ -189,7 +193,7 @@ def _analyse_cell(env, unit, y, settings, n_spikes, rate, arrays):
         "bits_per_spike": chosen_cv.pooled.bits_per_spike if sel.chosen else 0.0,
         "p_value": sel.p_value,
     }
-    for v in VARIABLES:
+    for v in canonical_order(set(VARIABLES) | set(env.variables)):
         row[f"gain_{v}"] = sel.gains.get(v, np.nan)
     # Concurvity flags (encodex.compare.concurvity): variables the chosen ones cannot be told
     # apart from on this environment's bins, whatever the spikes.
