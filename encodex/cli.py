@@ -55,6 +55,46 @@ def _seconds(text: str) -> float:
     return v
 
 
+def _hertz(text: str) -> float:
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a frequency in Hz, got {text!r}") from None
+    if not v > 0:
+        raise argparse.ArgumentTypeError(f"expected a positive frequency in Hz, got {v}")
+    return v
+
+
+def _load_options(args) -> dict:
+    """Reading options of ``encodex fit`` for rhythm phase and user-defined variables."""
+    from encodex.io import parse_extra_option
+
+    opts: dict = {}
+    if args.lfp is not None:
+        opts["lfp"] = args.lfp
+        opts["lfp_channel"] = args.lfp_channel
+    if args.band is not None:
+        if args.lfp is None:
+            raise SettingsError("--band sets the rhythm's pass band and needs --lfp OBJECT_PATH")
+        low, high = args.band
+        if not low < high:
+            raise SettingsError(f"--band LOW HIGH needs LOW < HIGH (got {low:g} {high:g})")
+        opts["phase_band"] = (low, high)
+    if args.variable:
+        extra, kinds = {}, {}
+        for text in args.variable:
+            name, path, kind = parse_extra_option(text)
+            if name in extra:
+                raise SettingsError(f"--variable {name} is given twice; use one per name")
+            extra[name] = path
+            if kind is not None:
+                kinds[name] = kind
+        opts["extra"] = extra
+        if kinds:
+            opts["extra_kinds"] = kinds
+    return opts
+
+
 def _variables(text: str) -> tuple[str, ...]:
     names = tuple(s.strip() for s in text.split(",") if s.strip())
     # phase and user-defined variables are checked against the session when the run starts
@@ -107,6 +147,16 @@ def add_fit_command(subparsers) -> None:
     p.add_argument("--min-spikes", type=_positive_int, default=100, metavar="N",
                    help="cells with fewer spikes in an environment are not labelled "
                         "(default 100)")
+    p.add_argument("--lfp", default=None, metavar="OBJECT_PATH",
+                   help="LFP ElectricalSeries in the NWB file (e.g. processing/ecephys/LFP/lfp);"
+                        " its band-passed Hilbert phase becomes the variable 'phase'")
+    p.add_argument("--lfp-channel", type=_count, default=0, metavar="N",
+                   help="channel (column) of the --lfp series (default 0)")
+    p.add_argument("--band", type=_hertz, nargs=2, default=None, metavar=("LOW", "HIGH"),
+                   help="pass band of the rhythm in Hz (default 6 10, theta)")
+    p.add_argument("--variable", action="append", default=[], metavar="NAME=OBJECT_PATH[:KIND]",
+                   help="user-defined variable from a TimeSeries in the NWB file, KIND interval "
+                        "or circular (radians); repeatable")
     p.add_argument("--cluster", default=None, metavar="ADDRESS",
                    help="run on a dask.distributed scheduler (tcp://host:8786), or 'local' "
                         "for a LocalCluster of --jobs workers")
@@ -126,7 +176,8 @@ def _run_fit(args) -> int:
     if args.variables is not None:
         settings["variables"] = args.variables
     result = run_population(args.input, args.out, jobs=args.jobs, cluster=args.cluster,
-                            progress=not args.no_progress, **settings)
+                            progress=not args.no_progress, load_options=_load_options(args),
+                            **settings)
     cells = result.cells
     ok = cells[cells["status"] == "ok"]
     counts = ok["variables"].value_counts()

@@ -147,10 +147,13 @@ class _Fits(Mapping):
 
 
 # ---------------------------------------------------------------------------------------------
-def _load(input_or_session, settings: RunSettings):
+def _load(input_or_session, settings: RunSettings, load_options=None):
     from encodex.session import Session
 
     if isinstance(input_or_session, Session):
+        if load_options:
+            raise SettingsError("load_options apply to a file; this input is already a Session "
+                                "(pass the options to encodex.load_session instead)")
         return input_or_session, "<Session object>"
     path = Path(input_or_session)
     if not path.exists():
@@ -158,7 +161,7 @@ def _load(input_or_session, settings: RunSettings):
     from encodex.session import load_session
 
     kw = {} if settings.bin_size is None else {"bin_size": settings.bin_size}
-    return load_session(path, **kw), str(path)
+    return load_session(path, **kw, **dict(load_options or {})), str(path)
 
 
 def _session_fingerprint(session) -> str:
@@ -272,7 +275,7 @@ def _execute(tasks: list, jobs: int, cluster: str | None) -> Iterator[UnitOutcom
 
 def run_population(input_or_session, out: str | Path | None = None, *, jobs: int = 1,
                    cluster: str | None = None, progress: bool = False,
-                   units=None, **settings) -> PopulationResult:
+                   units=None, load_options=None, **settings) -> PopulationResult:
     """Decide which variables each cell carries, for every unit and environment.
 
     Parameters
@@ -293,6 +296,12 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
         Show a progress bar (units done, rate, time left) on standard error.
     units : iterable of str, optional
         Only these unit ids (default: all).
+    load_options : mapping, optional
+        Passed to :func:`encodex.session.load_session` when the input is a file: e.g.
+        ``lfp="processing/ecephys/LFP/lfp"``, ``lfp_channel=0``, ``phase_band=(6, 10)``
+        (rhythm phase as the variable ``phase``), ``extra={"goal_bearing": "path"}``,
+        ``extra_kinds={"goal_bearing": "circular"}`` (user-defined variables). Recorded in
+        ``run.json``.
     **settings
         Fields of :class:`RunSettings`: ``variables``, ``folds`` (10), ``seed`` (0),
         ``alpha`` (0.05), ``correction`` ("bonferroni"), ``exhaustive`` (False),
@@ -328,7 +337,7 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
     except TypeError as exc:
         raise SettingsError(f"unknown setting: {exc}; see help(encodex.run_population)") from None
     t_start = time.time()
-    session, source = _load(input_or_session, rs)
+    session, source = _load(input_or_session, rs, load_options)
     fingerprint = _session_fingerprint(session)
 
     unit_ids = list(session.unit_ids)
@@ -428,6 +437,8 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
         "format": "encodex-fit-output/1",
         "statement": LABEL_STATEMENT,
         "input": source,
+        "load_options": {k: (list(v) if isinstance(v, tuple) else v)
+                         for k, v in dict(load_options or {}).items()},
         "data_fingerprint": fingerprint,
         "settings": rs.to_dict(),
         "execution": {"jobs": int(jobs), "cluster": cluster, "resumed": resumed,
