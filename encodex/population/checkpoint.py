@@ -119,6 +119,8 @@ def open_checkpoint(out: Path, settings: dict, data_fingerprint: str) -> bool:
     out = Path(out)
     manifest = out / MANIFEST
     wanted = {"format": FORMAT, "settings": settings, "data_fingerprint": data_fingerprint}
+    if out.exists() and not out.is_dir():
+        raise OutputError(f"--out {out} is a file, not a folder; choose a new or empty folder")
     if manifest.exists():
         try:
             have = json.loads(manifest.read_text())
@@ -142,7 +144,10 @@ def open_checkpoint(out: Path, settings: dict, data_fingerprint: str) -> bool:
                 f"{out} holds results computed with other settings ({'; '.join(diff) or 'format'}); "
                 "rerun with the same settings to resume, or choose another --out folder"
             )
+        remove_stale_temporaries(out)
         return True
+    # A run killed while writing its manifest leaves only that temporary file behind.
+    remove_stale_temporaries(out)
     if out.exists() and any(out.iterdir()):
         stray = sorted(p.name for p in out.iterdir())[:3]
         raise CheckpointMismatchError(
@@ -151,6 +156,40 @@ def open_checkpoint(out: Path, settings: dict, data_fingerprint: str) -> bool:
         )
     atomic_write_text(manifest, json.dumps(wanted, indent=2, sort_keys=True))
     return False
+
+
+def remove_stale_temporaries(out: Path) -> list[Path]:
+    """Delete temporary files that a killed run left in ``out`` and ``out/units/*``.
+
+    :func:`atomic_write_bytes` names its temporary files ``.<name>.<random>.tmp``; a process
+    killed (SIGKILL, power loss) between creating one and renaming it leaves it behind. They
+    are never read, only removed, when the folder is opened again.
+
+    Returns
+    -------
+    list of Path
+        The files removed.
+    """
+    out = Path(out)
+    if not out.is_dir():
+        return []
+    folders = [out, out / "units"]
+    if (out / "units").is_dir():
+        folders += [p for p in (out / "units").iterdir() if p.is_dir()]
+    removed = []
+    for folder in folders:
+        if not folder.is_dir():
+            continue
+        for p in folder.iterdir():
+            if p.name.startswith(".") and p.name.endswith(".tmp") and p.is_file():
+                try:
+                    p.unlink()
+                except OSError as exc:
+                    raise OutputError(f"cannot remove the stale temporary file {p}: "
+                                      f"{exc.strerror or exc}; check the --out folder is "
+                                      "writable") from exc
+                removed.append(p)
+    return removed
 
 
 def data_fingerprint(arrays) -> str:
