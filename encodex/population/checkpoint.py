@@ -18,6 +18,8 @@ import json
 import os
 import re
 import tempfile
+import zipfile
+import zlib
 from pathlib import Path
 
 import numpy as np
@@ -89,11 +91,18 @@ def write_unit_file(path: Path, arrays: dict[str, np.ndarray], record: dict) -> 
 
 
 def read_unit_record(path: Path) -> dict | None:
-    """The JSON record of a finished unit file, or None if the file is missing or unreadable."""
+    """The JSON record of a finished unit file, or None if the file is missing or unreadable.
+
+    A damaged file (truncated copy, disk trouble: not a zip archive, a member that fails to
+    decompress or its CRC check) counts as missing, so the unit is computed again and the
+    file replaced. Every member is read for that check, not only the record.
+    """
     try:
         with np.load(path, allow_pickle=False) as z:
+            for k in z.files:
+                z[k]
             return json.loads(str(z[RECORD_KEY]))
-    except (OSError, KeyError, ValueError, EOFError):
+    except (OSError, KeyError, ValueError, EOFError, zipfile.BadZipFile, zlib.error):
         return None
 
 
