@@ -49,7 +49,7 @@ def run_compare(args) -> int:
 
     from encodex.report.environments import compare_environments, summary_frame, write_comparison
     from encodex.report.figures import comparison_figure, save_figure
-    from encodex.report.load import load_run
+    from encodex.report.load import comparison_stem, load_run
     from encodex.report.tables import to_markdown
 
     run = load_run(args.dir)
@@ -59,7 +59,7 @@ def run_compare(args) -> int:
     out = Path(args.out) if args.out else run.path / "compare"
     written = write_comparison(cmp, out)
     fig = comparison_figure(cmp)
-    written += save_figure(fig, out / f"compare_{cmp.a}_vs_{cmp.b}")
+    written += save_figure(fig, out / comparison_stem(cmp.a, cmp.b))
     plt.close(fig)
     for note in cmp.notes:
         _out(note)
@@ -91,7 +91,7 @@ def run_report(args) -> int:
         save_figure,
     )
     from encodex.report.html import build_report
-    from encodex.report.load import load_run
+    from encodex.report.load import comparison_stem, file_name_part, load_run
 
     run = load_run(args.dir)
     path = build_report(args.dir, out=args.out, between=args.between,
@@ -107,11 +107,11 @@ def run_report(args) -> int:
         pairs = [(envs[i], envs[j]) for i in range(len(envs)) for j in range(i + 1, len(envs))]
     for a, b in pairs[:3]:
         fig = comparison_figure(compare_environments(run, a, b))
-        save_figure(fig, figdir / f"compare_{a}_vs_{b}")
+        save_figure(fig, figdir / comparison_stem(a, b))
         plt.close(fig)
     for unit, env in args.cell or []:
         fig = cell_figure(run, unit, env)
-        save_figure(fig, figdir / f"cell_{env}_{unit}")
+        save_figure(fig, figdir / f"cell_{file_name_part(env)}_{file_name_part(unit)}")
         plt.close(fig)
     _out(f"figures (PNG and PDF) in {figdir}")
     _out(f"report: {path.resolve()}")

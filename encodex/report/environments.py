@@ -507,7 +507,9 @@ def write_comparison(cmp: EnvironmentComparison, out_dir) -> list:
         out.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise OutputError(f"cannot create {out} ({exc.strerror}); choose a writable folder")
-    stem = f"compare_{cmp.a}_vs_{cmp.b}"
+    from encodex.report.load import comparison_stem
+
+    stem = comparison_stem(cmp.a, cmp.b)
     files = {
         f"{stem}_variables.csv": cmp.variables.to_csv(index=False),
         f"{stem}_gains.csv": cmp.gains.to_csv(index=False),

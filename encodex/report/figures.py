@@ -57,7 +57,8 @@ def save_figure(fig, stem: str | Path, formats: tuple[str, ...] = ("png", "pdf")
         stem.parent.mkdir(parents=True, exist_ok=True)
         out = []
         for fmt in formats:
-            p = stem.with_suffix("." + fmt)
+            # not with_suffix: a stem such as "compare_room.a_vs_room.b" keeps its dots
+            p = stem.parent / f"{stem.name}.{fmt}"
             fig.savefig(p, dpi=dpi, bbox_inches="tight")
             out.append(p)
     except OSError as exc:
@@ -379,7 +380,10 @@ def comparison_figure(cmp):
         f = 100 * v[f"fraction_{suffix}"].to_numpy(float)
         lo = 100 * v[f"ci_low_{suffix}"].to_numpy(float)
         hi = 100 * v[f"ci_high_{suffix}"].to_numpy(float)
-        ax.errorbar(f, y + off, xerr=[f - lo, hi - f], fmt="o", color=colour, capsize=2,
+        # Wilson bounds at 0% or 100% differ from the estimate by rounding (~1e-16), which
+        # can make an error bar length negative; matplotlib refuses those.
+        err = np.clip(np.nan_to_num([f - lo, hi - f], nan=0.0), 0.0, None)
+        ax.errorbar(f, y + off, xerr=err, fmt="o", color=colour, capsize=2,
                     label=env)
     for i, r in enumerate(v.itertuples(index=False)):
         if np.isfinite(r.p_adjusted):

@@ -86,14 +86,13 @@ class RunFolder:
         Names that are not safe as file names are written by the fit stage in a sanitised
         form (``encodex.population.checkpoint.safe_name``); that form is tried second.
         """
-        plain = self.path / "units" / str(environment) / f"{unit}.npz"
-        if plain.exists():
+        units = self.path / "units"
+        plain = units / str(environment) / f"{unit}.npz"
+        # Names with path separators or dot-only parts ("../x", "a/b", "..") would point at
+        # another unit's file or outside the folder: only the sanitised form is used for them.
+        if _plain_part(environment) and _plain_part(unit) and plain.exists():
             return plain
-        try:
-            from encodex.population.checkpoint import safe_name
-        except ImportError:  # fit stage not installed: only the plain layout exists
-            return plain
-        return self.path / "units" / safe_name(environment) / f"{safe_name(unit)}.npz"
+        return units / file_name_part(environment) / f"{file_name_part(unit)}.npz"
 
     def unit_arrays(self, environment: str, unit: str) -> dict[str, np.ndarray] | None:
         """Arrays of ``units/<environment>/<unit>.npz`` or None when the file is absent."""
@@ -108,6 +107,30 @@ class RunFolder:
             raise FileFormatError(
                 f"{f} is not a readable npz file ({exc}); re-run `encodex fit` for this unit"
             ) from None
+
+
+def _plain_part(name) -> bool:
+    name = str(name)
+    return bool(name) and "/" not in name and "\\" not in name and name.strip(".") != "" \
+        and "\x00" not in name
+
+
+def file_name_part(name) -> str:
+    """A unit id or environment name made safe as (part of) a file name.
+
+    The same rule as the fit stage's unit files (``encodex.population.checkpoint.safe_name``):
+    letters, digits, ``.``, ``_`` and ``-`` are kept, anything else becomes ``_`` and a short
+    hash of the original is appended, so that a name read from a shared results folder (e.g.
+    ``"../../x"``) can never place a file outside the folder chosen for the output.
+    """
+    from encodex.population.checkpoint import safe_name
+
+    return safe_name(str(name))
+
+
+def comparison_stem(a, b) -> str:
+    """File stem of the comparison of environments ``a`` and ``b``: ``compare_<a>_vs_<b>``."""
+    return f"compare_{file_name_part(a)}_vs_{file_name_part(b)}"
 
 
 def setting(run: dict, key: str, default=None):
