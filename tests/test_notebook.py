@@ -13,7 +13,7 @@ def test_tutorial_notebook_executes(tmp_path):
     params = [c for c in nb.cells if "parameters" in c.get("metadata", {}).get("tags", [])]
     assert len(params) == 1, "the notebook needs one cell tagged 'parameters'"
     # smallest session that still gives every stage something to show
-    params[0].source += ("\nN_CELLS = 4\nDURATION_S = 180.0\nJOBS = 1\nFOLDS = 5\n"
+    params[0].source += ("\nN_CELLS = 4\nDURATION_S = 180.0\nJOBS = 1\nFOLDS = 6\n"
                          "VARIABLES = 'position,heading,speed'\nREPORT_CELLS = 1\n")
     client = NotebookClient(nb, timeout=600, kernel_name="python3",
                             resources={"metadata": {"path": str(tmp_path)}})

@@ -57,6 +57,12 @@ class RunSettings:
         Number of basis functions per variable (planar: per axis), overriding the defaults.
     ratemap_bin_m : float
         Side of the spatial bins of the occupancy map saved per unit, in metres.
+    fold_fits : str
+        "refit" (default): each fold's models are fitted to its training bins with their own
+        smoothness selection. "one-step": each model is fitted once to all bins and every fold
+        takes one Newton step from it without its bins (about ten times cheaper; the
+        smoothing parameters then also see the held-out bins). See
+        :func:`encodex.compare.cell.cross_validate`.
     """
 
     variables: tuple[str, ...] | None = None
@@ -72,6 +78,7 @@ class RunSettings:
     bin_size: float | None = None
     basis_sizes: tuple[tuple[str, int], ...] = ()
     ratemap_bin_m: float = 0.05
+    fold_fits: str = "refit"
 
     def __post_init__(self):
         if self.variables is not None:
@@ -99,6 +106,9 @@ class RunSettings:
         if self.correction not in ("bonferroni", "none"):
             raise SettingsError(f"correction must be 'bonferroni' or 'none' (got "
                                 f"{self.correction!r})")
+        if self.fold_fits not in ("refit", "one-step"):
+            raise SettingsError(f"fold_fits must be 'refit' or 'one-step' (got "
+                                f"{self.fold_fits!r}); use --fold-fits refit")
         if not (math.isfinite(self.min_shift_s) and self.min_shift_s >= 0):
             raise SettingsError(f"min_shift_s must be >= 0 seconds (got {self.min_shift_s})")
         if self.bin_size is not None and not (

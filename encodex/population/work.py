@@ -184,6 +184,7 @@ def _analyse_cell(env, unit, y, settings, n_spikes, rate, arrays):
         exhaustive=settings.exhaustive, correction=settings.correction,
         shuffles=settings.shuffles, min_shift_bins=min_shift,
         rng=stream(settings.seed, env.name, unit, PURPOSE_SHUFFLES),
+        fold_fits=settings.fold_fits,
     )
     sel = a.selection
     chosen_cv = a.models[sel.chosen]

@@ -22,6 +22,8 @@ REFERENCES: dict[str, str] = {
     "wood2011": "Wood, S. N. (2011). Fast stable restricted maximum likelihood and marginal "
                 "likelihood estimation of semiparametric generalized linear models. J. R. Stat. "
                 "Soc. B 73:3-36.",
+    "bickel1975": "Bickel, P. J. (1975). One-step Huber estimates in the linear model. J. Am. "
+                  "Stat. Assoc. 70:428-434.",
     "hardcastle2017": "Hardcastle, K., Maheswaranathan, N., Ganguli, S. & Giocomo, L. M. (2017). "
                       "A multiplexed, heterogeneous, and adaptive code for navigation in medial "
                       "entorhinal cortex. Neuron 94:375-387.",
@@ -119,7 +121,11 @@ def methods_paragraph(run: dict, with_references: bool = True) -> str:
         f"second-order difference penalty, periodic for heading, a tensor-product basis for "
         f"position{size_text}, each term constrained to sum to zero over the data. Smoothing "
         f"parameters were chosen by maximising the Laplace approximate marginal likelihood "
-        f"(Wood 2011) on training data only.",
+        f"(Wood 2011) " + (
+            "once per cell and model on all bins of the environment; each fold's model was "
+            "then one Newton step from that fit with the fold's bins removed (a one-step "
+            "estimator, Bickel 1975)." if get("fold_fits") == "one-step" else
+            "on the training data of each fold only."),
         f"Models were scored by "
         f"{(str(folds) + '-fold') if folds else 'k-fold (k not recorded)'} "
         f"cross-validation{chunk_text}, so that "
