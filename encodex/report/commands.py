@@ -184,8 +184,8 @@ def register_report_commands(subparsers) -> None:
                     "the HTML report.")
     p.add_argument("--out", required=True, help="folder for everything the demo writes")
     p.add_argument("--cells", type=int, default=12, help="simulated units (default 12)")
-    p.add_argument("--duration", type=float, default=480.0,
-                   help="seconds per environment (default 480)")
+    p.add_argument("--duration", type=float, default=900.0,
+                   help="seconds per environment (default 900)")
     p.add_argument("--jobs", type=int, default=2, help="parallel workers (default 2)")
     p.add_argument("--seed", type=int, default=1, help="seed of the simulation and folds")
     p.set_defaults(func=run_demo)
