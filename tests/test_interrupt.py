@@ -36,10 +36,10 @@ def data(tmp_path_factory):
     return files["npz"], ref
 
 
-def _start(npz: Path, out: Path) -> subprocess.Popen:
+def _start(npz: Path, out: Path, extra=()) -> subprocess.Popen:
     env = dict(os.environ, PYTHONUNBUFFERED="1")
     return subprocess.Popen([sys.executable, "-m", "encodex", "fit", str(npz), "--out",
-                             str(out), *ARGS], stdout=subprocess.PIPE,
+                             str(out), *ARGS, *extra], stdout=subprocess.PIPE,
                             stderr=subprocess.PIPE, text=True, env=env)
 
 
@@ -106,10 +106,17 @@ def test_sigkill_then_rerun_gives_identical_tables(data, tmp_path):
     _all_unit_files_load(out)
 
 
-def test_sigint_stops_cleanly_says_how_to_resume_and_resumes(data, tmp_path):
+@pytest.mark.parametrize("first, resume", [
+    ((), ()),
+    # Worker processes: Ctrl-C reaches the main process, which cancels the rest (and must
+    # count as finished only the cells whose file was written); the resume with another
+    # number of jobs must still give byte-identical tables.
+    (("--jobs", "2"), ("--jobs", "1")),
+], ids=["jobs1", "jobs2-then-1"])
+def test_sigint_stops_cleanly_says_how_to_resume_and_resumes(data, tmp_path, first, resume):
     npz, ref = data
     out = tmp_path / "ctrl_c"
-    proc = _start(npz, out)
+    proc = _start(npz, out, first)
     _wait_for_first_unit(proc, out)
     proc.send_signal(signal.SIGINT)
     stdout, stderr = proc.communicate(timeout=60)
@@ -125,7 +132,7 @@ def test_sigint_stops_cleanly_says_how_to_resume_and_resumes(data, tmp_path):
     assert f"{n_done} of {N_CELLS} cells finished" in lines[0]
     assert _leftovers(out) == []
 
-    assert main(["fit", str(npz), "--out", str(out), *ARGS]) == 0
+    assert main(["fit", str(npz), "--out", str(out), *ARGS, *resume]) == 0
     for name in ("cells.csv", "models.csv"):
         assert (out / name).read_bytes() == (ref / name).read_bytes(), name
     assert _leftovers(out) == []

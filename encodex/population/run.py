@@ -9,6 +9,7 @@ import datetime as _dt
 import json
 import platform
 import time
+import warnings
 from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -410,21 +411,30 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
     fits: dict = {}
     seconds = []
     t_compute = time.time()
+    # Cells whose file is on disk (or, without a folder, whose result is in memory): a cell
+    # interrupted while its file was being written is not counted as saved.
+    saved = len(records)
     try:
-        for outcome in _execute(tasks, int(jobs), cluster):
-            key = (outcome.environment, outcome.unit)
-            records[key] = outcome.record
-            seconds.append(outcome.seconds)
-            if outcome.fit is not None:
-                fits[key] = outcome.fit
-            if out_path is not None:
-                write_unit_file(unit_path(out_path, *key), outcome.arrays, outcome.record)
-            if bar is not None:
-                bar.update(1)
+        with warnings.catch_warnings():
+            # joblib warns about the tasks it cancels when Ctrl-C stops the run; the one line
+            # below already says what happened.
+            warnings.filterwarnings("ignore", message=".*still being processed by the workers",
+                                    category=UserWarning)
+            for outcome in _execute(tasks, int(jobs), cluster):
+                key = (outcome.environment, outcome.unit)
+                records[key] = outcome.record
+                seconds.append(outcome.seconds)
+                if outcome.fit is not None:
+                    fits[key] = outcome.fit
+                if out_path is not None:
+                    write_unit_file(unit_path(out_path, *key), outcome.arrays, outcome.record)
+                saved += 1
+                if bar is not None:
+                    bar.update(1)
     except KeyboardInterrupt:
         if bar is not None:
             bar.close()
-        done = len(records)
+        done = saved
         where = (f"saved in {out_path}; run the same command again to resume"
                  if out_path is not None else "lost (no output folder was given)")
         raise RunInterrupted(f"interrupted: {done} of {n_total} cells finished and {where}") \
