@@ -213,3 +213,23 @@ def test_checkpoint_writer_refuses_object_arrays(tmp_path):
         write_unit_file(tmp_path / "u.npz", {"x": np.array([{"a": 1}], dtype=object)}, {})
     assert not (tmp_path / "u.npz").exists()
     assert os.listdir(tmp_path) == []
+
+
+def test_very_long_and_colliding_names_get_distinct_short_files(tmp_path):
+    # A 300-character id would exceed the 255-byte limit of file names: it is cut and
+    # hashed, two ids sharing their first 100 characters still get distinct files, and the
+    # report stage finds the file under the same name.
+    from encodex.population.checkpoint import MAX_NAME, read_unit_record, write_unit_file
+    from encodex.report.load import RunFolder
+
+    long_a, long_b = "u" * 300, "u" * 299 + "v"
+    paths = {u: unit_path(tmp_path, "e" * 400, u) for u in (long_a, long_b, "u" * MAX_NAME)}
+    assert len(set(paths.values())) == 3
+    for u, p in paths.items():
+        assert len(p.name) < 255 and len(p.parent.name) < 255
+        write_unit_file(p, {"x": np.arange(3.0)}, {"cell": {"unit": u}})
+        assert read_unit_record(p)["cell"]["unit"] == u
+    assert paths["u" * MAX_NAME].name == "u" * MAX_NAME + ".npz"  # at the limit: unchanged
+    folder = RunFolder(tmp_path, pd.DataFrame(), pd.DataFrame(), {})
+    for u, p in paths.items():
+        assert folder.unit_file("e" * 400, u) == p

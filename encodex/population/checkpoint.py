@@ -29,6 +29,8 @@ from encodex.errors import CheckpointMismatchError, OutputError
 MANIFEST = "checkpoint.json"
 FORMAT = "encodex-run-checkpoint/1"
 RECORD_KEY = "record__json"
+#: Longest unit or environment name used as it is in a file name (characters).
+MAX_NAME = 100
 
 
 def safe_name(name: str) -> str:
@@ -36,12 +38,13 @@ def safe_name(name: str) -> str:
 
     Characters other than letters, digits, ``-``, ``_`` and ``.`` become ``_``; when that
     changes the name, a short hash of the original is appended so that two ids never share a
-    file.
+    file. Names longer than :data:`MAX_NAME` characters are cut there and get the hash too
+    (file systems refuse names beyond 255 bytes).
     """
     name = str(name)
     clean = re.sub(r"[^A-Za-z0-9._-]", "_", name).strip(".") or "_"
-    if clean != name:
-        clean += "-" + hashlib.sha256(name.encode()).hexdigest()[:8]
+    if clean != name or len(clean) > MAX_NAME:
+        clean = clean[:MAX_NAME] + "-" + hashlib.sha256(name.encode()).hexdigest()[:8]
     return clean
 
 

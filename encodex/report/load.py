@@ -90,8 +90,11 @@ class RunFolder:
         plain = units / str(environment) / f"{unit}.npz"
         # Names with path separators or dot-only parts ("../x", "a/b", "..") would point at
         # another unit's file or outside the folder: only the sanitised form is used for them.
-        if _plain_part(environment) and _plain_part(unit) and plain.exists():
-            return plain
+        try:
+            if _plain_part(environment) and _plain_part(unit) and plain.exists():
+                return plain
+        except OSError:  # e.g. a name too long for the file system: only the safe form exists
+            pass
         return units / file_name_part(environment) / f"{file_name_part(unit)}.npz"
 
     def unit_arrays(self, environment: str, unit: str) -> dict[str, np.ndarray] | None:
