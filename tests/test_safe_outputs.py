@@ -29,7 +29,7 @@ HOSTILE_ENVS = ["../../room", "plain"]
 
 def _recording():
     rng = np.random.default_rng(3)
-    n = 2400  # 120 s at 20 Hz
+    n = 1600  # 80 s at 20 Hz
     t = np.arange(n) / 20.0
     xy = 0.5 + np.cumsum(rng.normal(0, 0.01, (n, 2)), axis=0)
     xy = np.abs(np.mod(xy + 1.0, 2.0) - 1.0)
@@ -40,7 +40,7 @@ def _recording():
         c = rng.poisson(rate / 20.0)
         spikes[u] = np.repeat(t, c) + rng.uniform(0, 0.05, c.sum())
     return make_recording(t, xy, spikes, heading=heading,
-                          epochs=[(0.0, 60.0, HOSTILE_ENVS[0]), (60.0, 120.0, HOSTILE_ENVS[1])])
+                          epochs=[(0.0, 40.0, HOSTILE_ENVS[0]), (40.0, 80.0, HOSTILE_ENVS[1])])
 
 
 @pytest.fixture(scope="module")
