@@ -125,10 +125,6 @@ def test_every_row_is_finite_and_complete(result):
         assert "fold fits did not converge (" in c["reason"]
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "known bug outside tests: a fold fit that diverges (0.01 Hz cell, speed model) predicts "
-    "an expected count of 0 at a held-out spike, so loglik_test = -inf in models.csv; the "
-    "held-out score needs a floor on the predicted rate (encodex/compare or encodex/fit)"))
 def test_held_out_scores_are_finite_when_a_fold_fit_diverges(result):
     _, res, _ = result
     m = res.models

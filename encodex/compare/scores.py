@@ -71,6 +71,13 @@ class HeldOutScore:
     deviance_explained: float
 
 
+#: Held-out predictions are floored at this fraction of the mean-rate prediction. A fold fit
+#: whose coefficients diverged (a handful of training spikes, all at one end of a variable)
+#: can predict a rate of exactly 0 where a held-out spike falls, an infinite loss; with the
+#: floor it costs log(1e-6), about 20 bits for that spike, which still fails the model.
+PREDICTION_FLOOR = 1e-6
+
+
 def heldout_score(y: np.ndarray, mu: np.ndarray, mu_mean: np.ndarray) -> HeldOutScore:
     """Score expected counts ``mu`` against observed ``y`` and the mean-rate counts ``mu_mean``.
 
@@ -87,9 +94,11 @@ def heldout_score(y: np.ndarray, mu: np.ndarray, mu_mean: np.ndarray) -> HeldOut
     -------
     HeldOutScore
         ``bits_per_spike`` divides the log-likelihood gain by the held-out spike count (by 1
-        when the fold holds no spike, so that the score stays finite).
+        when the fold holds no spike, so that the score stays finite). Predictions are floored
+        at :data:`PREDICTION_FLOOR` times the mean-rate prediction.
     """
     n = int(np.sum(y))
+    mu = np.maximum(mu, PREDICTION_FLOOR * np.asarray(mu_mean, dtype=float))
     ll = poisson_loglik(y, mu)
     ll0 = poisson_loglik(y, mu_mean)
     gain = ll - ll0
