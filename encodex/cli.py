@@ -70,6 +70,8 @@ def _load_options(args) -> dict:
     from encodex.io import parse_extra_option
 
     opts: dict = {}
+    if args.drop_empty_units:
+        opts["drop_empty_units"] = True
     if args.lfp is not None:
         opts["lfp"] = args.lfp
         opts["lfp_channel"] = args.lfp_channel
@@ -151,6 +153,9 @@ def add_fit_command(subparsers) -> None:
     p.add_argument("--min-spikes", type=_positive_int, default=100, metavar="N",
                    help="cells with fewer spikes in an environment are not labelled "
                         "(default 100)")
+    p.add_argument("--drop-empty-units", action="store_true",
+                   help="leave out units without any spike (listed in run.json and on screen) "
+                        "instead of stopping with an error")
     p.add_argument("--lfp", default=None, metavar="OBJECT_PATH",
                    help="LFP ElectricalSeries in the NWB file (e.g. processing/ecephys/LFP/lfp);"
                         " its band-passed Hilbert phase becomes the variable 'phase'")
@@ -191,6 +196,10 @@ def _run_fit(args) -> int:
     other = cells[cells["status"] != "ok"]["status"].value_counts()
     for status, n in other.items():
         print(f"  [{status}] {n}")
+    dropped = (result.run.get("session", {}).get("summary", {}).get("objects", {})
+               .get("dropped_empty_units"))
+    if dropped:
+        print(f"  units without any spike, left out (--drop-empty-units): {dropped}")
     return 0
 
 

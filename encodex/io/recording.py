@@ -284,7 +284,8 @@ class Recording:
                 )
             if st.size == 0:
                 raise InputError(
-                    f"unit {uid} has no spikes; remove it (readers: drop_empty_units=True)"
+                    f"unit {uid} has no spikes; remove it, or drop such units with "
+                    "`encodex fit --drop-empty-units` (Python: drop_empty_units=True)"
                 )
             trains.append(np.sort(st, kind="stable"))
         trials = _check_intervals("trials", self.trials)
