@@ -28,7 +28,10 @@ that every solution can be scored on the same scale.
 
 from __future__ import annotations
 
+import os
+import platform
 from dataclasses import dataclass
+from pathlib import Path
 
 import numpy as np
 
@@ -168,3 +171,16 @@ def fit_glum(X, y, offset, S):
     theta = np.concatenate([[model.intercept_], model.coef_])
     return theta, int(model.n_iter_)
 
+
+def machine() -> dict:
+    """CPU, Python and platform of this machine, and its load (others' work shares the CPUs)."""
+    cpu = "unknown"
+    try:
+        for line in Path("/proc/cpuinfo").read_text().splitlines():
+            if line.startswith("model name"):
+                cpu = line.split(":", 1)[1].strip()
+                break
+    except OSError:
+        pass
+    return {"nproc": os.cpu_count(), "cpu": cpu, "python": platform.python_version(),
+            "platform": platform.platform(), "loadavg_1min": os.getloadavg()[0]}

@@ -77,17 +77,7 @@ MODES = ("refit", "one-step")
 
 
 # --------------------------------------------------------------------------------------------
-def machine() -> dict:
-    cpu = "unknown"
-    try:
-        for line in Path("/proc/cpuinfo").read_text().splitlines():
-            if line.startswith("model name"):
-                cpu = line.split(":", 1)[1].strip()
-                break
-    except OSError:
-        pass
-    return {"nproc": os.cpu_count(), "cpu": cpu, "python": platform.python_version(),
-            "platform": platform.platform()}
+machine = _peers.machine
 
 
 def versions() -> dict:

@@ -58,23 +58,12 @@ TARGET_AGREEMENT = 1e-6
 TARGET_SPEEDUP = 5.0
 TARGET_MEMORY_MB = 1024.0
 
-#: Tighter encodex stopping rule (Newton-decrement tolerance relative to 1 + |f|); the default
-#: is 1e-10 (``encodex.fit.NewtonOptions``).
+#: Explicit encodex stopping rule (Newton-decrement tolerance relative to 1 + |f|); since the
+#: solver rewrite it equals the default of ``encodex.fit.NewtonOptions``.
 TIGHT_TOL = 1e-14
 
 
-def machine() -> dict:
-    cpu = "unknown"
-    try:
-        for line in Path("/proc/cpuinfo").read_text().splitlines():
-            if line.startswith("model name"):
-                cpu = line.split(":", 1)[1].strip()
-                break
-    except OSError:
-        pass
-    # The load average tells whether other work shared the CPUs during the run.
-    return {"nproc": os.cpu_count(), "cpu": cpu, "python": platform.python_version(),
-            "platform": platform.platform(), "loadavg_1min": os.getloadavg()[0]}
+machine = _peers.machine
 
 
 def versions() -> dict:

@@ -500,7 +500,7 @@ def write_comparison(cmp: EnvironmentComparison, out_dir) -> list:
     from pathlib import Path
 
     from encodex.errors import OutputError
-    from encodex.report.tables import to_markdown
+    from encodex.report.tables import to_markdown, write_texts
 
     out = Path(out_dir)
     try:
@@ -526,15 +526,7 @@ def write_comparison(cmp: EnvironmentComparison, out_dir) -> list:
     md += ["## Per variable", "", to_markdown(summary_frame(cmp)), "",
            "## Held-out gains", "", to_markdown(cmp.gains.round(4)), ""]
     files[f"{stem}.md"] = "\n".join(md)
-    written = []
-    for name, text in files.items():
-        p = out / name
-        try:
-            p.write_text(text)
-        except OSError as exc:
-            raise OutputError(f"cannot write {p} ({exc.strerror}); check the folder")
-        written.append(p)
-    return written
+    return write_texts(out, files)
 
 
 def summary_frame(cmp: EnvironmentComparison) -> pd.DataFrame:

@@ -370,11 +370,18 @@ def write_tables(tables: PaperTables, out_dir: str | Path) -> list[Path]:
             f"table_{name}.md": to_markdown(shown, caps[name]),
             f"table_{name}.tex": to_latex(shown, caps[name], f"tab:encodex-{name}"),
         }
-        for fname, text in files.items():
-            p = out / fname
-            try:
-                p.write_text(text)
-            except OSError as exc:
-                raise OutputError(f"cannot write {p} ({exc.strerror}); check the folder")
-            written.append(p)
+        written += write_texts(out, files)
+    return written
+
+
+def write_texts(out: Path, files: dict) -> list:
+    """Write ``{file name: text}`` into the folder ``out``; a failure is one OutputError."""
+    written = []
+    for fname, text in files.items():
+        p = Path(out) / fname
+        try:
+            p.write_text(text)
+        except OSError as exc:
+            raise OutputError(f"cannot write {p} ({exc.strerror}); check the folder")
+        written.append(p)
     return written
