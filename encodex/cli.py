@@ -25,44 +25,36 @@ class _Parser(argparse.ArgumentParser):
         self.exit(2, f"{self.prog}: error: {message} (see {self.prog} --help)\n")
 
 
-def _positive_int(text: str) -> int:
-    try:
-        v = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
-    if v < 1:
-        raise argparse.ArgumentTypeError(f"expected a number >= 1, got {v}")
-    return v
+def _whole_number(minimum: int):
+    """argparse type: a whole number of at least ``minimum``."""
+    def parse(text: str) -> int:
+        try:
+            v = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+        if v < minimum:
+            raise argparse.ArgumentTypeError(f"expected a number >= {minimum}, got {v}")
+        return v
+    return parse
 
 
-def _count(text: str) -> int:
-    try:
-        v = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
-    if v < 0:
-        raise argparse.ArgumentTypeError(f"expected a number >= 0, got {v}")
-    return v
+def _positive_number(what: str):
+    """argparse type: a positive number of ``what`` (e.g. "seconds")."""
+    def parse(text: str) -> float:
+        try:
+            v = float(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"expected {what} as a number, got {text!r}") from None
+        if not v > 0:
+            raise argparse.ArgumentTypeError(f"expected a positive number of {what}, got {v}")
+        return v
+    return parse
 
 
-def _seconds(text: str) -> float:
-    try:
-        v = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected seconds as a number, got {text!r}") from None
-    if not v > 0:
-        raise argparse.ArgumentTypeError(f"expected a positive number of seconds, got {v}")
-    return v
-
-
-def _hertz(text: str) -> float:
-    try:
-        v = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a frequency in Hz, got {text!r}") from None
-    if not v > 0:
-        raise argparse.ArgumentTypeError(f"expected a positive frequency in Hz, got {v}")
-    return v
+_positive_int = _whole_number(1)
+_count = _whole_number(0)
+_seconds = _positive_number("seconds")
+_hertz = _positive_number("Hz")
 
 
 def _load_options(args) -> dict:
