@@ -229,13 +229,22 @@ def _read_position(nwbfile, path, provenance):
     if xy.shape[1] > 2:
         provenance["position_note"] = f"used the first 2 of {xy.shape[1]} columns"
         xy = xy[:, :2]
-    unit = str(getattr(obj, "unit", "") or "").strip().lower()
-    if unit in _LENGTH_TO_M:
-        xy = xy * _LENGTH_TO_M[unit]
-    else:
-        provenance["position_unit_note"] = f"unit {unit!r} not recognised; values taken as metres"
+    xy = _in_si_unit(xy, obj, _LENGTH_TO_M, "metres", "position_unit_note", provenance)
     provenance["position"] = where
     return _series_times(obj, f"position series {where}"), xy
+
+
+def _series_unit(obj) -> str:
+    return str(getattr(obj, "unit", "") or "").strip().lower()
+
+
+def _in_si_unit(values, obj, factors, si_name, note_key, provenance, note=None):
+    """Scale ``values`` by the factor of the series' unit; note an unknown unit."""
+    unit = _series_unit(obj)
+    if unit in factors:
+        return values * factors[unit]
+    provenance[note_key] = note or f"unit {unit!r} not recognised; values taken as {si_name}"
+    return values
 
 
 def _read_heading(nwbfile, path, provenance):
@@ -258,11 +267,7 @@ def _read_heading(nwbfile, path, provenance):
             f"heading series {where} has shape {h.shape}; name a series with one angle per "
             "sample"
         )
-    unit = str(getattr(obj, "unit", "") or "").strip().lower()
-    if unit in _ANGLE_TO_RAD:
-        h = h * _ANGLE_TO_RAD[unit]
-    else:
-        provenance["heading_unit_note"] = f"unit {unit!r} not recognised; values taken as radians"
+    h = _in_si_unit(h, obj, _ANGLE_TO_RAD, "radians", "heading_unit_note", provenance)
     provenance["heading"] = where
     return _series_times(obj, f"heading series {where}"), h
 
@@ -468,18 +473,15 @@ def _read_extra(nwbfile, name, path, kind, provenance) -> Signal:
             f"variable {name!r} at {where} has shape {v.shape}; a user variable needs one "
             "value per sample (split the columns into separate series)"
         )
-    unit = str(getattr(obj, "unit", "") or "").strip().lower()
+    unit = _series_unit(obj)
     if kind is None:
         kind = "circular" if unit in _ANGLE_TO_RAD else "interval"
     if kind not in SIGNAL_KINDS:
         raise SettingsError(f"kind {kind!r} of variable {name!r} is unknown; use interval or "
                             "circular")
     if kind == "circular":
-        if unit in _ANGLE_TO_RAD:
-            v = v * _ANGLE_TO_RAD[unit]
-        else:
-            provenance[f"extra:{name}_unit_note"] = (
-                f"unit {unit!r} not an angle unit; values taken as radians")
+        v = _in_si_unit(v, obj, _ANGLE_TO_RAD, "radians", f"extra:{name}_unit_note", provenance,
+                        note=f"unit {unit!r} not an angle unit; values taken as radians")
     provenance[f"extra:{name}"] = f"{where} ({kind})"
     return Signal(_series_times(obj, f"series {where}"), v, kind, where, unit)
 
