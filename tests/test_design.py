@@ -79,3 +79,35 @@ def test_bad_covariates_raise_clear_errors():
     with pytest.raises(InputError, match="rows"):
         build_design({"speed": np.linspace(0, 1, 10), "time": np.linspace(0, 1, 11)},
                      {"speed": IntervalBasis(5, (0, 1)), "time": IntervalBasis(5, (0, 1))})
+
+
+@pytest.mark.parametrize("names", [("speed",), ("position",), ("heading", "speed"),
+                                   ("position", "speed", "heading")])
+def test_sub_designs_share_the_base_plan_and_match_dense_products(names):
+    rng = np.random.default_rng(5)
+    n = 3000
+    cov = {"position": rng.uniform(0, 1, (n, 2)), "heading": rng.uniform(0, 6, n),
+           "speed": rng.gamma(2, 0.1, n)}
+    design = build_design(cov, default_bases(cov))
+    sub = design.subset(names)
+    assert sub._base is design and design.subset(names) is sub
+    xz = sub.dense() @ sub.Z
+    w = rng.uniform(0.1, 2.0, n)
+    groups = rng.integers(-1, 4, n)  # -1: rows in no group
+    theta = rng.normal(0, 0.3, (3, sub.n_theta))
+    r = rng.normal(size=n)
+    np.testing.assert_allclose(sub.weighted_gram(w), xz.T @ (w[:, None] * xz), rtol=1e-10,
+                               atol=1e-9)
+    pieces = sub.weighted_gram(w, groups, 4)
+    for k in range(4):
+        m = groups == k
+        np.testing.assert_allclose(pieces[k], xz[m].T @ (w[m, None] * xz[m]), rtol=1e-10,
+                                   atol=1e-9)
+    np.testing.assert_allclose(sub.linear_predictor(theta[0]), xz @ theta[0], atol=1e-12)
+    rows = np.array([5, 17, 2999])
+    np.testing.assert_allclose(sub.linear_predictor(theta[1], rows), (xz @ theta[1])[rows],
+                               atol=1e-12)
+    np.testing.assert_allclose(sub.linear_predictors(theta), xz @ theta.T, atol=1e-12)
+    np.testing.assert_allclose(sub.transpose_dot(r), xz.T @ r, atol=1e-10)
+    by_group = sub.transpose_dot_groups(r, groups, 4)
+    np.testing.assert_allclose(by_group[2], xz[groups == 2].T @ r[groups == 2], atol=1e-10)

@@ -126,3 +126,18 @@ def test_bad_counts_and_settings_raise():
         fit_poisson(design, np.zeros(99))
     with pytest.raises(SettingsError, match="lambdas"):
         fit_poisson(design, np.ones(100), lambdas=[1.0])
+
+
+def test_smoothness_update_survives_a_singular_hessian():
+    # One spike in the fitted bins can leave a direction that no penalty covers with a
+    # numerically zero Hessian; the update must still return finite smoothing parameters.
+    from encodex.fit.smoothing import PenaltyStructure, fellner_schall_update
+
+    rng = np.random.default_rng(3)
+    x = rng.uniform(0, 0.5, 2000)
+    design = build_design({"speed": x}, {"speed": IntervalBasis(8, (0, 0.5))})
+    gram = np.zeros((design.n_theta, design.n_theta))  # no information from the data at all
+    theta = rng.normal(0, 0.1, design.n_theta)
+    lam = fellner_schall_update(theta, gram, design, PenaltyStructure.of(design),
+                                np.array([1e3]))
+    assert np.all(np.isfinite(lam)) and lam.shape == (1,)

@@ -49,7 +49,7 @@ FOLD_FITS = ("refit", "one-step")
 
 def cross_validate(design, model: Model, y: np.ndarray, offset: np.ndarray, folds: Folds,
                    fit_options=None, fold_fits: str = "refit", start=None,
-                   full_fits: dict | None = None) -> ModelCV:
+                   full_fits: dict | None = None, baselines: list | None = None) -> ModelCV:
     """Score one model by k-fold cross-validation.
 
     Parameters
@@ -75,6 +75,9 @@ def cross_validate(design, model: Model, y: np.ndarray, offset: np.ndarray, fold
     full_fits : dict, optional
         Where "one-step" stores the all-bins fit of the model (keyed by model), for warm starts
         and as the final fit.
+    baselines : list of ndarray, optional
+        Held-out expected counts of the mean-rate model for each fold
+        (:func:`mean_rate_baselines`), when already worked out for another model of the cell.
 
     Returns
     -------
@@ -95,12 +98,15 @@ def cross_validate(design, model: Model, y: np.ndarray, offset: np.ndarray, fold
         full = fit_poisson(sub, y, offset, lambdas=None, start=start, options=fit_options)
         if full_fits is not None:
             full_fits[tuple(model)] = full
-        fold_models = refit_folds(sub, y, offset, full, folds.fold, folds.k, options=fit_options)
+        fold_models, fold_predictions = refit_folds(sub, y, offset, full, folds.fold, folds.k,
+                                                    options=fit_options, heldout=True)
         if not full.converged:
             bad += 1
             reasons.append(full.reason)
+    if baselines is None:
+        baselines = mean_rate_baselines(y, offset, folds)
     for k, (train, test) in enumerate(folds.splits()):
-        mu0 = mean_rate_counts(y[train], offset[train], offset[test])
+        mu0 = baselines[k]
         if sub is None:
             mu = mu0
         else:
@@ -113,11 +119,18 @@ def cross_validate(design, model: Model, y: np.ndarray, offset: np.ndarray, fold
             if not fit.converged:
                 bad += 1
                 reasons.append(fit.reason)
-            mu = fit.predict(sub, rows=test, offset=offset)
+            mu = (fold_predictions[k] if fold_models is not None
+                  else fit.predict(sub, rows=test, offset=offset))
         per_fold.append(heldout_score(y[test], mu, mu0))
         pooled_parts.append((y[test], mu, mu0))
     return ModelCV(tuple(model), tuple(per_fold), pool_scores(pooled_parts), bad,
                    tuple(dict.fromkeys(reasons)))
+
+
+def mean_rate_baselines(y: np.ndarray, offset: np.ndarray, folds: Folds) -> list[np.ndarray]:
+    """Held-out expected counts of the mean-rate model (rate from the training bins), per fold."""
+    return [mean_rate_counts(y[train], offset[train], offset[test])
+            for train, test in folds.splits()]
 
 
 @dataclass(frozen=True)
@@ -198,13 +211,14 @@ def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
     y = np.asarray(y)
     cvs: dict[Model, ModelCV] = {}
     full_fits: dict = {}
+    baselines = mean_rate_baselines(y, offset, folds)
 
     def score(model: Model) -> np.ndarray:
         # Warm start from the largest already-fitted sub-model (the forward path's parent).
         parents = [m for m in full_fits if set(m) < set(model)]
         start = full_fits[max(parents, key=len)] if parents else None
         cvs[model] = cross_validate(design, model, y, offset, folds, fit_options, fold_fits,
-                                    start=start, full_fits=full_fits)
+                                    start=start, full_fits=full_fits, baselines=baselines)
         return cvs[model].bits_per_spike
 
     selection = select_variables(variables, score, alpha=alpha, exhaustive=exhaustive,

@@ -46,8 +46,13 @@ class Folds:
         Uses :class:`sklearn.model_selection.PredefinedSplit`, which yields the folds in
         increasing fold index.
         """
-        splitter = PredefinedSplit(self.fold)
-        return [(np.asarray(tr), np.asarray(te)) for tr, te in splitter.split()]
+        cached = self.__dict__.get("_splits")
+        if cached is None:
+            # Every model of a cell uses the same splits: work them out once.
+            splitter = PredefinedSplit(self.fold)
+            cached = [(np.asarray(tr), np.asarray(te)) for tr, te in splitter.split()]
+            self.__dict__["_splits"] = cached
+        return list(cached)
 
     def test_rows(self, f: int) -> np.ndarray:
         """Rows held out in fold ``f``."""

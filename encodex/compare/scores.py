@@ -21,7 +21,9 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.special import gammaln, xlogy
+
+from encodex.fit.result import poisson_deviance as _fit_deviance
+from encodex.fit.result import poisson_loglik as _fit_loglik
 
 LN2 = float(np.log(2.0))
 
@@ -31,18 +33,12 @@ def poisson_loglik(y: np.ndarray, mu: np.ndarray) -> float:
 
     ``mu == 0`` with ``y > 0`` gives ``-inf``; ``y == 0`` bins contribute ``-mu``.
     """
-    y = np.asarray(y, dtype=float)
-    mu = np.asarray(mu, dtype=float)
-    with np.errstate(divide="ignore"):
-        return float(np.sum(xlogy(y, mu) - mu - gammaln(y + 1.0)))
+    return _fit_loglik(y, mu)
 
 
 def poisson_deviance(y: np.ndarray, mu: np.ndarray) -> float:
     """Poisson deviance ``2 * sum(y log(y / mu) - (y - mu))`` (terms with y = 0 give 2 mu)."""
-    y = np.asarray(y, dtype=float)
-    mu = np.asarray(mu, dtype=float)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        return float(2.0 * np.sum(xlogy(y, y) - xlogy(y, mu) - (y - mu)))
+    return _fit_deviance(y, mu)
 
 
 def mean_rate_counts(

@@ -21,7 +21,7 @@ and 5.4.1 (identifiability constraints by QR).
 from __future__ import annotations
 
 from collections.abc import Iterable, Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from functools import cached_property
 
 import numpy as np
@@ -87,6 +87,10 @@ class Design:
 
     n_rows: int
     terms: tuple[Term, ...]
+    #: The design this one was cut from by :meth:`subset` (None for a design built directly).
+    #: Sub-designs share its per-term sparse matrices and row-grouping plans, which are built
+    #: once per environment and reused by every model of every cell.
+    root: "Design | None" = field(default=None, compare=False, repr=False)
 
     # --- layout -------------------------------------------------------------------------
     @property
@@ -147,26 +151,72 @@ class Design:
         return self.Z @ theta
 
     # --- products with the design -------------------------------------------------------
-    @cached_property
-    def _csr(self):
-        """The design (with intercept) as a CSR matrix: its products run in compiled loops."""
-        vals, cols = self._row_layout
-        n, q = vals.shape
-        return sparse.csr_array((vals.ravel(), cols.ravel().astype(np.int32),
-                                 np.arange(0, n * q + 1, q, dtype=np.int64)),
-                                shape=(n, self.n_beta))
+    @property
+    def _base(self) -> "Design":
+        """The design whose caches this one uses (itself unless cut by :meth:`subset`)."""
+        return self if self.root is None else self.root
+
+    def _term_matrix(self, term: Term):
+        """A term's block as CSR (cached on the base design): products run in compiled loops."""
+        cache = self._base.__dict__.setdefault("_term_csr", {})
+        m = cache.get(term.name)
+        if m is None:
+            m = cache[term.name] = term.block.tocsr()
+        return m
 
     def linear_predictor(self, theta: np.ndarray, rows: np.ndarray | None = None) -> np.ndarray:
-        """``X beta`` (without offset) on all rows or on ``rows`` (index array)."""
+        """``X beta`` (without offset) on all rows or on ``rows`` (index or boolean array)."""
         beta = self.beta(theta)
         if rows is None:
-            return self._csr @ beta
-        vals, cols = self._row_layout
-        return np.einsum("ij,ij->i", vals[rows], beta[cols[rows]])
+            eta = np.full(self.n_rows, beta[0])
+            for t in self.terms:
+                eta += self._term_matrix(t) @ beta[self.beta_slices[t.name]]
+            return eta
+        rows = np.asarray(rows)
+        eta = None
+        for t in self.terms:
+            b = beta[self.beta_slices[t.name]]
+            part = np.einsum("ij,ij->i", t.block.values[rows], b[t.block.columns[rows]])
+            eta = part if eta is None else eta + part
+        if eta is None:
+            eta = np.zeros(np.arange(self.n_rows)[rows].size)
+        return eta + beta[0]
+
+    def linear_predictors(self, thetas: np.ndarray) -> np.ndarray:
+        """``X Z theta_j`` for several coefficient vectors at once (rows of ``thetas``).
+
+        Returns an (n_rows, n_vectors) array, from one pass over each term's sparse block.
+        """
+        betas = np.atleast_2d(thetas) @ self.Z.T           # (m, n_beta)
+        out = np.empty((self.n_rows, betas.shape[0]))
+        out[:] = betas[:, 0]
+        for t in self.terms:
+            out += self._term_matrix(t) @ np.ascontiguousarray(betas[:, self.beta_slices[t.name]].T)
+        return out
 
     def transpose_dot(self, r: np.ndarray) -> np.ndarray:
         """``Z' X' r`` for a vector ``r`` over all rows (zeros exclude rows)."""
-        return self.Z.T @ (self._csr.T @ r)
+        out = np.empty(self.n_beta)
+        out[0] = np.sum(r)
+        for t in self.terms:
+            out[self.beta_slices[t.name]] = self._term_matrix(t).T @ r
+        return self.Z.T @ out
+
+    def transpose_dot_groups(self, r: np.ndarray, groups: np.ndarray, n_groups: int) -> np.ndarray:
+        """``Z' X' r`` restricted to each group's rows, shape (n_groups, n_theta).
+
+        One pass over the rows: ``r`` is spread into one column per group (rows of a negative
+        group are left out) and multiplied by each term's sparse block at once.
+        """
+        groups = np.asarray(groups)
+        spread = np.zeros((self.n_rows, n_groups))
+        keep = np.flatnonzero(groups >= 0)
+        spread[keep, groups[keep]] = np.asarray(r)[keep]
+        out = np.empty((n_groups, self.n_beta))
+        out[:, 0] = spread.sum(axis=0)
+        for t in self.terms:
+            out[:, self.beta_slices[t.name]] = (self._term_matrix(t).T @ spread).T
+        return out @ self.Z
 
     @cached_property
     def _row_layout(self) -> tuple[np.ndarray, np.ndarray]:
@@ -193,7 +243,7 @@ class Design:
         cache = self.__dict__.setdefault("_gram_plans", {})
         if key not in cache:
             # A plan holds the rows in compact form; keep at most two (all rows, and the
-            # folds of the cell being analysed).
+            # folds of the environment being analysed, shared by all its cells and models).
             if len(cache) >= 2:
                 cache.pop(next(iter(cache)))
             cache[key] = _GramPlan.build(self, groups)
@@ -217,41 +267,46 @@ class Design:
         Notes
         -----
         Only the products of non-zeros that can meet are formed. Rows are grouped (once per
-        design, cached) by the support of the widest term, e.g. the 4 x 4 position functions
-        that are non-zero in a bin: within a group that term occupies the same 16 columns, so
-        each group's rows form a narrow dense matrix ``[1 | 16 local | other terms]`` (57
-        instead of 141 columns for the default five-variable design, a sixth of the
-        multiply-adds). The grouped rows are kept in that compact layout with the plan (for
-        180,000 bins and 57 columns, 82 MB; at most two plans per design are cached). Each
-        group is accumulated in chunks of :data:`GRAM_CHUNK_ROWS` weighted rows with the
-        BLAS symmetric rank-k update and added into its place in ``X' W X``.
+        base design and grouping, cached) by the support of the widest term, e.g. the 4 x 4
+        position functions that are non-zero in a bin: within a group that term occupies the
+        same 16 columns, so each group's rows form a narrow dense matrix
+        ``[1 | 16 local | other terms]`` (57 instead of 141 columns for the default
+        five-variable design, a sixth of the multiply-adds). The grouped rows are kept in that
+        compact layout with the plan (for 180,000 bins and 57 columns, 82 MB; at most two
+        plans per base design). A sub-design (:meth:`subset`) uses its base design's plan and
+        takes only its own columns of the compact rows; without the wide term its groups
+        merge into one run per row group. Each run is accumulated in chunks of
+        :data:`GRAM_CHUNK_ROWS` weighted rows with the BLAS symmetric rank-k update and
+        added into its place in ``X' W X``.
         """
-        plan = self._gram_plan(groups)
+        plan = self._base._gram_plan(groups)
+        runs, picked = plan.layout_for(self)
         n_out = 1 if groups is None else (int(np.max(groups)) + 1 if n_groups is None
                                           else int(n_groups))
         p = self.n_beta
         out = np.zeros((n_out, p, p))
         sw = np.sqrt(np.asarray(w, dtype=float)[plan.order])
-        for r0, r1, gid, cols in zip(plan.starts, plan.stops, plan.group_ids, plan.columns):
+        width = plan.width if picked is None else picked.size
+        buf = np.empty((width, GRAM_CHUNK_ROWS))
+        for r0, r1, gid, cols in runs:
             if not sw[r0:r1].any():
                 continue
-            g = np.zeros((plan.width, plan.width))
+            g = np.zeros((width, width))
             for start in range(r0, r1, GRAM_CHUNK_ROWS):
                 stop = min(start + GRAM_CHUNK_ROWS, r1)
-                c = plan.rows[start:stop] * sw[start:stop, None]
-                # numpy recognises c.T @ c and calls the BLAS symmetric rank-k update (its
+                c = buf[:, :stop - start]
+                if picked is None:
+                    np.multiply(plan.columns_by_row[:, start:stop], sw[start:stop], out=c)
+                else:
+                    # Columns are stored as rows of a (width, n) array, so picking a
+                    # sub-design's columns copies contiguous stretches.
+                    np.multiply(plan.columns_by_row[picked, start:stop], sw[start:stop], out=c)
+                # numpy recognises c @ c.T and calls the BLAS symmetric rank-k update (its
                 # bundled BLAS measured 3x faster here than scipy.linalg.blas.dsyrk).
-                g += c.T @ c
+                g += c @ c.T
             out[gid][np.ix_(cols, cols)] += g
         out = self.Z.T @ out @ self.Z
         return out[0] if groups is None else out
-
-    def transpose_dot_groups(self, r: np.ndarray, groups: np.ndarray, n_groups: int) -> np.ndarray:
-        """``Z' X' r`` restricted to each group's rows, shape (n_groups, n_theta)."""
-        out = np.empty((n_groups, self.n_theta))
-        for k in range(n_groups):
-            out[k] = self.transpose_dot(np.where(groups == k, r, 0.0))
-        return out
 
     def dense(self) -> np.ndarray:
         """Dense ``X`` (n_rows x n_beta), for tests and small problems only."""
@@ -265,7 +320,13 @@ class Design:
         missing = names - set(self.names)
         if missing:
             raise InputError(f"terms {sorted(missing)} are not in the design {list(self.names)}")
-        return Design(self.n_rows, tuple(t for t in self.terms if t.name in names))
+        terms = tuple(t for t in self.terms if t.name in names)
+        base = self._base
+        cache = base.__dict__.setdefault("_subsets", {})
+        key = tuple(t.name for t in terms)
+        if key not in cache:
+            cache[key] = base if key == base.names else Design(self.n_rows, terms, root=base)
+        return cache[key]
 
     def term(self, name: str) -> Term:
         for t in self.terms:
@@ -326,12 +387,18 @@ class _GramPlan:
     starts, stops, group_ids : ndarray
         Runs of rows (in ``order``) sharing group and local support.
     columns : list of ndarray
-        For each run, the beta column of every chunk column.
-    rows : ndarray, shape (n, width)
-        The rows in ``order`` in the compact layout: intercept, the local term's support,
-        then every other term's columns (57 columns instead of 141 for the default design).
+        For each run, the beta column (of the base design) of every compact column.
+    columns_by_row : ndarray, shape (width, n)
+        The rows in ``order`` in the compact layout, stored transposed (one compact column
+        per array row, so that a sub-design's columns are contiguous stretches): intercept,
+        the local term's support, then every other term's columns (57 columns instead of
+        141 for the default design).
     width : int
-        Chunk width: intercept, the local term's support, then every other term's columns.
+        Number of compact columns.
+    local : str or None
+        Name of the local term.
+    compact_of : ndarray
+        Compact column of every base-design beta column outside the local term (-1 inside).
     """
 
     order: np.ndarray
@@ -339,8 +406,53 @@ class _GramPlan:
     stops: np.ndarray
     group_ids: np.ndarray
     columns: list
-    rows: np.ndarray
+    columns_by_row: np.ndarray
     width: int
+    local: str | None
+    compact_of: np.ndarray
+    _layouts: dict = field(default_factory=dict, compare=False, repr=False)
+
+    def layout_for(self, design: "Design"):
+        """Runs and compact columns for ``design`` (the base design or a sub-design of it).
+
+        Returns ``(runs, picked)``: ``runs`` a list of ``(start, stop, group, columns)`` with
+        ``columns`` the design's own beta column of each picked compact column, and
+        ``picked`` the compact columns to take (None: all of them).
+        """
+        key = design.names
+        if key in self._layouts:
+            return self._layouts[key]
+        base = design._base
+        to_own = np.full(base.n_beta, -1, dtype=np.intp)
+        to_own[0] = 0
+        for t in design.terms:
+            to_own[base.beta_slices[t.name]] = np.arange(design.beta_slices[t.name].start,
+                                                         design.beta_slices[t.name].stop)
+        q = self.width - 1 - int(np.count_nonzero(self.compact_of >= 0))  # local slots
+        has_local = self.local is not None and self.local in design.names
+        others = [self.compact_of[base.beta_slices[t.name]] for t in design.terms
+                  if t.name != self.local]
+        picked = np.concatenate([[0], np.arange(1, 1 + q) if has_local else [], *others]
+                                ).astype(np.intp)
+        if picked.size == self.width:
+            picked_out = None
+        else:
+            picked_out = picked
+        if has_local:
+            runs = [(int(a), int(b), int(g), to_own[c[picked]])
+                    for a, b, g, c in zip(self.starts, self.stops, self.group_ids, self.columns)]
+        else:
+            # Without the local term every run of a row group has the same columns: merge them.
+            runs = []
+            if self.starts.size:
+                cut = np.flatnonzero(np.diff(self.group_ids)) + 1
+                first = np.concatenate([[0], cut])
+                last = np.append(cut, self.starts.size) - 1
+                cols = to_own[self.columns[0][picked]]
+                runs = [(int(self.starts[i]), int(self.stops[j]), int(self.group_ids[i]), cols)
+                        for i, j in zip(first, last)]
+        self._layouts[key] = (runs, picked_out)
+        return self._layouts[key]
 
     @classmethod
     def build(cls, design: "Design", groups: np.ndarray | None) -> "_GramPlan":
@@ -365,34 +477,33 @@ class _GramPlan:
         stops = np.append(starts[1:], order.size) if order.size else np.empty(0, dtype=np.intp)
         group_ids = g[order[starts]] if order.size else np.empty(0, dtype=np.int64)
 
-        # Chunk column of every non-zero: intercept 0, local slots 1..q, then the other terms'
-        # columns in beta order.
+        # Compact column of every non-zero: intercept 0, local slots 1..q, then the other
+        # terms' columns in beta order.
         p = design.n_beta
         other_cols = np.ones(p, dtype=bool)
         if local is not None:
-            sl = design.beta_slices[local.name]
-            other_cols[sl] = False
+            other_cols[design.beta_slices[local.name]] = False
         other_cols[0] = False
-        other_index = np.full(p, -1, dtype=np.intp)
-        other_index[other_cols] = 1 + q + np.arange(int(other_cols.sum()))
+        compact_of = np.full(p, -1, dtype=np.intp)
+        compact_of[other_cols] = 1 + q + np.arange(int(other_cols.sum()))
         other_beta = np.flatnonzero(other_cols)
         width = 1 + q + other_beta.size
         v = vals[order]
         c = cols[order]
-        chunk_cols = other_index[c]
+        chunk_cols = compact_of[c]
         chunk_cols[:, 0] = 0
         columns = []
         if local is not None:
-            lo = 1 + sum(t.n_beta for t in design.terms[:design.terms.index(local)])
             # Non-zeros of the local term sit at positions lo_pos .. lo_pos + q in each row.
-            lo_pos = 1 + sum(t.block.values.shape[1] for t in design.terms[:design.terms.index(local)])
+            lo_pos = 1 + sum(t.block.values.shape[1]
+                             for t in design.terms[:design.terms.index(local)])
             chunk_cols[:, lo_pos:lo_pos + q] = 1 + np.arange(q)
             for s0 in starts:
                 columns.append(np.concatenate([[0], c[s0, lo_pos:lo_pos + q], other_beta]))
-            del lo
         else:
-            full = np.concatenate([[0], other_beta])
+            full = np.concatenate([[0], other_beta]).astype(np.intp)
             columns = [full] * len(starts)
-        rows = np.zeros((order.size, width))
-        rows[np.arange(order.size)[:, None], chunk_cols] = v
-        return cls(order, starts, stops, group_ids, columns, rows, width)
+        by_row = np.zeros((width, order.size))
+        by_row[chunk_cols, np.arange(order.size)[:, None]] = v
+        return cls(order, starts, stops, group_ids, columns, by_row, width,
+                   None if local is None else local.name, compact_of)

@@ -5,12 +5,12 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy.special import gammaln
 
 from encodex.design import Design
 from encodex.errors import InputError, SettingsError
 
-from .result import PoissonFit, TermLayout, poisson_deviance, poisson_loglik
+from .result import (PoissonFit, TermLayout, log_factorial_sum, poisson_deviance,
+                     poisson_loglik)
 from .smoothing import (LAMBDA_MAX, LAMBDA_MIN, RELATIVE_RANGE, PenaltyStructure,
                         fellner_schall_update, initial_lambdas, laml)
 from .solver import NewtonOptions, PenalisedPoissonNewton, _log_mean_rate
@@ -160,9 +160,9 @@ def fit_poisson(design: Design, y, offset=0.0, lambdas=None, rows=None, start=No
     n_iter = 0
     n_outer = 0
     if select:
-        lam, theta, n_outer, n_iter, change = _select_smoothness(
+        lam, theta, n_outer, n_iter, change, mu, gram = _select_smoothness(
             design, y, offset, mask, structure, theta0, _warm_lambdas(design, start), options)
-        res = newton(lam).solve(theta)
+        res = newton(lam).solve(theta, mu, gram)
         n_iter += res.n_iter
         reason = res.reason
         converged = res.converged
@@ -195,12 +195,16 @@ def _select_smoothness(design, y, offset, mask, structure, theta0, warm, options
     nested iteration, at about one Gram matrix per round instead of several ("performance
     iteration", Wood 2017, sec. 6.12.1, here with the Fellner-Schall update).
 
-    Returns (lambdas, theta, rounds, newton steps, last change in log lambda).
+    Returns (lambdas, theta, rounds, newton steps, last change in log lambda, mu, Gram
+    matrix), the last two at the returned theta.
     """
     solver = PenalisedPoissonNewton(design, y, offset, np.zeros((design.n_theta,) * 2), mask,
                                     options.newton)
     theta = theta0
-    _, mu = solver.objective(theta)
+    # The data part of the objective (S is zero here); each round adds its own penalty term
+    # instead of recomputing X theta and exp on every bin.
+    f_data, mu = solver.objective(theta)
+    log_y_factorials = log_factorial_sum(y, mask)
     gram = solver.gram(mu)
     init = initial_lambdas(design, gram)
     upper = np.minimum(init * RELATIVE_RANGE, LAMBDA_MAX)
@@ -226,7 +230,7 @@ def _select_smoothness(design, y, offset, mask, structure, theta0, warm, options
         change = float(np.max(np.abs(np.log(new) - np.log(lam))))
         lam = new
         solver.S = design.penalty_matrix(lam)
-        f, mu = solver.objective(theta)
+        f = f_data + 0.5 * theta @ solver.S @ theta
         g = solver.gradient(theta, mu)
         d = solver.direction(gram + solver.S, g)
         decrement = -float(g @ d)
@@ -235,24 +239,20 @@ def _select_smoothness(design, y, offset, mask, structure, theta0, warm, options
         step_small = decrement / 2 <= 1e-9 * (1 + abs(f))
         # A lambda that no longer changes the fit (a term shrunk to its unpenalised part)
         # can drift without limit; the criterion itself then stops changing.
-        value = laml(-f - _log_factorial_sum(y, mask) + 0.5 * theta @ solver.S @ theta, theta,
-                     gram, design, structure, lam)
+        value = laml(-f_data - log_y_factorials, theta, gram, design, structure, lam)
         flat_rounds = flat_rounds + 1 if abs(value - previous) <= options.laml_tol * (
             1 + abs(value)) else 0
         previous = value
         if step_small and (change < options.lambda_tol or flat_rounds >= 3):
             change = 0.0
             break
-        t, _, _, mu_new = solver.line_search(theta, f, g, d)
+        t, f_new, _, mu_new = solver.line_search(theta, f, g, d)
         if t > 0.0:
             theta = theta + t * d
             mu = mu_new
+            f_data = f_new - 0.5 * theta @ solver.S @ theta
         gram = solver.gram(mu)
-    return lam, theta, rounds, rounds, change
-
-
-def _log_factorial_sum(y, mask) -> float:
-    return float(np.dot(mask, gammaln(y + 1.0)))
+    return lam, theta, rounds, rounds, change, mu, gram
 
 
 def _posterior_covariance(h: np.ndarray) -> np.ndarray:

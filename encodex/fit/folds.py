@@ -21,16 +21,18 @@ model-comparison settings).
 from __future__ import annotations
 
 import numpy as np
+from scipy.special import gammaln
 
 from encodex.design import Design
 
 from .engine import FitOptions, _posterior_covariance, fit_poisson
-from .result import PoissonFit, poisson_deviance, poisson_loglik
+from .result import PoissonFit
 from .solver import PenalisedPoissonNewton
 
 
 def refit_folds(design: Design, y, offset, full: PoissonFit, folds: np.ndarray, n_folds: int,
-                exact: bool = False, options: FitOptions | None = None) -> list[PoissonFit]:
+                exact: bool = False, options: FitOptions | None = None,
+                heldout: bool = False):
     """Fit ``full``'s model with its smoothing parameters on every fold's training rows.
 
     Parameters
@@ -49,20 +51,37 @@ def refit_folds(design: Design, y, offset, full: PoissonFit, folds: np.ndarray, 
     n_folds : int
     exact : bool
         Refit every fold by Newton's method to convergence instead of one step.
+    heldout : bool
+        Also return each fit's expected counts on its own fold's bins (held out from it).
 
     Returns
     -------
     list of PoissonFit
         Fit ``k`` used every fold but ``k``; its ``reason`` says "one Newton step from the
         full-data fit" or how the exact refit ended.
+    list of ndarray
+        Only with ``heldout=True``: expected counts of fit ``k`` on the bins of fold ``k``, in
+        row order.
+
+    Notes
+    -----
+    The one-step refits take one pass over the bins for the per-fold Gram pieces, one for the
+    per-fold gradients and one for the linear predictors of all ten steps together (a sparse
+    product with a matrix of ten columns); each fold's objective, log-likelihood and deviance
+    are then sums over those columns.
     """
     y = np.asarray(y, dtype=float)
     folds = np.asarray(folds)
     options = options or FitOptions()
+    test_rows = [np.flatnonzero(folds == k) for k in range(n_folds)]
     if exact:
-        return [fit_poisson(design, y, offset, lambdas=full.lambdas,
+        fits = [fit_poisson(design, y, offset, lambdas=full.lambdas,
                             rows=(folds >= 0) & (folds != k), start=full, options=options)
                 for k in range(n_folds)]
+        if not heldout:
+            return fits
+        return fits, [f.predict(design, rows=r, offset=offset) for f, r in zip(fits, test_rows)]
+
     theta = full.theta_for(design)
     s = design.penalty_matrix(full.lambdas)
     eta = design.linear_predictor(theta) + offset
@@ -71,27 +90,65 @@ def refit_folds(design: Design, y, offset, full: PoissonFit, folds: np.ndarray, 
     grad_k = design.transpose_dot_groups(mu - y, folds, n_folds)
     gram_all = gram_k.sum(axis=0)
     grad_all = grad_k.sum(axis=0)
-    layouts = full.terms
-    out = []
+    penalty_gradient = s @ theta
+
+    # Per-fold sums of the pieces of the objective, log-likelihood and deviance that do not
+    # depend on the coefficients; "all folds but k" is the total minus fold k.
+    inside = folds >= 0
+    def all_but(rows, w):
+        """For each fold k, the sum of ``w`` over ``rows`` outside fold k."""
+        per_fold = np.bincount(folds[rows], weights=w, minlength=n_folds)[:n_folds]
+        return per_fold.sum() - per_fold
+
+    in_rows = np.flatnonzero(inside)
+    spikes = np.flatnonzero(inside & (y > 0))
+    ys = y[spikes]
+    log_fact = all_but(spikes, gammaln(ys + 1.0))
+    y_log_y = all_but(spikes, ys * np.log(ys) - ys)
+    data0 = all_but(in_rows, (mu - y * eta)[in_rows])
+    pen0 = 0.5 * float(theta @ s @ theta)
+
+    solver = PenalisedPoissonNewton(design, y, offset, s, None, options.newton)
+    steps = np.empty((n_folds, design.n_theta))
+    grads = np.empty((n_folds, design.n_theta))
+    hessians = []
     for k in range(n_folds):
         h = gram_all - gram_k[k]
-        g = grad_all - grad_k[k] + s @ theta
-        mask = ((folds >= 0) & (folds != k)).astype(float)
-        solver = PenalisedPoissonNewton(design, y, offset, s, mask, options.newton)
-        d = solver.direction(h + s, g)
-        f0, _ = solver.objective(theta, eta)
-        t, f1, _, mu_k = solver.line_search(theta, f0, g, d)
-        if t != 1.0:
-            # A full step did not pass the sufficient-decrease test: refit this fold exactly.
-            out.append(fit_poisson(design, y, offset, lambdas=full.lambdas, rows=mask > 0,
-                                   start=full, options=options))
+        grads[k] = grad_all - grad_k[k] + penalty_gradient
+        steps[k] = solver.direction(h + s, grads[k])
+        hessians.append(h)
+    # Linear predictors after each fold's full step, all folds in one pass: n x n_folds.
+    with np.errstate(over="ignore", invalid="ignore"):
+        eta_steps = eta[:, None] + design.linear_predictors(steps)
+        mu_steps = np.exp(eta_steps)
+        row_terms = mu_steps - y[:, None] * eta_steps
+    del eta_steps
+
+    layouts = full.terms
+    fits, predictions = [], []
+    for k in range(n_folds):
+        th = theta + steps[k]
+        rows_k = test_rows[k]
+        col = row_terms[:, k]
+        data1 = float(np.sum(col[inside]) - np.sum(col[rows_k]))
+        f0 = data0[k] + pen0
+        f1 = data1 + 0.5 * float(th @ s @ th)
+        slope = float(grads[k] @ steps[k])
+        if not (np.isfinite(f1) and f1 <= f0 + 1e-4 * slope):
+            # A full step did not pass the sufficient-decrease (Armijo) test: refit this fold
+            # exactly.
+            fit = fit_poisson(design, y, offset, lambdas=full.lambdas,
+                              rows=inside & (folds != k), start=full, options=options)
+            fits.append(fit)
+            predictions.append(fit.predict(design, rows=rows_k, offset=offset))
             continue
-        th = theta + d
+        h = hessians[k]
         cov = _posterior_covariance(h + s)
         f_diag = np.einsum("ij,ji->i", cov, h)
         edf = {t_.name: float(f_diag[t_.theta_slice].sum()) for t_ in layouts}
-        out.append(PoissonFit(layouts, th, full.lambdas, cov, edf,
-                              poisson_loglik(y, mu_k, mask), poisson_deviance(y, mu_k, mask),
-                              None, True, "one Newton step from the full-data fit", 1, 0,
-                              offset))
-    return out
+        fits.append(PoissonFit(layouts, th, full.lambdas, cov, edf,
+                               -data1 - float(log_fact[k]), 2.0 * (data1 + float(y_log_y[k])),
+                               None, True, "one Newton step from the full-data fit", 1, 0,
+                               offset))
+        predictions.append(mu_steps[rows_k, k])
+    return (fits, predictions) if heldout else fits

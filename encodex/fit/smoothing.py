@@ -123,7 +123,12 @@ def fellner_schall_update(theta: np.ndarray, gram: np.ndarray, design: Design,
     [lower, upper] (scalars or one bound per penalty).
     """
     s = design.penalty_matrix(lambdas)
-    v = np.linalg.inv(gram + s)
+    try:
+        v = np.linalg.inv(gram + s)
+    except np.linalg.LinAlgError:
+        # A cell with a spike or two in the training bins can drive the Hessian of a direction
+        # that no penalty covers to zero; the pseudo-inverse leaves that direction out.
+        v = np.linalg.pinv(gram + s)
     tr_pinv = structure.trace_pinv_products(lambdas)
     new = np.empty_like(lambdas)
     for k, (_, sl, sk) in enumerate(design.penalty_list):

@@ -75,7 +75,6 @@ class NewtonResult:
     """State at the end of a Newton run."""
 
     theta: np.ndarray
-    eta: np.ndarray
     mu: np.ndarray
     objective: float
     gradient: np.ndarray
@@ -166,24 +165,37 @@ class PenalisedPoissonNewton:
         return 0.0, f, None, None
 
     # --- driver -------------------------------------------------------------------------
-    def solve(self, theta0: np.ndarray) -> NewtonResult:
+    def solve(self, theta0: np.ndarray, mu0: np.ndarray | None = None,
+              gram0: np.ndarray | None = None) -> NewtonResult:
+        """Run Newton's method from ``theta0``.
+
+        ``mu0`` and ``gram0``, when given, are the mean counts and ``Z' X' diag(m mu) X Z`` at
+        ``theta0`` (a caller that has them saves a pass over the bins for each).
+        """
         opt = self.options
         theta = np.asarray(theta0, dtype=float).copy()
-        eta = self.linear_predictor(theta)
-        f, mu = self.objective(theta, eta)
+        if mu0 is None:
+            f, mu = self.objective(theta)
+            gram0 = None
+        else:
+            mu = mu0
+            spikes = np.flatnonzero(self.my)
+            with np.errstate(divide="ignore"):
+                f = float(np.dot(self.mask, mu) - np.dot(self.my[spikes], np.log(mu[spikes]))
+                          + 0.5 * theta @ self.S @ theta)
         if not np.isfinite(f):
             # A warm start from another problem can overflow here; restart from the mean rate.
             theta = np.zeros_like(theta)
             theta[0] = _log_mean_rate(self.my, self.mask, self.offset)
-            eta = self.linear_predictor(theta)
-            f, mu = self.objective(theta, eta)
+            f, mu = self.objective(theta)
+            gram0 = None
         n_spikes = max(float(self.my.sum()), 1.0)
         reason = f"iteration limit ({opt.max_iter}) reached"
         converged = False
         it = 0
         for it in range(1, opt.max_iter + 1):
             g = self.gradient(theta, mu)
-            gram = self.gram(mu)
+            gram = self.gram(mu) if gram0 is None or it > 1 else gram0
             d = self.direction(gram + self.S, g)
             decrement = -float(g @ d)
             # Gradient in unit-curvature coordinates, so that a heavily penalised direction
@@ -193,7 +205,7 @@ class PenalisedPoissonNewton:
                 converged, reason = True, "converged"
                 it -= 1
                 break
-            t, f_new, eta_new, mu_new = self.line_search(theta, f, g, d)
+            t, f_new, _, mu_new = self.line_search(theta, f, g, d)
             if t == 0.0:
                 # No decrease possible: at the optimum to machine precision if the decrement is
                 # tiny, otherwise a genuine failure.
@@ -203,7 +215,7 @@ class PenalisedPoissonNewton:
                     reason = "line search failed to decrease the objective"
                 break
             theta = theta + t * d
-            f, eta, mu = f_new, eta_new, mu_new
+            f, mu = f_new, mu_new
             if np.max(np.abs(theta[1:]), initial=0.0) > opt.max_abs_theta:
                 reason = ("coefficients diverging (perfectly separable data or a basis function "
                           "without support); add smoothing or drop the variable")
@@ -214,7 +226,7 @@ class PenalisedPoissonNewton:
         if not converged and reason.startswith("coefficients"):
             g = self.gradient(theta, mu)
             gram = self.gram(mu)
-        return NewtonResult(theta, eta, mu, f, g, gram, it, converged, reason)
+        return NewtonResult(theta, mu, f, g, gram, it, converged, reason)
 
 
 def _log_mean_rate(my, mask, offset) -> float:
