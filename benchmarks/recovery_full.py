@@ -12,7 +12,7 @@ default settings (10 folds, alpha 0.05, 20 ms bins) and prints one JSON line and
 Usage::
 
     .venv/bin/python benchmarks/recovery_full.py [--cells 80] [--untuned 60] [--duration 1800]
-        [--bin-size 0.02] [--jobs 2] [--seed 0]
+        [--bin-size 0.02] [--jobs 2] [--seed 0] [--fold-fits refit|one-step]
 """
 
 from __future__ import annotations
@@ -44,6 +44,8 @@ def main(argv=None):
     p.add_argument("--bin-size", type=float, default=0.02)
     p.add_argument("--jobs", type=int, default=2)
     p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--fold-fits", choices=("refit", "one-step"), default=None,
+                   help="how fold models are fitted (default: the run's default)")
     p.add_argument("--out", default=None, help="optional output folder of the run")
     a = p.parse_args(argv)
 
@@ -63,13 +65,15 @@ def main(argv=None):
                               "variables": "none", "silent": False})
         truth = pd.concat([truth, extra], ignore_index=True)
     t0 = time.time()
-    result = run_population(session, a.out, jobs=a.jobs, progress=True)
+    mode = {} if a.fold_fits is None else {"fold_fits": a.fold_fits}
+    result = run_population(session, a.out, jobs=a.jobs, progress=True, **mode)
     wall = time.time() - t0
     s = recovery_summary(result.cells, truth)
     record = {
         "benchmark": "recovery_full",
         "cells": a.cells, "untuned_extra": a.untuned, "duration_s": a.duration,
         "bin_size_s": a.bin_size, "jobs": a.jobs, "seed": a.seed,
+        "fold_fits": result.run["settings"].get("fold_fits"),
         "wall_s": round(wall, 1),
         "cpu_s_per_cell_median": result.run["timings"]["cpu_seconds_per_cell_median"],
         **{k: v for k, v in s.items() if k != "mistakes"},

@@ -141,3 +141,27 @@ def test_smoothness_update_survives_a_singular_hessian():
     lam = fellner_schall_update(theta, gram, design, PenaltyStructure.of(design),
                                 np.array([1e3]))
     assert np.all(np.isfinite(lam)) and lam.shape == (1,)
+
+
+def test_line_search_gives_up_quickly_when_the_objective_cannot_resolve_the_step():
+    # At the optimum the predicted decrease is below the rounding of f; the line search must
+    # report "no step" after a few trials instead of accepting steps that leave f unchanged
+    # (which once made the Newton loop run to its iteration limit, 40 halvings per step).
+    from encodex.fit.solver import PenalisedPoissonNewton
+
+    design, cov, rng = _design()
+    y = rng.poisson(np.exp(np.log(5.0) + 0.5 * np.cos(cov["heading"])) * DT)
+    lam = np.array([1.0, 1e9])
+    fit = fit_poisson(design, y, np.log(DT), lambdas=lam)
+    assert fit.converged and fit.n_iter < 30
+    solver = PenalisedPoissonNewton(design, y.astype(float), np.log(DT),
+                                    design.penalty_matrix(lam))
+    calls = []
+    original = solver.objective
+    solver.objective = lambda th, eta=None: calls.append(1) or original(th, eta)
+    f, mu = original(fit.theta)
+    g = solver.gradient(fit.theta, mu)
+    d = solver.direction(solver.gram(mu) + solver.S, g)
+    t, f_new, _, _ = solver.line_search(fit.theta, f, g, d)
+    assert (t == 0.0 and f_new == f) or f_new < f
+    assert len(calls) <= 8

@@ -46,3 +46,20 @@ def test_one_step_refits_are_close_to_exact_refits(problem):
         assert one[k].reason.startswith("one Newton step")
         # The fold's own bins were not used: refits differ from the full fit.
         assert not np.allclose(one[k].theta, full.theta)
+
+
+def test_one_step_fold_summaries_match_direct_sums(problem):
+    # Log-likelihood and deviance of each one-step fit are assembled from per-fold sums;
+    # they must equal the sums over the fold's training bins, and the held-out predictions
+    # must equal the fit's own predictions.
+    from encodex.fit import poisson_deviance
+
+    design, y, folds = problem
+    full = fit_poisson(design, y, np.log(DT))
+    fits, held = refit_folds(design, y, np.log(DT), full, folds, 10, heldout=True)
+    for k in (0, 4, 9):
+        train = (folds != k).astype(float)
+        mu = fits[k].predict(design)
+        assert fits[k].loglik == pytest.approx(poisson_loglik(y, mu, train), rel=1e-10)
+        assert fits[k].deviance == pytest.approx(poisson_deviance(y, mu, train), rel=1e-10)
+        np.testing.assert_allclose(held[k], mu[folds == k], rtol=1e-12)

@@ -287,6 +287,7 @@ class Design:
         out = np.zeros((n_out, p, p))
         sw = np.sqrt(np.asarray(w, dtype=float)[plan.order])
         width = plan.width if picked is None else picked.size
+        spans = _contiguous_spans(np.arange(plan.width) if picked is None else picked)
         buf = np.empty((width, GRAM_CHUNK_ROWS))
         for r0, r1, gid, cols in runs:
             if not sw[r0:r1].any():
@@ -295,12 +296,11 @@ class Design:
             for start in range(r0, r1, GRAM_CHUNK_ROWS):
                 stop = min(start + GRAM_CHUNK_ROWS, r1)
                 c = buf[:, :stop - start]
-                if picked is None:
-                    np.multiply(plan.columns_by_row[:, start:stop], sw[start:stop], out=c)
-                else:
-                    # Columns are stored as rows of a (width, n) array, so picking a
-                    # sub-design's columns copies contiguous stretches.
-                    np.multiply(plan.columns_by_row[picked, start:stop], sw[start:stop], out=c)
+                # Compact columns are stored as rows of a (width, n) array: a sub-design's
+                # columns are a few contiguous ranges of them, weighted straight into place.
+                for lo, hi, at in spans:
+                    np.multiply(plan.columns_by_row[lo:hi, start:stop], sw[start:stop],
+                                out=c[at:at + hi - lo])
                 # numpy recognises c @ c.T and calls the BLAS symmetric rank-k update (its
                 # bundled BLAS measured 3x faster here than scipy.linalg.blas.dsyrk).
                 g += c @ c.T
@@ -374,6 +374,14 @@ def build_design(covariates: Mapping[str, np.ndarray], bases: Mapping[str, Basis
             raise InputError("no covariates given: cannot tell the number of bins")
         n_rows = len(first)
     return Design(int(n_rows), tuple(terms))
+
+
+def _contiguous_spans(columns: np.ndarray) -> list[tuple[int, int, int]]:
+    """Split increasing ``columns`` into ranges: ``(first, last + 1, position in columns)``."""
+    cut = np.flatnonzero(np.diff(columns) != 1) + 1
+    starts = np.concatenate([[0], cut])
+    stops = np.append(cut, columns.size)
+    return [(int(columns[a]), int(columns[b - 1]) + 1, int(a)) for a, b in zip(starts, stops)]
 
 
 @dataclass(frozen=True)

@@ -95,6 +95,7 @@ def refit_folds(design: Design, y, offset, full: PoissonFit, folds: np.ndarray, 
     # Per-fold sums of the pieces of the objective, log-likelihood and deviance that do not
     # depend on the coefficients; "all folds but k" is the total minus fold k.
     inside = folds >= 0
+
     def all_but(rows, w):
         """For each fold k, the sum of ``w`` over ``rows`` outside fold k."""
         per_fold = np.bincount(folds[rows], weights=w, minlength=n_folds)[:n_folds]
@@ -118,19 +119,28 @@ def refit_folds(design: Design, y, offset, full: PoissonFit, folds: np.ndarray, 
         steps[k] = solver.direction(h + s, grads[k])
         hessians.append(h)
     # Linear predictors after each fold's full step, all folds in one pass: n x n_folds.
+    # Bins without spikes contribute only mu to a fold's objective, so its y * eta part is
+    # summed over the bins with spikes alone; "training bins of fold k" is all bins in folds
+    # minus fold k's own.
     with np.errstate(over="ignore", invalid="ignore"):
-        eta_steps = eta[:, None] + design.linear_predictors(steps)
-        mu_steps = np.exp(eta_steps)
-        row_terms = mu_steps - y[:, None] * eta_steps
-    del eta_steps
+        eta_steps = design.linear_predictors(steps)
+        eta_steps += eta[:, None]
+        spike_eta = ys[:, None] * eta_steps[spikes]
+        own = np.bincount(folds[spikes], weights=spike_eta[np.arange(spikes.size), folds[spikes]],
+                          minlength=n_folds)[:n_folds]
+        train_spike_part = spike_eta.sum(axis=0) - own
+        mu_steps = np.exp(eta_steps, out=eta_steps)
+        del eta_steps
+        mu_part = (mu_steps.sum(axis=0) if in_rows.size == y.size
+                   else mu_steps[in_rows].sum(axis=0))
 
     layouts = full.terms
     fits, predictions = [], []
     for k in range(n_folds):
         th = theta + steps[k]
         rows_k = test_rows[k]
-        col = row_terms[:, k]
-        data1 = float(np.sum(col[inside]) - np.sum(col[rows_k]))
+        held_mu = mu_steps[rows_k, k]
+        data1 = float(mu_part[k] - held_mu.sum() - train_spike_part[k])
         f0 = data0[k] + pen0
         f1 = data1 + 0.5 * float(th @ s @ th)
         slope = float(grads[k] @ steps[k])
@@ -150,5 +160,5 @@ def refit_folds(design: Design, y, offset, full: PoissonFit, folds: np.ndarray, 
                                -data1 - float(log_fact[k]), 2.0 * (data1 + float(y_log_y[k])),
                                None, True, "one Newton step from the full-data fit", 1, 0,
                                offset))
-        predictions.append(mu_steps[rows_k, k])
+        predictions.append(held_mu)
     return (fits, predictions) if heldout else fits

@@ -152,14 +152,24 @@ class PenalisedPoissonNewton:
         raise linalg.LinAlgError("Hessian could not be factorised even with a ridge")
 
     def line_search(self, theta, f, g, d):
-        """Backtracking line search with the Armijo condition; returns (t, f_new, eta, mu)."""
+        """Backtracking line search with the Armijo condition; returns (t, f_new, eta, mu).
+
+        A step must lower ``f`` strictly: near the optimum of an ill-conditioned problem
+        (a smoothing parameter of 1e8 or more) rounding can make ``f`` equal at every trial
+        point, and accepting such a step would repeat forever without progress. Halving
+        stops (t = 0) once the predicted decrease ``t |g'd|`` is below what ``f`` can
+        resolve (a few ulps of ``|f|``).
+        """
         slope = float(g @ d)
+        resolution = 4.0 * np.finfo(float).eps * max(abs(f), 1.0)
         t = 1.0
         for _ in range(self.options.max_halvings):
+            if t * abs(slope) < resolution:
+                break
             cand = theta + t * d
             eta = self.linear_predictor(cand)
             f_new, mu = self.objective(cand, eta)
-            if f_new <= f + 1e-4 * t * slope:
+            if f_new <= f + 1e-4 * t * slope and f_new < f:
                 return t, f_new, eta, mu
             t *= 0.5
         return 0.0, f, None, None
