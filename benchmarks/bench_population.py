@@ -37,7 +37,7 @@ Output: ONE line of JSON on stdout, then a readable table.
 
 Usage::
 
-    .venv/bin/python benchmarks/bench_population.py            # about 10-15 min on 2 cores
+    .venv/bin/python benchmarks/bench_population.py            # about 15 min on 2 cores
     .venv/bin/python benchmarks/bench_population.py --quick    # smoke run, about 2 min
 """
 
@@ -493,12 +493,13 @@ def main(argv=None) -> int:
         args.dask_units, args.dask_minutes = 2, 2.0
         args.profile_units, args.profile_minutes = 8, 2.0
     else:
-        # units x minutes; the 4-unit column spans durations (bins), the 10-min row spans units.
-        args.sizes = [(2, 10.0), (4, 10.0), (8, 10.0), (4, 5.0), (4, 20.0)]
-        args.memory_units = 4
+        # units x minutes; the 10-unit column spans durations (bins), the 60-min row spans
+        # units (the full job's duration).
+        args.sizes = [(5, 60.0), (10, 60.0), (20, 60.0), (10, 15.0), (10, 30.0)]
+        args.memory_units = 10
         args.peer_units, args.peer_minutes = 4, 5.0
-        args.dask_units, args.dask_minutes = 6, 10.0
-        args.profile_units, args.profile_minutes = 20, 10.0
+        args.dask_units, args.dask_minutes = 20, 60.0
+        args.profile_units, args.profile_minutes = 20, 60.0
     res = run(args)
     print(json.dumps(res), flush=True)
     print()

@@ -138,10 +138,12 @@ def add_fit_command(subparsers) -> None:
     p.add_argument("--correction", choices=("bonferroni", "none"), default="bonferroni",
                    help="test the best of m candidates of a step at alpha/m (bonferroni, "
                         "default: untuned cells labelled at most at rate alpha) or at alpha")
-    p.add_argument("--fold-fits", choices=("refit", "one-step"), default="refit",
-                   help="refit: each fold's models fitted to its training bins with their own "
-                        "smoothness selection (default); one-step: one fit to all bins, then "
-                        "one Newton step per fold without its bins (about 10x faster)")
+    p.add_argument("--fold-fits", choices=("one-step", "refit"), default="one-step",
+                   help="one-step (default): one fit per model to all bins, smoothness by "
+                        "LAML, then one Newton step per fold without its bins; refit: each "
+                        "fold's models fitted to its training bins with their own smoothness "
+                        "selection (strict: held-out bins never touch the smoothing; about 4x "
+                        "slower)")
     p.add_argument("--min-spikes", type=_positive_int, default=100, metavar="N",
                    help="cells with fewer spikes in an environment are not labelled "
                         "(default 100)")

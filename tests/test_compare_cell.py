@@ -26,12 +26,14 @@ def data():
 
 def test_cross_validation_never_fits_held_out_bins(data):
     design, tuned, _, off, folds = data
-    cv = cross_validate(design, ("heading",), tuned, off, folds)
+    # The strict mode: with "one-step" the held-out bins reach a fold's model through the
+    # all-bins fit it starts from (second order) and its smoothing parameters.
+    cv = cross_validate(design, ("heading",), tuned, off, folds, fold_fits="refit")
     # Changing the spikes of fold 0's held-out bins must not change the fits of fold 0,
     # hence its predictions on other bins; only fold 0's score may change.
     y2 = tuned.copy()
     y2[folds.test_rows(0)] = 0
-    cv2 = cross_validate(design, ("heading",), y2, off, folds)
+    cv2 = cross_validate(design, ("heading",), y2, off, folds, fold_fits="refit")
     s1, s2 = cv.folds[0], cv2.folds[0]
     assert s2.n_spikes == 0 and s1.n_spikes > 0
     # fold 0's model was trained on identical bins, so its held-out expected counts are equal:

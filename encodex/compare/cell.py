@@ -2,16 +2,25 @@
 
 Smoothness (documented choice)
 ------------------------------
-For every model and every fold, the smoothing parameters are selected by LAML on the
-training bins of that fold only (``fit_poisson(..., rows=train)``); the held-out bins are
-never seen by the fit nor by the smoothness selection. Each fold's fit is warm-started from
-the previous fold's fit of the same model (coefficients and smoothing parameters), which
-makes the later folds converge in a few updates; the end point does not depend on the warm
-start beyond the solver's tolerance. The mean-rate model needs no fit: its rate is the
-training spike count over the training exposure.
+Two ways of fitting a model on the training folds are offered (``fold_fits``):
 
-The model reported for plotting (response curves) is the chosen model refitted on all bins of
-the environment, again with LAML.
+* "one-step" (default): the model is fitted once to all bins of the environment, its
+  smoothing parameters selected by LAML, and each fold's model is one Newton step from that
+  fit on the objective of the fold's training bins (:func:`encodex.fit.refit_folds`). The
+  held-out bins reach a fold's model only through that starting point (a second-order
+  effect) and through the smoothing parameters (one to three numbers per term).
+  ``reference_checks/test_one_step_folds.py`` bounds the held-out scores and labels against
+  exact refits on simulated cells.
+* "refit": for every model and every fold, the smoothing parameters are selected by LAML on
+  the training bins of that fold only (``fit_poisson(..., rows=train)``); the held-out bins
+  are never seen by the fit nor by the smoothness selection. Each fold's fit is warm-started
+  from the previous fold's fit of the same model (coefficients and smoothing parameters); the
+  end point does not depend on the warm start beyond the solver's tolerance. About four times
+  slower.
+
+The mean-rate model needs no fit: its rate is the training spike count over the training
+exposure. The model reported for plotting (response curves) is the chosen model fitted on all
+bins of the environment with LAML (with "one-step", the all-bins fit already made).
 """
 
 from __future__ import annotations
@@ -48,7 +57,7 @@ FOLD_FITS = ("refit", "one-step")
 
 
 def cross_validate(design, model: Model, y: np.ndarray, offset: np.ndarray, folds: Folds,
-                   fit_options=None, fold_fits: str = "refit", start=None,
+                   fit_options=None, fold_fits: str = "one-step", start=None,
                    full_fits: dict | None = None, baselines: list | None = None) -> ModelCV:
     """Score one model by k-fold cross-validation.
 
@@ -64,12 +73,12 @@ def cross_validate(design, model: Model, y: np.ndarray, offset: np.ndarray, fold
         Log exposure per bin (log bin width in seconds).
     folds : Folds
         Fold membership shared by every model of the cell.
-    fold_fits : {"refit", "one-step"}
-        "refit" (default): every fold's model is fitted to its training bins, smoothness
-        selected by LAML on those bins only. "one-step": the model is fitted once to all bins
-        (smoothness by LAML) and each fold's model is one Newton step from it with the fold's
-        bins removed (:func:`encodex.fit.refit_folds`), about ten times cheaper; the held-out
-        bins then influence the smoothing parameters (not the coefficients) of their fold.
+    fold_fits : {"one-step", "refit"}
+        "one-step" (default): the model is fitted once to all bins (smoothness by LAML) and
+        each fold's model is one Newton step from it with the fold's bins removed
+        (:func:`encodex.fit.refit_folds`); the held-out bins then influence their fold's
+        model through the smoothing parameters and the starting point. "refit": every fold's model is
+        fitted to its training bins, smoothness selected by LAML on those bins only.
     start : PoissonFit, optional
         Warm start for the all-bins fit of "one-step" (e.g. the parent model's fit).
     full_fits : dict, optional
@@ -170,7 +179,7 @@ def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
                  shuffles: int = 0, min_shift_bins: int = 0,
                  rng: np.random.Generator | None = None, fit_options=None,
                  refit: bool = True, correction: str = "bonferroni",
-                 fold_fits: str = "refit") -> CellAnalysis:
+                 fold_fits: str = "one-step") -> CellAnalysis:
     """Choose the variables one cell carries and score every model tried.
 
     Parameters
@@ -256,7 +265,7 @@ def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
 
 def shuffle_null(design, model: Model, y, offset, folds: Folds, n: int, min_shift_bins: int,
                  rng: np.random.Generator, fit_options=None,
-                 fold_fits: str = "refit") -> np.ndarray:
+                 fold_fits: str = "one-step") -> np.ndarray:
     """Mean held-out bits per spike of ``model`` on ``n`` circularly shifted spike trains.
 
     Each shift moves the spike train against behaviour by a uniform random number of bins in

@@ -48,12 +48,23 @@ LABEL_STATEMENT = (
     "behaviour, unmodelled variables or limited sampling can produce or hide a label."
 )
 
-SMOOTHNESS_STATEMENT = (
-    "Smoothing parameters are selected by LAML on the training bins of each fold, separately "
-    "for every model (warm-started from the previous fold's fit of the same model); held-out "
-    "bins are never used to tune them. Response curves come from the chosen model refitted "
-    "on all usable bins of the environment."
-)
+SMOOTHNESS_STATEMENTS = {
+    "refit": (
+        "Smoothing parameters are selected by LAML on the training bins of each fold, "
+        "separately for every model (warm-started from the previous fold's fit of the same "
+        "model); held-out bins are never used to tune them. Response curves come from the "
+        "chosen model refitted on all usable bins of the environment."
+    ),
+    "one-step": (
+        "Smoothing parameters are selected by LAML once per cell and model, on all usable "
+        "bins of the environment; each fold's model is one Newton step from that fit with the "
+        "fold's bins removed, so its held-out bins reach it only through that starting point "
+        "(a second-order effect) and the smoothing parameters "
+        "(reference_checks/test_one_step_folds.py bounds the effect "
+        "against exact refits; use fold_fits='refit' for the strict version). Response curves "
+        "come from the chosen model's all-bins fit."
+    ),
+}
 
 FOLD_STATEMENT = (
     "Each environment's usable bins, in time order, are cut into folds x chunks_per_fold "
@@ -470,7 +481,7 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
             "cpu_seconds_per_cell_median": float(np.median(seconds)) if seconds else None,
             "cpu_seconds_cells": round(float(np.sum(seconds)), 3),
         },
-        "methods": {"folds": FOLD_STATEMENT, "smoothness": SMOOTHNESS_STATEMENT,
+        "methods": {"folds": FOLD_STATEMENT, "smoothness": SMOOTHNESS_STATEMENTS[rs.fold_fits],
                     "selection": ("forward selection from the mean-rate model; a variable is "
                                   "kept if it improves held-out bits per spike across folds by "
                                   f"a one-sided Wilcoxon signed-rank test at alpha={rs.alpha}"

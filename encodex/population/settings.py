@@ -58,10 +58,13 @@ class RunSettings:
     ratemap_bin_m : float
         Side of the spatial bins of the occupancy map saved per unit, in metres.
     fold_fits : str
-        "refit" (default): each fold's models are fitted to its training bins with their own
-        smoothness selection. "one-step": each model is fitted once to all bins and every fold
-        takes one Newton step from it without its bins (about ten times cheaper; the
-        smoothing parameters then also see the held-out bins). See
+        "one-step" (default): each model is fitted once to all bins (smoothness by LAML) and
+        every fold takes one Newton step from it on the objective of its training bins;
+        the held-out bins reach a fold's model only through that starting point (a
+        second-order effect) and through the smoothing parameters.
+        ``reference_checks/test_one_step_folds.py`` bounds the difference from exact refits.
+        "refit": each fold's models are fitted to its training bins with their own
+        smoothness selection (strict, about four times slower). See
         :func:`encodex.compare.cell.cross_validate`.
     """
 
@@ -78,7 +81,7 @@ class RunSettings:
     bin_size: float | None = None
     basis_sizes: tuple[tuple[str, int], ...] = ()
     ratemap_bin_m: float = 0.05
-    fold_fits: str = "refit"
+    fold_fits: str = "one-step"
 
     def __post_init__(self):
         if self.variables is not None:

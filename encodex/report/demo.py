@@ -21,15 +21,14 @@ DEMO_ENVIRONMENTS = ("room_a", "room_b")
 def _fit(nwb: Path, out: Path, jobs: int, seed: int, echo) -> None:
     """Fit every cell as ``encodex fit NWB --out OUT --jobs JOBS --seed SEED`` does.
 
-    The demo uses one all-bins fit per model and one Newton step per fold
-    (``--fold-fits one-step``, about four times faster than refitting every fold), which lets
-    it simulate sessions long enough for most cells to be recognised within five minutes.
+    Default settings throughout (one all-bins fit per model and one Newton step per fold),
+    which lets the demo simulate sessions long enough for most cells to be recognised within
+    a few minutes.
     """
     from encodex.population import run_population
 
-    echo(f"  (same as: encodex fit {nwb} --out {out} --jobs {jobs} --seed {seed} "
-         "--fold-fits one-step)")
-    run_population(nwb, out=out, jobs=jobs, seed=seed, progress=True, fold_fits="one-step")
+    echo(f"  (same as: encodex fit {nwb} --out {out} --jobs {jobs} --seed {seed})")
+    run_population(nwb, out=out, jobs=jobs, seed=seed, progress=True)
 
 
 def recovery_summary(cells: pd.DataFrame, truth: pd.DataFrame) -> pd.DataFrame:
