@@ -94,6 +94,8 @@ def run(args) -> dict:
         "wall_s": wall,
         "peak_rss_mb": mem.peak_mb,
         "cpu_seconds_cells": timings.get("cpu_seconds_cells"),
+        "run_seconds_total": timings.get("seconds_total"),
+        "run_seconds_computing": timings.get("seconds_computing"),
         "cpu_seconds_per_cell_median": timings.get("cpu_seconds_per_cell_median"),
         "labels_correct": correct, "labels_total": len(truth_labels),
         "status_counts": cells["status"].value_counts().to_dict(),

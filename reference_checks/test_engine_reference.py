@@ -195,6 +195,39 @@ def test_selected_lambda_maximises_brute_force_laml():
     assert fit.laml == pytest.approx(ours_there, abs=1e-5)
 
 
+# Source: the same brute-force LAML, maximised over log lambda by scipy's bounded scalar
+# minimiser (scipy.optimize.minimize_scalar, xatol 1e-4). With the DEFAULT fit options (the
+# selection stops at a change of 1e-2 in log lambda and reuses the Gram matrix while no
+# bin's log rate moved by 1e-2) the selected lambda must be within 0.05 in log of the
+# optimum and its LAML within 1e-4 of the optimal value.
+def test_default_options_reach_the_laml_optimum():
+    from scipy.optimize import minimize_scalar
+
+    rng = np.random.default_rng(8)
+    n = 4000
+    x = rng.uniform(0, 1, n)
+    y = rng.poisson(np.exp(np.log(3.0) + 0.8 * np.cos(3 * np.pi * x)) * 0.05)
+    design = build_design({"speed": x}, {"speed": IntervalBasis(12, (0.0, 1.0))})
+    fit = fit_poisson(design, y, np.log(0.05))
+    assert fit.converged, fit.reason
+    xz = design.dense() @ design.Z
+    sk = np.zeros((design.n_theta,) * 2)
+    sk[1:, 1:] = design.terms[0].penalties[0]
+    ev = np.linalg.eigvalsh(design.terms[0].penalties[0])
+    pos = ev[ev > ev.max() * 1e-9]
+    null_dim = design.n_theta - pos.size
+
+    def neg(g):
+        return -_brute_force_laml(xz, y, np.log(0.05), [sk], [np.exp(g)], null_dim,
+                                  lambda lam: np.sum(np.log(lam[0] * pos)))
+
+    g0 = np.log(fit.lambdas[0])
+    opt = minimize_scalar(neg, bounds=(g0 - 4, g0 + 4), method="bounded",
+                          options={"xatol": 1e-4})
+    assert abs(opt.x - g0) <= 0.05
+    assert fit.laml >= -opt.fun - 1e-4
+
+
 # Source: the same LAML definition with two penalties (the planar x and y penalties) on a
 # 9 x 9 grid of (log lambda_x, log lambda_y); determinant of the rank-deficient total penalty
 # from its non-zero eigenvalues.

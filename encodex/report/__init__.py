@@ -14,17 +14,33 @@ Every label is a statistical statement at the run's alpha about this session's b
 not proof of mechanism (see :func:`encodex.report.wording.label_caveat`).
 """
 
-from encodex.report.environments import (
-    EnvironmentComparison,
-    compare_environments,
-    write_comparison,
-)
-from encodex.report.figures import cell_figure, comparison_figure, population_figure, save_figure
-from encodex.report.html import build_report, render_report
-from encodex.report.load import RunFolder, load_run
-from encodex.report.methods import methods_paragraph
-from encodex.report.tables import PaperTables, make_tables, wilson_interval, write_tables
-from encodex.report.wording import label_caveat
+import importlib
+
+# Names are imported on first use (PEP 562): the command line loads this package for its
+# subcommands, and ``encodex fit`` should not pay for matplotlib, pandas and scipy.stats.
+_WHERE = {
+    "EnvironmentComparison": "environments", "compare_environments": "environments",
+    "write_comparison": "environments",
+    "cell_figure": "figures", "comparison_figure": "figures", "population_figure": "figures",
+    "save_figure": "figures",
+    "build_report": "html", "render_report": "html",
+    "RunFolder": "load", "load_run": "load",
+    "methods_paragraph": "methods",
+    "PaperTables": "tables", "make_tables": "tables", "wilson_interval": "tables",
+    "write_tables": "tables",
+    "label_caveat": "wording",
+}
+
+
+def __getattr__(name: str):
+    if name in _WHERE:
+        return getattr(importlib.import_module(f"encodex.report.{_WHERE[name]}"), name)
+    raise AttributeError(f"module 'encodex.report' has no attribute {name!r}")
+
+
+def __dir__():
+    return sorted(list(globals()) + list(_WHERE))
+
 
 __all__ = [
     "EnvironmentComparison",

@@ -18,6 +18,13 @@ def _out(msg: str = "") -> None:
     print(msg, file=sys.stdout, flush=True)
 
 
+def _headless() -> None:
+    """Draw into files only (the Agg backend), whatever display the shell has."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+
+
 def run_table(args) -> int:
     """``encodex table DIR``: write label/variable/exclusion tables and the methods paragraph."""
     import pandas as pd
@@ -45,6 +52,7 @@ def run_table(args) -> int:
 
 def run_compare(args) -> int:
     """``encodex compare DIR --between A B``: paired (or unpaired) comparison of labels."""
+    _headless()
     import matplotlib.pyplot as plt
 
     from encodex.report.environments import compare_environments, summary_frame, write_comparison
@@ -81,6 +89,7 @@ def run_compare(args) -> int:
 
 def run_report(args) -> int:
     """``encodex report DIR``: one self-contained HTML file, plus PNG/PDF population figures."""
+    _headless()
     import matplotlib.pyplot as plt
 
     from encodex.report.environments import compare_environments
@@ -120,6 +129,7 @@ def run_report(args) -> int:
 
 def run_demo(args) -> int:
     """``encodex demo --out DIR``: simulate -> NWB -> fit -> table -> compare -> report."""
+    _headless()
     from encodex.report.demo import demo
 
     result = demo(args.out, n_cells=args.cells, duration_s=args.duration, jobs=args.jobs,

@@ -1,7 +1,7 @@
 """Figures of a fit run: per cell, per population, and the environment comparison.
 
-All figures use matplotlib's Agg backend (no display needed), label axes with units, and are
-saved as PNG and PDF by :func:`save_figure`. Gains are shown on the rate scale: a gain of 2
+Figures need no display (the command line draws with the Agg backend), label axes with
+units, and are saved as PNG and PDF by :func:`save_figure`. Gains are shown on the rate scale: a gain of 2
 means twice the cell's mean rate; 95% bands are ``exp(log_gain +- 1.96 se)``.
 """
 
@@ -11,13 +11,11 @@ import base64
 import io
 from pathlib import Path
 
-import matplotlib
-
-matplotlib.use("Agg")  # headless: figures go to files, never to a screen
-
-import matplotlib.pyplot as plt  # noqa: E402
-import numpy as np  # noqa: E402
-import pandas as pd  # noqa: E402
+# The backend is left to the user (inline in Jupyter; matplotlib falls back to a file-only
+# backend without a display); the command line chooses Agg (encodex.report.commands).
+import matplotlib.pyplot as plt
+import numpy as np
+import pandas as pd
 from matplotlib.patches import Rectangle  # noqa: E402
 from matplotlib.ticker import MaxNLocator  # noqa: E402
 
