@@ -98,6 +98,8 @@ def run(args) -> dict:
         "run_seconds_computing": timings.get("seconds_computing"),
         "cpu_seconds_per_cell_median": timings.get("cpu_seconds_per_cell_median"),
         "labels_correct": correct, "labels_total": len(truth_labels),
+        "mistakes": [{"unit": u, "truth": v, "label": got.get(u)}
+                     for u, v in truth_labels.items() if got.get(u) != v],
         "status_counts": cells["status"].value_counts().to_dict(),
         "targets": {"wall_s": TARGET_WALL_S, "memory_mb": TARGET_MEMORY_MB},
         "target_wall_reached": bool(wall <= TARGET_WALL_S),
@@ -124,6 +126,8 @@ def table(r: dict) -> str:
         "",
         f"command: {r['command']}",
     ]
+    lines += [f"  mistake: {m['unit']} truth={m['truth']} label={m['label']}"
+              for m in r["mistakes"]]
     if r["units"] < 300:
         lines.append(f"linear prediction for 300 units: {r['wall_per_unit_s'] * 300 / 60:.1f} min "
                      "(wall per unit x 300; the fixed start-up is counted 300/units times, so "
