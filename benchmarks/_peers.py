@@ -184,3 +184,13 @@ def machine() -> dict:
         pass
     return {"nproc": os.cpu_count(), "cpu": cpu, "python": platform.python_version(),
             "platform": platform.platform(), "loadavg_1min": os.getloadavg()[0]}
+
+
+def emit(res: dict, table) -> int:
+    """Print a benchmark's result: ONE line of JSON, a blank line, then ``table(res)``."""
+    import json
+
+    print(json.dumps(res), flush=True)
+    print()
+    print(table(res))
+    return 0

@@ -145,10 +145,7 @@ def main(argv=None) -> int:
     ap.add_argument("--seed", type=int, default=1, help="simulation seed (default 1)")
     args = ap.parse_args(argv)
     res = run(args)
-    print(json.dumps(res), flush=True)
-    print()
-    print(table(res))
-    return 0
+    return _peers.emit(res, table)
 
 
 if __name__ == "__main__":

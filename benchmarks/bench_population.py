@@ -46,7 +46,6 @@ from __future__ import annotations
 import argparse
 import cProfile
 import datetime as _dt
-import json
 import os
 import platform
 import pstats
@@ -501,10 +500,7 @@ def main(argv=None) -> int:
         args.dask_units, args.dask_minutes = 20, 60.0
         args.profile_units, args.profile_minutes = 20, 60.0
     res = run(args)
-    print(json.dumps(res), flush=True)
-    print()
-    print(table(res))
-    return 0
+    return _peers.emit(res, table)
 
 
 if __name__ == "__main__":

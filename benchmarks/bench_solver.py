@@ -36,7 +36,6 @@ from __future__ import annotations
 import argparse
 import cProfile
 import datetime as _dt
-import json
 import os
 import platform
 import pstats
@@ -339,10 +338,7 @@ def main(argv=None) -> int:
         print("error: --duration must be at least 60 s", file=sys.stderr)
         return 2
     res = run(args)
-    print(json.dumps(res), flush=True)
-    print()
-    print(table(res))
-    return 0
+    return _peers.emit(res, table)
 
 
 if __name__ == "__main__":

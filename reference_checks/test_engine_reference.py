@@ -164,6 +164,17 @@ def _brute_force_laml(xz, y, offset, s_list, lam, null_dim, ranks_logdet):
             + 0.5 * null_dim * np.log(2 * np.pi))
 
 
+def _one_penalty_pieces(design):
+    """Dense constrained design, the penalty padded to theta, its non-zero eigenvalues and the
+    penalty null-space dimension, for a design of one single-penalty term."""
+    xz = design.dense() @ design.Z
+    sk = np.zeros((design.n_theta,) * 2)
+    sk[1:, 1:] = design.terms[0].penalties[0]
+    ev = np.linalg.eigvalsh(design.terms[0].penalties[0])
+    pos = ev[ev > ev.max() * 1e-9]
+    return xz, sk, pos, design.n_theta - pos.size
+
+
 # Source: the LAML criterion (Wood 2017, Generalized Additive Models, sec. 6.11.2) evaluated
 # on a brute-force grid of log lambda with an independent optimiser (scipy trust-exact) and
 # numpy log-determinants; the selected lambda must sit at the grid maximum (within one grid
@@ -176,12 +187,7 @@ def test_selected_lambda_maximises_brute_force_laml():
     design = build_design({"speed": x}, {"speed": IntervalBasis(12, (0.0, 1.0))})
     fit = fit_poisson(design, y, np.log(0.05), options=TIGHT)
     assert fit.converged
-    xz = design.dense() @ design.Z
-    sk = np.zeros((design.n_theta,) * 2)
-    sk[1:, 1:] = design.terms[0].penalties[0]
-    ev = np.linalg.eigvalsh(design.terms[0].penalties[0])
-    pos = ev[ev > ev.max() * 1e-9]
-    null_dim = design.n_theta - pos.size
+    xz, sk, pos, null_dim = _one_penalty_pieces(design)
     grid = np.linspace(np.log(fit.lambdas[0]) - 3, np.log(fit.lambdas[0]) + 3, 25)
     values = [_brute_force_laml(xz, y, np.log(0.05), [sk], [np.exp(g)], null_dim,
                                 lambda lam: np.sum(np.log(lam[0] * pos))) for g in grid]
@@ -210,12 +216,7 @@ def test_default_options_reach_the_laml_optimum():
     design = build_design({"speed": x}, {"speed": IntervalBasis(12, (0.0, 1.0))})
     fit = fit_poisson(design, y, np.log(0.05))
     assert fit.converged, fit.reason
-    xz = design.dense() @ design.Z
-    sk = np.zeros((design.n_theta,) * 2)
-    sk[1:, 1:] = design.terms[0].penalties[0]
-    ev = np.linalg.eigvalsh(design.terms[0].penalties[0])
-    pos = ev[ev > ev.max() * 1e-9]
-    null_dim = design.n_theta - pos.size
+    xz, sk, pos, null_dim = _one_penalty_pieces(design)
 
     def neg(g):
         return -_brute_force_laml(xz, y, np.log(0.05), [sk], [np.exp(g)], null_dim,
