@@ -10,9 +10,11 @@ term is a log gain relative to it. The constraint is absorbed by a reparametrisa
 decomposition), so the solver works with the shorter unconstrained ``theta`` (length
 ``n_theta``) and never with the tall design itself.
 
-The design stays in fixed-non-zeros-per-row storage; products with it are gathers and
-``bincount`` scatters, and the weighted Gram matrix ``X' W X`` is accumulated from dense chunks
-of a few thousand rows so that a dense copy of every bin by every column is never held.
+The design stays sparse: products with it go through one CSR block per term, and the
+weighted Gram matrix ``X' W X`` is accumulated from dense chunks of a few thousand rows of a
+compact layout (see :meth:`Design.weighted_gram`), so that a dense copy of every bin by every
+column is never held. A sub-design cut by :meth:`Design.subset` (one model of the forward
+path) shares these blocks and layouts with the design it was cut from.
 
 Reference: Wood, S. N. (2017). *Generalized Additive Models*, 2nd ed., CRC Press, sec. 1.8.1
 and 5.4.1 (identifiability constraints by QR).
