@@ -285,14 +285,12 @@ class Design:
         added into its place in ``X' W X``.
         """
         plan = self._base._gram_plan(groups)
-        runs, picked = plan.layout_for(self)
+        runs, width, spans = plan.layout_for(self)
         n_out = 1 if groups is None else (int(np.max(groups)) + 1 if n_groups is None
                                           else int(n_groups))
         p = self.n_beta
         out = np.zeros((n_out, p, p))
         sw = np.sqrt(np.asarray(w, dtype=float)[plan.order])
-        width = plan.width if picked is None else picked.size
-        spans = _contiguous_spans(np.arange(plan.width) if picked is None else picked)
         buf = np.empty((width, GRAM_CHUNK_ROWS))
         for r0, r1, gid, cols in runs:
             if not sw[r0:r1].any():
@@ -428,9 +426,10 @@ class _GramPlan:
     def layout_for(self, design: "Design"):
         """Runs and compact columns for ``design`` (the base design or a sub-design of it).
 
-        Returns ``(runs, picked)``: ``runs`` a list of ``(start, stop, group, columns)`` with
-        ``columns`` the design's own beta column of each picked compact column, and
-        ``picked`` the compact columns to take (None: all of them).
+        Returns ``(runs, width, spans)``: ``runs`` a list of ``(start, stop, group, columns)``
+        with ``columns`` the design's own beta column of each picked compact column, ``width``
+        the number of picked compact columns and ``spans`` those columns as contiguous ranges
+        (:func:`_contiguous_spans`). Cached per design.
         """
         key = design.names
         if key in self._layouts:
@@ -447,10 +446,6 @@ class _GramPlan:
                   if t.name != self.local]
         picked = np.concatenate([[0], np.arange(1, 1 + q) if has_local else [], *others]
                                 ).astype(np.intp)
-        if picked.size == self.width:
-            picked_out = None
-        else:
-            picked_out = picked
         if has_local:
             runs = [(int(a), int(b), int(g), to_own[c[picked]])
                     for a, b, g, c in zip(self.starts, self.stops, self.group_ids, self.columns)]
@@ -464,7 +459,7 @@ class _GramPlan:
                 cols = to_own[self.columns[0][picked]]
                 runs = [(int(self.starts[i]), int(self.stops[j]), int(self.group_ids[i]), cols)
                         for i, j in zip(first, last)]
-        self._layouts[key] = (runs, picked_out)
+        self._layouts[key] = (runs, int(picked.size), _contiguous_spans(picked))
         return self._layouts[key]
 
     @classmethod
