@@ -238,8 +238,11 @@ def _env_counts(session, env_name: str, unit: str, env: EnvironmentWork) -> np.n
 def _versions() -> dict:
     import importlib.metadata as md
 
-    out = {"python": platform.python_version()}
-    for pkg in ("encodex", "numpy", "scipy", "scikit-learn", "pandas", "joblib",
+    from encodex import __version__
+
+    # encodex is distributed as encodex-glm; its version is read from the package itself.
+    out = {"python": platform.python_version(), "encodex": __version__}
+    for pkg in ("numpy", "scipy", "scikit-learn", "pandas", "joblib",
                 "threadpoolctl", "dask", "distributed", "pynwb"):
         try:
             out[pkg] = md.version(pkg)
