@@ -31,7 +31,7 @@ def _fit(nwb: Path, out: Path, jobs: int, seed: int, echo) -> None:
     from encodex.population import run_population
 
     echo(f"  (same as: encodex fit {nwb} --out {out} --jobs {jobs} --seed {seed})")
-    run_population(nwb, out=out, jobs=jobs, seed=seed, progress=True)
+    run_population(nwb, out=out, jobs=jobs, seed=seed, progress=True, echo=echo)
 
 
 def recovery_summary(cells: pd.DataFrame, truth: pd.DataFrame) -> pd.DataFrame:
