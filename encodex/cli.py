@@ -5,8 +5,11 @@ writes the output folder described in DEVELOPERS.md. The report stage adds its o
 subcommands through :func:`encodex.report.commands.register_report_commands`.
 
 Any :class:`~encodex.errors.EncodexError` (bad input file, bad option, checkpoint mismatch)
-is printed as one line on standard error and exits with code 2. Ctrl-C exits with code 130
-after saying how to resume.
+is printed as one line on standard error starting ``encodex: error: `` and exits with code 2,
+as argparse errors do. Ctrl-C exits with code 130 after saying how to resume; a closed pipe
+on standard output (``encodex table R | head``) exits 141 without a word. Standard output
+carries the run's account (session summary, counts, next commands); standard error the
+progress bar, warnings and errors.
 """
 
 from __future__ import annotations
@@ -163,6 +166,7 @@ def add_fit_command(subparsers) -> None:
 
 
 def _add_folder_options(p) -> None:
+    """What to do with earlier results in --out."""
     p.add_argument("--overwrite", action="store_true",
                    help="delete the results already in --out (a folder written by encodex "
                         "fit) and start over, instead of resuming or refusing")
@@ -174,15 +178,17 @@ def _add_tracking_options(p) -> None:
 
     g = p.add_argument_group("tracking")
     g.add_argument("--min-speed", type=non_negative_number("m/s"), default=None,
-                   metavar="M_PER_S", help="leave out bins slower than this running speed in "
-                                           "m/s (default: keep all)")
+                   metavar="M_PER_S",
+                   help="leave out bins slower than this running speed in m/s (default: keep "
+                        "all)")
     g.add_argument("--speed-smoothing", type=non_negative_number("seconds"), default=None,
-                   metavar="SECONDS", help="s.d. of the Gaussian smoothing of velocity in "
-                                           f"seconds (default {DEFAULT_SPEED_SMOOTHING_S:g}; 0: none)")
+                   metavar="SECONDS",
+                   help="s.d. of the Gaussian smoothing of velocity in seconds (default "
+                        f"{DEFAULT_SPEED_SMOOTHING_S:g}; 0: none)")
     g.add_argument("--max-gap", type=non_negative_number("seconds"), default=None,
-                   metavar="SECONDS", help="longest tracking gap bridged by interpolation in "
-                                           "seconds; bins in longer gaps are left out "
-                                           f"(default {DEFAULT_MAX_GAP_S:g})")
+                   metavar="SECONDS",
+                   help="longest tracking gap bridged by interpolation in seconds; bins in "
+                        f"longer gaps are left out (default {DEFAULT_MAX_GAP_S:g})")
 
 
 #: NWB roles that can be named on the command line, with an example path.

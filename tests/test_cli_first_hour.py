@@ -194,3 +194,22 @@ def test_one_spelling_one_prefix_one_jobs_default(work):
     one_error_line(encodex("fit", "data/simulated_session.nwb", "--out", "E", "--folds", "x",
                            cwd=work))
     one_error_line(encodex("table", "no_such_folder", cwd=work))
+
+
+def test_demo_run_again_with_other_settings_replaces_its_own_folder(work):
+    # What an earlier `encodex demo --out demo --cells 3` leaves behind (its marker, its data).
+    old = work / "demo"
+    (old / "fit" / "units").mkdir(parents=True)
+    (old / ".encodex-demo.json").write_text(json.dumps(
+        {"cells": 3, "duration_s": 60.0, "seed": 1}))
+    (old / "fit" / "checkpoint.json").write_text("{}")
+    (old / "report.html").write_text("<html></html>")
+    res = encodex("demo", "--out", "demo", "--cells", "2", "--duration", "60", "--jobs", "1",
+                  cwd=work)
+    assert res.returncode == 0, res.stderr
+    assert "held an earlier demo (cells 3 -> 2); it was replaced" in res.stdout
+    assert "1 worker process (--jobs)" in res.stdout
+    assert "session " in res.stdout and "masked bins" in res.stdout  # the fit's account
+    cells = pd.read_csv(old / "fit" / "cells.csv")
+    assert sorted(cells["unit"].astype(str).unique()) == ["c000", "c001"]
+    assert json.loads((old / ".encodex-demo.json").read_text())["cells"] == 2

@@ -110,7 +110,8 @@ def session_summary(session, env_info: dict, to_fit: int, from_checkpoint: int,
     """
     s = dict(session.summary)
     n_env = len(session.environments)
-    head = (f"session{' ' + source if source else ''}: {session.n_units} units, {n_env} environment{'s' * (n_env != 1)}, "
+    name = f"session {source}" if source else "session"
+    head = (f"{name}: {session.n_units} units, {n_env} environment{'s' * (n_env != 1)}, "
             f"{s.get('n_trials', 0)} trials, bins of {session.bin_size * 1000:g} ms")
     lines = [head] + ["  " + ln for ln in _object_lines(s)]
     lines += ["  " + ln for ln in _environment_lines(session, env_info)]
