@@ -138,6 +138,7 @@ def test_refused_run_writes_nothing_and_replaces_an_empty_checkpoint(work):
                                                                                    1.0)
     assert run["load_options"]["object_paths"] == {
         "position": "processing/behavior/Position/position", "epochs": "intervals/epochs"}
+    assert run["session"]["summary"]["objects"]["epochs"] == "intervals/epochs"
     assert run["session"]["masked_bins"]["below_min_speed"] > 0
     assert re.search(r"below_min_speed\s+[\d,]+ .*--min-speed", res.stdout)
 
