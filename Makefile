@@ -1,10 +1,11 @@
-# Two entry points: `make demo` and `make test`. Each creates .venv when missing.
+# Two entry points: `make demo` and `make test`. Each creates .venv when missing; `make test`
+# also installs what the tests need outside Python (scripts/provision: headless Chromium).
 PYTHON ?= python3
 VENV := .venv
 PY := $(VENV)/bin/python
 STAMP := $(VENV)/.installed
 
-.PHONY: demo test bench clean
+.PHONY: demo test provision bench clean
 
 $(STAMP): pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
@@ -12,10 +13,13 @@ $(STAMP): pyproject.toml
 	$(PY) -m pip install --quiet -e ".[test]"
 	touch $(STAMP)
 
+provision: $(STAMP)
+	@sh scripts/provision
+
 demo: $(STAMP)
 	$(PY) -m encodex demo --out demo_output
 
-test: $(STAMP)
+test: provision
 	$(PY) -m pytest -q
 
 bench: $(STAMP)

@@ -69,9 +69,10 @@ def versions() -> dict:
     import glum
     import scipy
     import statsmodels
-    from importlib.metadata import version
 
-    return {"encodex": version("encodex"), "numpy": np.__version__,
+    import encodex
+
+    return {"encodex": encodex.__version__, "numpy": np.__version__,
             "scipy": scipy.__version__, "statsmodels": statsmodels.__version__,
             "glum": glum.__version__}
 

@@ -5,8 +5,11 @@ writes the output folder described in DEVELOPERS.md. The report stage adds its o
 subcommands through :func:`encodex.report.commands.register_report_commands`.
 
 Any :class:`~encodex.errors.EncodexError` (bad input file, bad option, checkpoint mismatch)
-is printed as one line on standard error and exits with code 2. Ctrl-C exits with code 130
-after saying how to resume.
+is printed as one line on standard error starting ``encodex: error: `` and exits with code 2,
+as argparse errors do. Ctrl-C exits with code 130 after saying how to resume; a closed pipe
+on standard output (``encodex table R | head``) exits 141 without a word. Standard output
+carries the run's account (session summary, counts, next commands); standard error the
+progress bar, warnings and errors.
 """
 
 from __future__ import annotations
@@ -15,46 +18,26 @@ import argparse
 import sys
 
 from encodex.errors import EncodexError, SettingsError
+from encodex.report.options import (add_jobs_option, name_equals_count, non_negative_number,
+                                    positive_number, resolve_jobs, whole_number)
 from encodex.variables import VARIABLES
+
+
+#: Start of every error line of the command line (bad option, bad input, refused folder).
+ERROR_PREFIX = "encodex: error: "
 
 
 class _Parser(argparse.ArgumentParser):
     """Argument parser whose errors are one line and exit code 2."""
 
     def error(self, message):  # noqa: D401 - argparse API
-        self.exit(2, f"{self.prog}: error: {message} (see {self.prog} --help)\n")
+        self.exit(2, f"{ERROR_PREFIX}{message} (see {self.prog} --help)\n")
 
 
-def _whole_number(minimum: int):
-    """argparse type: a whole number of at least ``minimum``."""
-    def parse(text: str) -> int:
-        try:
-            v = int(text)
-        except ValueError:
-            raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
-        if v < minimum:
-            raise argparse.ArgumentTypeError(f"expected a number >= {minimum}, got {v}")
-        return v
-    return parse
-
-
-def _positive_number(what: str):
-    """argparse type: a positive number of ``what`` (e.g. "seconds")."""
-    def parse(text: str) -> float:
-        try:
-            v = float(text)
-        except ValueError:
-            raise argparse.ArgumentTypeError(f"expected {what} as a number, got {text!r}") from None
-        if not v > 0:
-            raise argparse.ArgumentTypeError(f"expected a positive number of {what}, got {v}")
-        return v
-    return parse
-
-
-_positive_int = _whole_number(1)
-_count = _whole_number(0)
-_seconds = _positive_number("seconds")
-_hertz = _positive_number("Hz")
+_positive_int = whole_number(1)
+_count = whole_number(0)
+_seconds = positive_number("seconds")
+_hertz = positive_number("Hz")
 
 
 def _load_options(args) -> dict:
@@ -64,6 +47,17 @@ def _load_options(args) -> dict:
     opts: dict = {}
     if args.drop_empty_units:
         opts["drop_empty_units"] = True
+    for name, option in (("min_speed", "min_speed"), ("speed_smoothing_s", "speed_smoothing"),
+                         ("max_gap_s", "max_gap")):
+        if getattr(args, option) is not None:
+            opts[name] = getattr(args, option)
+    paths = {role: getattr(args, f"nwb_{role}") for role in _NWB_OBJECTS
+             if getattr(args, f"nwb_{role}") is not None}
+    if paths:
+        if not str(args.input).lower().endswith(".nwb"):
+            raise SettingsError(f"--nwb-{next(iter(paths))} names an object inside an NWB "
+                                "file; the input is not an .nwb file, drop the option")
+        opts["object_paths"] = paths
     if args.lfp is not None:
         opts["lfp"] = args.lfp
         opts["lfp_channel"] = args.lfp_channel
@@ -114,9 +108,9 @@ def add_fit_command(subparsers) -> None:
         ),
     )
     p.add_argument("input", metavar="INPUT", help="NWB file (.nwb) or npz bundle (.npz)")
-    p.add_argument("--out", required=True, metavar="DIR", help="output folder (created)")
-    p.add_argument("--jobs", type=_positive_int, default=1, metavar="N",
-                   help="worker processes (default 1); results do not depend on it")
+    p.add_argument("--out", required=True, metavar="DIR",
+                   help="results folder (created; the RESULTS of table, compare, report)")
+    add_jobs_option(p)
     p.add_argument("--folds", type=_positive_int, default=10, metavar="K",
                    help="cross-validation folds of contiguous chunks of time (default 10)")
     p.add_argument("--seed", type=_count, default=0, metavar="S",
@@ -164,11 +158,74 @@ def add_fit_command(subparsers) -> None:
                    help="run on a dask.distributed scheduler (tcp://host:8786), or 'local' "
                         "for a LocalCluster of --jobs workers")
     p.add_argument("--no-progress", action="store_true", help="hide the progress bar")
+    _add_folder_options(p)
+    _add_tracking_options(p)
+    _add_nwb_object_options(p)
+    _add_model_size_options(p)
     p.set_defaults(func=_run_fit)
+
+
+def _add_folder_options(p) -> None:
+    """What to do with earlier results in --out."""
+    p.add_argument("--overwrite", action="store_true",
+                   help="delete the results already in --out (a folder written by encodex "
+                        "fit) and start over, instead of resuming or refusing")
+
+
+def _add_tracking_options(p) -> None:
+    """How the tracking becomes covariates (encodex.session.build_session)."""
+    from encodex.session import DEFAULT_MAX_GAP_S, DEFAULT_SPEED_SMOOTHING_S
+
+    g = p.add_argument_group("tracking")
+    g.add_argument("--min-speed", type=non_negative_number("m/s"), default=None,
+                   metavar="M_PER_S",
+                   help="leave out bins slower than this running speed in m/s (default: keep "
+                        "all)")
+    g.add_argument("--speed-smoothing", type=non_negative_number("seconds"), default=None,
+                   metavar="SECONDS",
+                   help="s.d. of the Gaussian smoothing of velocity in seconds (default "
+                        f"{DEFAULT_SPEED_SMOOTHING_S:g}; 0: none)")
+    g.add_argument("--max-gap", type=non_negative_number("seconds"), default=None,
+                   metavar="SECONDS",
+                   help="longest tracking gap bridged by interpolation in seconds; bins in "
+                        f"longer gaps are left out (default {DEFAULT_MAX_GAP_S:g})")
+
+
+#: NWB roles that can be named on the command line, with an example path.
+_NWB_OBJECTS = {
+    "position": "processing/behavior/Position/position",
+    "heading": "processing/behavior/CompassDirection/heading",
+    "units": "units",
+    "trials": "intervals/trials",
+    "epochs": "intervals/epochs",
+}
+
+
+def _add_nwb_object_options(p) -> None:
+    """Paths of objects inside an NWB file, when the default search picks the wrong one."""
+    g = p.add_argument_group("objects of the NWB file (default: found by the conventions of "
+                             "docs/data_conventions.md)")
+    for role, example in _NWB_OBJECTS.items():
+        g.add_argument(f"--nwb-{role}", default=None, metavar="OBJECT_PATH",
+                       help=f"{role} object, e.g. {example}")
+
+
+def _add_model_size_options(p) -> None:
+    from encodex.design.bases import DEFAULT_SIZES
+
+    g = p.add_argument_group("model size and folds")
+    g.add_argument("--basis-size", type=name_equals_count, action="append", default=[],
+                   metavar="VARIABLE=N",
+                   help="basis functions of a variable (position: per axis), e.g. speed=8; "
+                        "repeatable (defaults: " + ", ".join(
+                            f"{k} {v}" for k, v in DEFAULT_SIZES.items()) + ")")
+    g.add_argument("--chunks-per-fold", type=_positive_int, default=3, metavar="N",
+                   help="contiguous chunks of time per fold (default 3)")
 
 
 def _run_fit(args) -> int:
     from encodex.population import run_population
+    from encodex.population.summary import closing_summary
 
     settings = dict(folds=args.folds, seed=args.seed, exhaustive=args.exhaustive,
                     shuffles=args.shuffles, min_shift_s=args.min_shift, alpha=args.alpha,
@@ -178,23 +235,31 @@ def _run_fit(args) -> int:
         settings["bin_size"] = args.bin_size
     if args.variables is not None:
         settings["variables"] = args.variables
-    result = run_population(args.input, args.out, jobs=args.jobs, cluster=args.cluster,
-                            progress=not args.no_progress, load_options=_load_options(args),
-                            **settings)
-    cells = result.cells
-    ok = cells[cells["status"] == "ok"]
-    counts = ok["variables"].value_counts()
-    print(f"{len(cells)} cells ({len(ok)} labelled) written to {result.out}")
-    for lab, n in counts.items():
-        print(f"  {lab:<28s} {n}")
-    other = cells[cells["status"] != "ok"]["status"].value_counts()
-    for status, n in other.items():
-        print(f"  [{status}] {n}")
+    settings["chunks_per_fold"] = args.chunks_per_fold
+    if args.basis_size:
+        sizes = dict(args.basis_size)
+        if len(sizes) != len(args.basis_size):
+            raise SettingsError("--basis-size names a variable twice; give each once")
+        settings["basis_sizes"] = sizes
+    load_options = _load_options(args)
+    jobs = resolve_jobs(args.jobs)
+    # Progress on standard error; the session summary and the counts on standard output.
+    if sys.stderr.isatty():  # a long NWB read would otherwise be silent
+        print(f"encodex fit: reading {args.input}", file=sys.stderr, flush=True)
+    result = run_population(args.input, args.out, jobs=jobs, cluster=args.cluster,
+                            progress=not args.no_progress, load_options=load_options,
+                            overwrite=args.overwrite, echo=_say, **settings)
+    _say(closing_summary(result.cells, result.out, result.run["session"]["environments"]))
     dropped = (result.run.get("session", {}).get("summary", {}).get("objects", {})
                .get("dropped_empty_units"))
     if dropped:
-        print(f"  units without any spike, left out (--drop-empty-units): {dropped}")
+        _say(f"units without any spike, left out (--drop-empty-units): {dropped}")
     return 0
+
+
+def _say(text: str) -> None:
+    """A line of the run's account, on standard output (flushed: it may be a log file)."""
+    print(text, flush=True)
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -224,8 +289,25 @@ def main(argv=None) -> int:
         print(f"encodex: {getattr(exc, 'message', 'interrupted')}", file=sys.stderr)
         return 130
     except EncodexError as exc:
-        print(f"encodex: error: {' '.join(str(exc).split())}", file=sys.stderr)
+        print(f"{ERROR_PREFIX}{' '.join(str(exc).split())}", file=sys.stderr)
         return 2
+    except BrokenPipeError:
+        # The reader of standard output has gone (`encodex table R | head`): what was
+        # wanted was read, every file is written. Say nothing more and exit as a program
+        # stopped by SIGPIPE does in a shell (128 + 13).
+        _silence_stdout()
+        return 141
+
+
+def _silence_stdout() -> None:
+    """Point standard output at /dev/null so that Python's final flush cannot fail again."""
+    import os
+
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    except (OSError, ValueError, AttributeError):  # no real file behind stdout (tests)
+        pass
 
 
 __all__ = ["build_parser", "main", "add_fit_command", "SettingsError"]

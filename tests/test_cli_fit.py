@@ -40,10 +40,11 @@ def test_fit_writes_folder_resumes_and_refuses_other_settings(files, tmp_path, c
 
     # Different settings: refused with one line and exit code 2.
     capsys.readouterr()
-    code = main(["fit", str(files["nwb"]), "--out", str(out), *ARGS, "--alpha", "0.01"])
+    code = main(["fit", str(files["nwb"]), "--out", str(out), *ARGS, "--min-spikes", "50"])
     err = capsys.readouterr().err.strip()
     assert code == 2
-    assert len(err.splitlines()) == 1 and "other settings" in err and "alpha" in err
+    assert len(err.splitlines()) == 1 and "other settings" in err and "min_spikes" in err
+    assert "--overwrite" in err
 
 
 def test_npz_bundle_gives_same_results_as_nwb(files, tmp_path):

@@ -19,7 +19,7 @@ def _chromium() -> str:
     exe = shutil.which("chromium") or shutil.which("chromium-browser")
     if exe is None and Path("/usr/bin/chromium").exists():
         exe = "/usr/bin/chromium"
-    assert exe, "headless Chromium is needed: apt-get install -y chromium (.ci/run does this)"
+    assert exe, "headless Chromium is needed: run make test (scripts/provision installs it)"
     return exe
 
 

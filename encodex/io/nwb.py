@@ -322,7 +322,7 @@ def _read_intervals(nwbfile, path, role, provenance):
         where = path
     else:
         table = getattr(nwbfile, role, None)
-        where = role
+        where = f"intervals/{role}"  # the path that names this table again (--nwb-trials)
         if table is None:
             provenance[role] = "none in file"
             return None, None

@@ -20,10 +20,11 @@ import pandas as pd
 from encodex.compare.folds import chunked_folds
 from encodex.errors import EncodexError, InputError, SettingsError
 from encodex.population.checkpoint import (
-    atomic_write_text, data_fingerprint, open_checkpoint, read_unit_record,
+    atomic_write_text, check_output_folder, data_fingerprint, open_checkpoint, read_unit_record,
     unit_path, write_unit_file,
 )
 from encodex.population.settings import RunSettings, stable_hash
+from encodex.population.summary import session_summary
 from encodex.population.work import (
     PURPOSE_FOLDS, EnvironmentWork, UnitOutcome, analyse_unit, environment_design, stream,
 )
@@ -238,8 +239,11 @@ def _env_counts(session, env_name: str, unit: str, env: EnvironmentWork) -> np.n
 def _versions() -> dict:
     import importlib.metadata as md
 
-    out = {"python": platform.python_version()}
-    for pkg in ("encodex", "numpy", "scipy", "scikit-learn", "pandas", "joblib",
+    from encodex import __version__
+
+    # encodex is distributed as encodex-glm; its version is read from the package itself.
+    out = {"python": platform.python_version(), "encodex": __version__}
+    for pkg in ("numpy", "scipy", "scikit-learn", "pandas", "joblib",
                 "threadpoolctl", "dask", "distributed", "pynwb"):
         try:
             out[pkg] = md.version(pkg)
@@ -295,7 +299,8 @@ def _execute(tasks: list, jobs: int, cluster: str | None) -> Iterator[UnitOutcom
 
 def run_population(input_or_session, out: str | Path | None = None, *, jobs: int = 1,
                    cluster: str | None = None, progress: bool = False,
-                   units=None, load_options=None, **settings) -> PopulationResult:
+                   units=None, load_options=None, overwrite: bool = False,
+                   echo=None, **settings) -> PopulationResult:
     """Decide which variables each cell carries, for every unit and environment.
 
     Parameters
@@ -322,6 +327,13 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
         (rhythm phase as the variable ``phase``), ``extra={"goal_bearing": "path"}``,
         ``extra_kinds={"goal_bearing": "circular"}`` (user-defined variables). Recorded in
         ``run.json``.
+    overwrite : bool
+        Delete the results in ``out`` (a folder holding an encodex checkpoint) and start
+        over instead of resuming or refusing.
+    echo : callable, optional
+        Called with the text of :func:`encodex.population.summary.session_summary` (the
+        session as it will be fitted: environments, variables, objects read, masked bins)
+        before fitting; e.g. ``echo=print``.
     **settings
         Fields of :class:`RunSettings`: ``variables``, ``folds`` (10), ``seed`` (0),
         ``alpha`` (0.05), ``correction`` ("bonferroni"), ``exhaustive`` (False),
@@ -356,6 +368,8 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
         rs = RunSettings(**settings)
     except TypeError as exc:
         raise SettingsError(f"unknown setting: {exc}; see help(encodex.run_population)") from None
+    if out is not None:  # a folder no run could write into is refused before the reading
+        check_output_folder(Path(out), overwrite)
     t_start = time.time()
     session, source = _load(input_or_session, rs, load_options)
     fingerprint = _session_fingerprint(session)
@@ -367,12 +381,6 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
         if unknown:
             raise SettingsError(f"unknown unit id(s) {unknown[:5]}; see session.unit_ids")
         unit_ids = [u for u in unit_ids if u in set(wanted)]
-
-    out_path = Path(out) if out is not None else None
-    resumed = False
-    if out_path is not None:
-        check = {**rs.to_dict(), "units": None if units is None else unit_ids}
-        resumed = open_checkpoint(out_path, check, fingerprint)
 
     if rs.variables is not None:
         known = set(VARIABLES) | set(session.covariates)
@@ -400,6 +408,13 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
                 f"(alpha {rs.alpha} over {m} variables); use --folds {need} or more"
             )
 
+    # Everything is checked: only now is anything written to the output folder.
+    out_path = Path(out) if out is not None else None
+    resumed = False
+    if out_path is not None:
+        check = {**rs.to_dict(), "units": None if units is None else unit_ids}
+        resumed = open_checkpoint(out_path, check, fingerprint, overwrite=overwrite)
+
     # Work list in deterministic order; finished units (on disk) are skipped.
     records: dict[tuple[str, str], dict] = {}
     tasks = []
@@ -421,6 +436,9 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
             tasks.append((envs[name], unit, y, rs))
 
     n_total = len(session.environments) * len(unit_ids)
+    if echo is not None:
+        echo(session_summary(session, env_info, len(tasks), n_total - len(tasks),
+                             jobs=int(jobs), out=out_path, source=source))
     bar = None
     if progress:
         from tqdm import tqdm

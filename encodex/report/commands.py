@@ -8,14 +8,37 @@ and exit code 2.
 
 from __future__ import annotations
 
+import argparse
 import sys
 from pathlib import Path
+
+from encodex.report.options import (add_jobs_option, add_results_argument, positive_number,
+                                    resolve_jobs, whole_number)
 
 __all__ = ["register_report_commands", "run_table", "run_compare", "run_report", "run_demo"]
 
 
 def _out(msg: str = "") -> None:
     print(msg, file=sys.stdout, flush=True)
+
+
+def _fraction(text: str) -> float:
+    """argparse type: a number strictly between 0 and 1 (a level or a rate)."""
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number between 0 and 1, got {text!r}") \
+            from None
+    if not 0 < v < 1:
+        raise argparse.ArgumentTypeError(f"expected a number between 0 and 1, got {v:g}")
+    return v
+
+
+def _renamed(new: str):
+    """argparse type of a retired option: refuse it, naming the option that replaced it."""
+    def parse(text: str):
+        raise argparse.ArgumentTypeError(f"renamed {new} (it sets a false discovery rate)")
+    return parse
 
 
 def _headless() -> None:
@@ -63,7 +86,7 @@ def run_compare(args) -> int:
     run = load_run(args.dir)
     paired = False if args.unpaired else None
     cmp = compare_environments(run, args.between[0], args.between[1], paired=paired,
-                               alpha=args.alpha)
+                               alpha=args.fdr)
     out = Path(args.out) if args.out else run.path / "compare"
     written = write_comparison(cmp, out)
     fig = comparison_figure(cmp)
@@ -132,7 +155,9 @@ def run_demo(args) -> int:
     _headless()
     from encodex.report.demo import demo
 
-    result = demo(args.out, n_cells=args.cells, duration_s=args.duration, jobs=args.jobs,
+    jobs = resolve_jobs(args.jobs)
+    _out(f"{jobs} worker process{'es' * (jobs != 1)} (--jobs)")
+    result = demo(args.out, n_cells=args.cells, duration_s=args.duration, jobs=jobs,
                   seed=args.seed, echo=_out)
     _out(f"\nreport: {result['report'].resolve()}")
     return 0
@@ -151,8 +176,8 @@ def register_report_commands(subparsers) -> None:
         description="Count cells per label and per variable in each environment with 95% "
                     "Wilson score intervals and held-out gains; write CSV, Markdown and LaTeX "
                     "(booktabs) tables and a methods paragraph.")
-    p.add_argument("dir", help="output folder of `encodex fit`")
-    p.add_argument("--out", help="folder for the tables (default DIR/tables)")
+    add_results_argument(p)
+    p.add_argument("--out", metavar="DIR", help="folder for the tables (default RESULTS/tables)")
     p.add_argument("--level", type=float, default=0.95,
                    help="confidence level of the intervals (default 0.95)")
     p.set_defaults(func=run_table)
@@ -162,14 +187,16 @@ def register_report_commands(subparsers) -> None:
         description="Transition table of labels, McNemar tests per variable, Wilcoxon "
                     "signed-rank test on paired gains, Benjamini-Hochberg correction; "
                     "unpaired tests when no cell is matched.")
-    p.add_argument("dir", help="output folder of `encodex fit`")
+    add_results_argument(p)
     p.add_argument("--between", nargs=2, metavar=("A", "B"), required=True,
                    help="the two environments (A: rows of the transition table)")
     p.add_argument("--unpaired", action="store_true",
                    help="treat the populations as independent even if unit ids match")
-    p.add_argument("--alpha", type=float, default=None,
-                   help="false discovery rate of the BH correction (default: the run's alpha)")
-    p.add_argument("--out", help="folder for the results (default DIR/compare)")
+    p.add_argument("--fdr", type=_fraction, default=None, metavar="Q",
+                   help="false discovery rate of the Benjamini-Hochberg correction across "
+                        "the tests (default: the run's alpha)")
+    p.add_argument("--alpha", type=_renamed("--fdr"), default=None, help=argparse.SUPPRESS)
+    p.add_argument("--out", metavar="DIR", help="folder for the results (default RESULTS/compare)")
     p.set_defaults(func=run_compare)
 
     p = subparsers.add_parser(
@@ -177,11 +204,12 @@ def register_report_commands(subparsers) -> None:
         description="Write an HTML file with figures embedded (opens offline): summary, "
                     "tables, population and comparison figures, per-cell sections, methods "
                     "and settings. Population figures are also saved as PNG and PDF.")
-    p.add_argument("dir", help="output folder of `encodex fit`")
-    p.add_argument("--out", help="HTML file to write (default DIR/report.html)")
+    add_results_argument(p)
+    p.add_argument("--out", metavar="FILE", help="HTML file to write (default "
+                                                 "RESULTS/report.html)")
     p.add_argument("--between", nargs=2, metavar=("A", "B"),
                    help="environments to compare (default: every pair, at most three)")
-    p.add_argument("--max-cells", type=int, default=30,
+    p.add_argument("--max-cells", type=whole_number(0), default=30,
                    help="per-cell sections in the report (default 30, tuned cells first)")
     p.add_argument("--cell", nargs=2, action="append", metavar=("UNIT", "ENV"),
                    help="also save this cell's figure as PNG and PDF (repeatable)")
@@ -192,11 +220,15 @@ def register_report_commands(subparsers) -> None:
         description="Simulate a two-environment session with known ground truth, write it as "
                     "NWB, fit every cell, then write tables, the environment comparison and "
                     "the HTML report.")
-    p.add_argument("--out", required=True, help="folder for everything the demo writes")
-    p.add_argument("--cells", type=int, default=12, help="simulated units (default 12)")
-    p.add_argument("--duration", type=float, default=900.0,
+    p.add_argument("--out", required=True, metavar="DIR",
+                   help="folder for everything the demo writes (new, empty, or an earlier "
+                        "demo's)")
+    p.add_argument("--cells", type=int, default=12,
+                   help="simulated units (default 12)")
+    p.add_argument("--duration", type=positive_number("seconds"), default=900.0,
                    help="seconds per environment (default 900)")
-    p.add_argument("--jobs", type=int, default=2, help="parallel workers (default 2)")
-    p.add_argument("--seed", type=int, default=1, help="seed of the simulation and folds")
+    add_jobs_option(p)
+    p.add_argument("--seed", type=whole_number(0), default=1,
+                   help="seed of the simulation and folds (default 1)")
     p.set_defaults(func=run_demo)
 

@@ -10,12 +10,15 @@ from pathlib import Path
 
 import pandas as pd
 
-from encodex.errors import OutputError, SettingsError
+from encodex.errors import SettingsError
+from encodex.population.checkpoint import own_folder
 
 __all__ = ["demo", "DEMO_ENVIRONMENTS"]
 
 #: The two environments of the demo session (one recorded after the other).
 DEMO_ENVIRONMENTS = ("room_a", "room_b")
+#: File marking a folder as written by the demo (and holding what it simulated).
+DEMO_MARKER = ".encodex-demo.json"
 
 
 def _fit(nwb: Path, out: Path, jobs: int, seed: int, echo) -> None:
@@ -28,7 +31,7 @@ def _fit(nwb: Path, out: Path, jobs: int, seed: int, echo) -> None:
     from encodex.population import run_population
 
     echo(f"  (same as: encodex fit {nwb} --out {out} --jobs {jobs} --seed {seed})")
-    run_population(nwb, out=out, jobs=jobs, seed=seed, progress=True)
+    run_population(nwb, out=out, jobs=jobs, seed=seed, progress=True, echo=echo)
 
 
 def recovery_summary(cells: pd.DataFrame, truth: pd.DataFrame) -> pd.DataFrame:
@@ -98,10 +101,12 @@ def demo(out, n_cells: int = 12, duration_s: float = 900.0, jobs: int = 2, seed:
     if jobs < 1:
         raise SettingsError(f"--jobs must be at least 1; got {jobs}")
     out = Path(out)
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise OutputError(f"cannot create {out} ({exc.strerror}); choose a writable folder")
+    # The demo owns its folder: refuse anyone else's files before writing anything, and
+    # start over (not half-resume) when the simulation asked for differs.
+    state = own_folder(out, DEMO_MARKER, {"cells": int(n_cells), "duration_s": float(duration_s),
+                                          "seed": int(seed)})
+    if state.startswith("replaced"):
+        echo(f"{out} held an earlier demo ({state[len('replaced: '):]}); it was replaced")
     t0 = time.perf_counter()
 
     def step(msg):
