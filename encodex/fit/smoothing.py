@@ -163,10 +163,13 @@ class CriterionDerivatives:
     hessian : ndarray, shape (n_penalties, n_penalties)
         ``d2V/drho_j drho_k`` with the weights held fixed (the weight-derivative terms are left
         out; see :func:`laml_derivatives`).
+    dtheta : ndarray, shape (n_penalties, n_theta)
+        ``dtheta_hat/drho_k = -A^{-1} lambda_k S_k theta_hat`` (row ``k``).
     """
 
     gradient: np.ndarray
     hessian: np.ndarray
+    dtheta: np.ndarray        # (n_penalties, n_theta): dtheta_hat/drho_k
 
 
 def _weight_derivative_traces(design: Design, w: np.ndarray, gram: np.ndarray,
@@ -272,4 +275,4 @@ def laml_derivatives(theta: np.ndarray, w: np.ndarray, gram: np.ndarray, design:
             hess[j, k] -= 0.5 * t
             if k != j:
                 hess[k, j] = hess[j, k]
-    return CriterionDerivatives(-(fixed + 0.5 * tr_dh), -hess)
+    return CriterionDerivatives(-(fixed + 0.5 * tr_dh), -hess, -a_inv_b)
