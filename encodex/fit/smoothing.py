@@ -55,11 +55,13 @@ NEGLIGIBLE_EDF = 1e-3
 #: One sentence naming the criterion, for run.json and the methods text.
 CRITERION_STATEMENT = (
     "Smoothing parameters maximise the Laplace approximate restricted marginal likelihood "
-    "(REML-type criterion with the unpenalised effects integrated out; Wood 2011, J. R. Stat. "
-    "Soc. B 73:3-36), reached by generalised Fellner-Schall updates (Wood & Fasiolo 2017, "
-    "Biometrics 73:1071-1081) followed by Newton steps on log smoothing parameters with the "
-    "exact gradient; selected smoothing parameters agree with mgcv's REML to within 1% where "
-    "the criterion is curved and the criterion is within 1e-5 of its maximum."
+    "(REML-type criterion, unpenalised effects integrated out; Wood 2011, J. R. Stat. Soc. B "
+    "73:3-36; mgcv's method 'REML'), from generalised Fellner-Schall updates (Wood & Fasiolo "
+    "2017, Biometrics 73:1071-1081) followed by Newton steps on log smoothing parameters with "
+    "the exact gradient, stopped when every gradient component is below 1e-4 or a step moves "
+    "no log smoothing parameter by more than 0.05 (remaining error measured below 0.3% in the "
+    "smoothing parameters; on three reference problems they agree with mgcv 1.8-41's REML to "
+    "0.02% and effective degrees of freedom to 1e-4)."
 )
 
 
