@@ -62,6 +62,16 @@ class FitOptions:
     step_tol: float = 5e-2
     max_newton: int = 20
 
+    def __post_init__(self):
+        checks = (("lambda_tol", self.lambda_tol > 0), ("gradient_tol", self.gradient_tol > 0),
+                  ("step_tol", self.step_tol >= 0),
+                  ("max_outer", isinstance(self.max_outer, int) and self.max_outer >= 1),
+                  ("max_newton", isinstance(self.max_newton, int) and self.max_newton >= 0))
+        for name, ok in checks:
+            if not ok:
+                raise SettingsError(f"FitOptions.{name}={getattr(self, name)!r} is out of range; "
+                                    "use a positive number (max_newton: a whole number >= 0)")
+
 
 def _row_mask(rows, n: int) -> np.ndarray:
     if rows is None:
