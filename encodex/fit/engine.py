@@ -1,4 +1,4 @@
-"""Fit a penalised Poisson GLM, with smoothing parameters fixed or selected by LAML."""
+"""Fit a penalised Poisson GLM, with smoothing parameters fixed or selected by LAML (REML-type)."""
 
 from __future__ import annotations
 
@@ -148,8 +148,11 @@ def fit_poisson(design: Design, y, offset=0.0, lambdas=None, rows=None, start=No
         rate in Hz.
     lambdas : array_like, optional
         Fixed smoothing parameters, one per penalty (``design.n_penalties``). By default they
-        are selected by maximising the Laplace approximate marginal likelihood with the
-        generalised Fellner-Schall iteration (Wood & Fasiolo 2017, Biometrics 73:1071).
+        are selected by maximising the Laplace approximate restricted marginal likelihood
+        (REML-type; Wood 2011, JRSS-B 73:3; :mod:`encodex.fit.smoothing`): generalised
+        Fellner-Schall updates (Wood & Fasiolo 2017, Biometrics 73:1071) as the start, then
+        Newton steps on ``log lambda`` with the exact gradient (see :class:`FitOptions` for
+        the stopping rules and the accuracy they give).
     rows : ndarray of int or bool, optional
         Bins to fit (training folds); all by default. Left-out bins are never looked at.
     start : PoissonFit or ndarray, optional
