@@ -52,6 +52,10 @@ RELATIVE_RANGE = 1e7
 #: Effective degrees of freedom below which a penalised part counts as switched off.
 NEGLIGIBLE_EDF = 1e-3
 
+#: Bound below which ``tr(A^{-1} dH/drho_k)`` is taken as 0 (log-units, far below the Newton
+#: phase's gradient tolerance).
+NEGLIGIBLE_TRACE = 1e-9
+
 #: One sentence naming the criterion, for run.json and the methods text.
 CRITERION_STATEMENT = (
     "Smoothing parameters maximise the Laplace approximate restricted marginal likelihood "
@@ -220,7 +224,9 @@ def _weight_derivative_traces(design: Design, w: np.ndarray, gram: np.ndarray,
     out = np.zeros(dtheta.shape[0])
     for k in range(dtheta.shape[0]):
         scale = float(np.max(np.abs(eta[:, k] * (w > 0)), initial=0.0))
-        if scale == 0.0:
+        # |tr(A^{-1} dH_k)| <= max|eta_k| tr(A^{-1} H) <= max|eta_k| n_theta (the eigenvalues
+        # of A^{-1} H lie in [0, 1]): a term smoothed away (eta_k ~ 0) needs no pass.
+        if scale * a_inv.shape[0] <= NEGLIGIBLE_TRACE:
             continue
         c = 0.5 / scale
         dh = (design.weighted_gram(w * (1.0 + c * eta[:, k])) - gram) / c
