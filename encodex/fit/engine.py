@@ -207,10 +207,14 @@ def fit_poisson(design: Design, y, offset=0.0, lambdas=None, rows=None, start=No
         n_iter += finish.n_iter
         reason = res.reason
         converged = res.converged
-        if finish.stop == "limit" or (options.max_newton == 0 and change >= options.lambda_tol):
+        if finish.stop == "limit":
             converged = False
             reason = ("smoothness selection did not reach the optimum of the criterion "
                       f"(largest gradient in log lambda {finish.gradient:.2g})")
+        elif finish.stop == "skipped" and change >= options.lambda_tol:
+            converged = False
+            reason = (f"smoothness selection did not settle in {options.max_outer} updates "
+                      f"(last change in log lambda {change:.2g})")
     else:
         res = newton(lam).solve(theta0)
         n_iter = res.n_iter
@@ -356,7 +360,8 @@ def _newton_finish(newton, design, y, mask, structure, lam, res, bounds, options
     laml_derivatives`), on the free smoothing parameters: those not held at a bound of
     ``bounds`` by a gradient pointing outwards. The step is capped at :data:`MAX_LOG_STEP` and
     halved until ``V`` does not decrease (beyond rounding, ``1e-11 (1 + |V|)``); ``theta`` is
-    re-solved exactly at every trial ``lambda``.
+    re-solved exactly at every trial ``lambda`` (a trial whose solve did not converge counts
+    as a failed one).
 
     Stops when (a) every free ``|dV/drho_k| <= options.gradient_tol``, or (b) the step just
     taken moved no ``rho_k`` by more than ``options.step_tol``, or (c) no halving of the step
@@ -387,7 +392,7 @@ def _newton_finish(newton, design, y, mask, structure, lam, res, bounds, options
             n_iter += new_res.n_iter
             new_value = laml(poisson_loglik(y, new_res.mu, mask), new_res.theta, new_res.gram,
                              design, structure, new_lam)
-            if new_value >= value - 1e-11 * (1.0 + abs(value)):
+            if new_res.converged and new_value >= value - 1e-11 * (1.0 + abs(value)):
                 break
             step *= 0.5
         else:
