@@ -1,4 +1,4 @@
-"""Fit a penalised Poisson GLM, with smoothing parameters fixed or selected by LAML."""
+"""Fit a penalised Poisson GLM, with smoothing parameters fixed or selected by LAML (REML-type)."""
 
 from __future__ import annotations
 
@@ -12,7 +12,7 @@ from encodex.errors import InputError, SettingsError
 from .result import (PoissonFit, TermLayout, log_factorial_sum, poisson_deviance,
                      poisson_loglik)
 from .smoothing import (LAMBDA_MAX, LAMBDA_MIN, RELATIVE_RANGE, PenaltyStructure,
-                        fellner_schall_update, initial_lambdas, laml)
+                        fellner_schall_update, initial_lambdas, laml, laml_derivatives)
 from .solver import NewtonOptions, PenalisedPoissonNewton, _log_mean_rate
 
 
@@ -20,26 +20,57 @@ from .solver import NewtonOptions, PenalisedPoissonNewton, _log_mean_rate
 class FitOptions:
     """Settings of :func:`fit_poisson`.
 
+    Smoothness selection maximises the Laplace approximate restricted marginal likelihood
+    (the REML-type criterion ``V`` of :mod:`encodex.fit.smoothing`) in two phases: a fast
+    start by the generalised Fellner-Schall iteration, then Newton steps on ``log lambda``
+    with the exact gradient (see :func:`encodex.fit.smoothing.laml_derivatives`).
+
     Attributes
     ----------
     newton : NewtonOptions
-        Stopping rules of the inner Newton solver.
+        Stopping rules of the inner Newton solver (coefficients at fixed smoothing).
     max_outer : int
-        Smoothness-selection updates before giving up.
+        Fellner-Schall updates before the start phase gives up.
     lambda_tol : float
-        Selection stops when no ``log lambda`` changes by more than this in an update (1e-2:
-        a 1% change in a smoothing parameter moves the LAML by ~1e-5 and the fitted curves
-        far less than their standard errors; reference_checks/test_engine_reference.py
-        checks the default options against a direct maximisation of the LAML)...
+        The start phase stops when no ``log lambda`` changes by more than this in an update...
     laml_tol : float
-        ... or when the LAML criterion changed by less than ``laml_tol * (1 + |LAML|)`` in each
-        of three consecutive updates (a lambda that no longer affects the fit may drift).
+        ... or when the criterion changed by less than ``laml_tol * (1 + |V|)`` in each of
+        three consecutive updates (a lambda that no longer affects the fit may drift).
+    gradient_tol : float
+        The Newton phase stops when every free ``|dV/dlog lambda_k|`` is at most this (log
+        units of the criterion per unit of log lambda)...
+    step_tol : float
+        ... or once it has taken a Newton step whose largest change in ``log lambda`` is at
+        most this: each step shrinks the distance to the optimum by a factor of about 25
+        (benchmarks/bench_smoothness.py: worst remaining error 0.0025 in log lambda with
+        0.05, at 1.3x the time of Fellner-Schall alone; 3.5e-4 at 1.6x with 1e-2).
+    max_newton : int
+        Newton steps on ``log lambda`` before giving up (0 skips the phase: Fellner-Schall
+        alone, which stops short of the optimum by up to ~3% in lambda).
+
+    With the defaults, the selected smoothing parameters are within 0.2% of the optimum of
+    ``V`` where it is curved, effective degrees of freedom within 0.001 and ``V`` within
+    1e-7 of its maximum (reference_checks/test_mgcv_reference.py against mgcv's REML, and
+    reference_checks/test_engine_reference.py against a direct maximisation).
     """
 
     newton: NewtonOptions = field(default_factory=NewtonOptions)
     max_outer: int = 200
     lambda_tol: float = 1e-2
     laml_tol: float = 1e-10
+    gradient_tol: float = 1e-4
+    step_tol: float = 5e-2
+    max_newton: int = 20
+
+    def __post_init__(self):
+        checks = (("lambda_tol", self.lambda_tol > 0), ("gradient_tol", self.gradient_tol > 0),
+                  ("step_tol", self.step_tol >= 0),
+                  ("max_outer", isinstance(self.max_outer, int) and self.max_outer >= 1),
+                  ("max_newton", isinstance(self.max_newton, int) and self.max_newton >= 0))
+        for name, ok in checks:
+            if not ok:
+                raise SettingsError(f"FitOptions.{name}={getattr(self, name)!r} is out of range; "
+                                    "use a positive number (max_newton: a whole number >= 0)")
 
 
 def _row_mask(rows, n: int) -> np.ndarray:
@@ -117,8 +148,11 @@ def fit_poisson(design: Design, y, offset=0.0, lambdas=None, rows=None, start=No
         rate in Hz.
     lambdas : array_like, optional
         Fixed smoothing parameters, one per penalty (``design.n_penalties``). By default they
-        are selected by maximising the Laplace approximate marginal likelihood with the
-        generalised Fellner-Schall iteration (Wood & Fasiolo 2017, Biometrics 73:1071).
+        are selected by maximising the Laplace approximate restricted marginal likelihood
+        (REML-type; Wood 2011, JRSS-B 73:3; :mod:`encodex.fit.smoothing`): generalised
+        Fellner-Schall updates (Wood & Fasiolo 2017, Biometrics 73:1071) as the start, then
+        Newton steps on ``log lambda`` with the exact gradient (see :class:`FitOptions` for
+        the stopping rules and the accuracy they give).
     rows : ndarray of int or bool, optional
         Bins to fit (training folds); all by default. Left-out bins are never looked at.
     start : PoissonFit or ndarray, optional
@@ -163,13 +197,21 @@ def fit_poisson(design: Design, y, offset=0.0, lambdas=None, rows=None, start=No
     n_iter = 0
     n_outer = 0
     if select:
-        lam, theta, n_outer, n_iter, change, mu, gram = _select_smoothness(
+        lam, theta, n_outer, n_iter, change, mu, gram, bounds = _select_smoothness(
             design, y, offset, mask, structure, theta0, _warm_lambdas(design, start), options)
         res = newton(lam).solve(theta, mu, gram)
         n_iter += res.n_iter
+        finish = _newton_finish(newton, design, y, mask, structure, lam, res, bounds, options)
+        lam, res = finish.lambdas, finish.result
+        n_outer += finish.steps
+        n_iter += finish.n_iter
         reason = res.reason
         converged = res.converged
-        if change >= options.lambda_tol:
+        if finish.stop == "limit":
+            converged = False
+            reason = ("smoothness selection did not reach the optimum of the criterion "
+                      f"(largest gradient in log lambda {finish.gradient:.2g})")
+        elif finish.stop == "skipped" and change >= options.lambda_tol:
             converged = False
             reason = (f"smoothness selection did not settle in {options.max_outer} updates "
                       f"(last change in log lambda {change:.2g})")
@@ -206,8 +248,8 @@ def _select_smoothness(design, y, offset, mask, structure, theta0, warm, options
     iteration", Wood 2017, sec. 6.12.1, here with the Fellner-Schall update).
 
     Returns (lambdas, theta, rounds, newton steps, last change in log lambda, mu, Gram
-    matrix), the last two at the returned theta (the Gram matrix None when the last one
-    was formed at an earlier theta and reused).
+    matrix, (lower, upper) bounds of lambda), mu and the Gram matrix at the returned theta
+    (the Gram matrix None when the last one was formed at an earlier theta and reused).
     """
     solver = PenalisedPoissonNewton(design, y, offset, np.zeros((design.n_theta,) * 2), mask,
                                     options.newton)
@@ -271,7 +313,96 @@ def _select_smoothness(design, y, offset, mask, structure, theta0, warm, options
             gram = solver.gram(mu)
             eta_at_gram = eta
     fresh = eta_at_gram is eta
-    return lam, theta, rounds, rounds, change, mu, (gram if fresh else None)
+    return lam, theta, rounds, rounds, change, mu, (gram if fresh else None), (lower, upper)
+
+
+#: Largest change of any log lambda in one Newton step of the selection's second phase.
+MAX_LOG_STEP = 2.0
+
+
+@dataclass(frozen=True)
+class _Finish:
+    lambdas: np.ndarray
+    result: object            # NewtonResult at ``lambdas``
+    steps: int
+    n_iter: int
+    gradient: float           # largest free |dV/dlog lambda| where it was last evaluated
+    stop: str                 # "gradient", "step", "flat" or "limit"
+
+
+def _ascent_direction(neg_hessian: np.ndarray, g: np.ndarray) -> np.ndarray:
+    """Newton direction ``P^{-1} g`` with ``P = -d2V`` made positive definite.
+
+    Eigenvalues of ``P`` are replaced by their absolute values, floored at 1e-7 of the
+    largest (Nocedal & Wright 2006, Numerical Optimization, sec. 3.4), so that a direction
+    where the criterion is flat (a term smoothed away) gets a long step, not a wrong-way one.
+    """
+    ev, vec = np.linalg.eigh(0.5 * (neg_hessian + neg_hessian.T))
+    ev = np.maximum(np.abs(ev), max(np.max(np.abs(ev), initial=0.0) * 1e-7, 1e-12))
+    return vec @ ((vec.T @ g) / ev)
+
+
+def _solve_from_prediction(solver, res, delta):
+    """Newton solve from ``res.theta + delta`` when it lowers the objective, else from ``res``."""
+    f_here, _ = solver.objective(res.theta, np.log(res.mu))
+    trial = res.theta + delta
+    f_trial, mu_trial = solver.objective(trial)
+    if f_trial < f_here:
+        return solver.solve(trial, mu_trial)
+    return solver.solve(res.theta, res.mu, res.gram)
+
+
+def _newton_finish(newton, design, y, mask, structure, lam, res, bounds, options) -> _Finish:
+    """Newton steps on ``rho = log lambda`` from the Fellner-Schall start, to the optimum.
+
+    Each step uses the exact gradient of the criterion ``V`` (with the change of the Poisson
+    weights with lambda) and its fixed-weight Hessian (:func:`encodex.fit.smoothing.
+    laml_derivatives`), on the free smoothing parameters: those not held at a bound of
+    ``bounds`` by a gradient pointing outwards. The step is capped at :data:`MAX_LOG_STEP` and
+    halved until ``V`` does not decrease (beyond rounding, ``1e-11 (1 + |V|)``); ``theta`` is
+    re-solved exactly at every trial ``lambda`` (a trial whose solve did not converge counts
+    as a failed one).
+
+    Stops when (a) every free ``|dV/drho_k| <= options.gradient_tol``, or (b) the step just
+    taken moved no ``rho_k`` by more than ``options.step_tol``, or (c) no halving of the step
+    increases ``V`` (the criterion is flat to rounding: "flat"), or (d) after
+    ``options.max_newton`` steps ("limit", reported as not converged).
+    """
+    lower, upper = np.log(bounds[0]), np.log(bounds[1])
+    value = laml(poisson_loglik(y, res.mu, mask), res.theta, res.gram, design, structure, lam)
+    n_iter = 0
+    gmax = np.inf
+    for steps in range(options.max_newton):
+        der = laml_derivatives(res.theta, mask * res.mu, res.gram, design, structure, lam)
+        rho, g = np.log(lam), der.gradient
+        held = ((rho >= upper - 1e-9) & (g >= 0)) | ((rho <= lower + 1e-9) & (g <= 0))
+        free = ~held
+        gmax = float(np.max(np.abs(g[free]), initial=0.0))
+        if gmax <= options.gradient_tol:
+            return _Finish(lam, res, steps, n_iter, gmax, "gradient")
+        step = np.zeros_like(rho)
+        step[free] = _ascent_direction(-der.hessian[np.ix_(free, free)], g[free])
+        step *= min(1.0, MAX_LOG_STEP / max(float(np.max(np.abs(step))), 1e-300))
+        for _ in range(12):
+            new_lam = np.exp(np.clip(rho + step, lower, upper))
+            # Start from the first-order prediction of the new optimum; keep the current
+            # point (and its Gram matrix, which does not depend on lambda) if that is worse.
+            new_res = _solve_from_prediction(newton(new_lam), res,
+                                             (np.log(new_lam) - rho) @ der.dtheta)
+            n_iter += new_res.n_iter
+            new_value = laml(poisson_loglik(y, new_res.mu, mask), new_res.theta, new_res.gram,
+                             design, structure, new_lam)
+            if new_res.converged and new_value >= value - 1e-11 * (1.0 + abs(value)):
+                break
+            step *= 0.5
+        else:
+            return _Finish(lam, res, steps + 1, n_iter, gmax, "flat")
+        taken = float(np.max(np.abs(np.log(new_lam) - rho)))
+        lam, res, value = new_lam, new_res, new_value
+        if taken <= options.step_tol:
+            return _Finish(lam, res, steps + 1, n_iter, gmax, "step")
+    stop = "limit" if options.max_newton > 0 else "skipped"
+    return _Finish(lam, res, options.max_newton, n_iter, gmax, stop)
 
 
 def _posterior_covariance(h: np.ndarray) -> np.ndarray:

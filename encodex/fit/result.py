@@ -78,14 +78,17 @@ class PoissonFit:
     deviance : float
         Poisson deviance on the fitted rows.
     laml : float or None
-        Log Laplace approximate marginal likelihood when smoothness was selected.
+        The smoothness criterion at the selected lambdas when smoothness was selected: log
+        Laplace approximate restricted marginal likelihood (REML-type; mgcv's REML score is
+        its negative).
     converged : bool
     reason : str
         "converged" or why not.
     n_iter : int
         Newton iterations in total.
     n_outer : int
-        Smoothness-selection updates (0 with fixed lambdas).
+        Smoothness-selection updates: Fellner-Schall rounds plus Newton steps on log lambda
+        (0 with fixed lambdas).
     offset : float or ndarray
         Offset used in the fit.
     """

@@ -19,6 +19,7 @@ import pandas as pd
 
 from encodex.compare.folds import chunked_folds
 from encodex.errors import EncodexError, InputError, SettingsError
+from encodex.fit.smoothing import CRITERION_STATEMENT
 from encodex.population.checkpoint import (
     atomic_write_text, check_output_folder, data_fingerprint, open_checkpoint, read_unit_record,
     unit_path, write_unit_file,
@@ -500,6 +501,7 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
             "cpu_seconds_cells": round(float(np.sum(seconds)), 3),
         },
         "methods": {"folds": FOLD_STATEMENT, "smoothness": SMOOTHNESS_STATEMENTS[rs.fold_fits],
+                    "smoothness_criterion": CRITERION_STATEMENT,
                     "selection": ("forward selection from the mean-rate model; a variable is "
                                   "kept if it improves held-out bits per spike across folds by "
                                   f"a one-sided Wilcoxon signed-rank test at alpha={rs.alpha}"
