@@ -150,7 +150,7 @@ def paired_difference_interval(
 
 
 def response_correlation(arrays_a: dict, arrays_b: dict, variable: str) -> float:
-    """Pearson correlation of a variable's fitted log gain between two environments.
+    """Pearson correlation of a variable's fitted log modulation (natural log of the rate factor) between two environments.
 
     The B curve is interpolated onto the A grid points that lie in the range both grids
     cover (circular interpolation for angles). Position maps are compared bin by bin over the
@@ -163,7 +163,7 @@ def response_correlation(arrays_a: dict, arrays_b: dict, variable: str) -> float
         overlap.
     """
     if variable == "position":
-        keys = ("position__grid_x", "position__grid_y", "position__log_gain")
+        keys = ("position__grid_x", "position__grid_y", "position__log_modulation")
         if not all(k in arrays_a and k in arrays_b for k in keys):
             return float("nan")
         gxa, gya, la = (np.asarray(arrays_a[k], float) for k in keys)
@@ -177,7 +177,7 @@ def response_correlation(arrays_a: dict, arrays_b: dict, variable: str) -> float
         vb = interp(np.column_stack([yy.ravel(), xx.ravel()]))
         va = la.ravel()
     else:
-        g, lg = f"{variable}__grid", f"{variable}__log_gain"
+        g, lg = f"{variable}__grid", f"{variable}__log_modulation"
         if not all(k in arrays_a and k in arrays_b for k in (g, lg)):
             return float("nan")
         ga, va = np.asarray(arrays_a[g], float), np.asarray(arrays_a[lg], float)

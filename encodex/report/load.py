@@ -105,11 +105,18 @@ class RunFolder:
         try:
             with np.load(f, allow_pickle=False) as z:
                 # the fit stage may add a JSON record; only arrays of the contract matter here
-                return {k: z[k] for k in z.files if "__" in k and not k.startswith("record__")}
+                return {_current_key(k): z[k] for k in z.files
+                        if "__" in k and not k.startswith("record__")}
         except (ValueError, OSError) as exc:
             raise FileFormatError(
                 f"{f} is not a readable npz file ({exc}); re-run `encodex fit` for this unit"
             ) from None
+
+
+def _current_key(key: str) -> str:
+    """Key of a unit array in today's naming: folders written before the rate factor had its
+    own name stored it as ``<term>__log_gain`` (same numbers, natural log)."""
+    return key[:-len("__log_gain")] + "__log_modulation" if key.endswith("__log_gain") else key
 
 
 def _plain_part(name) -> bool:

@@ -42,8 +42,8 @@ def _curve(var: str, rng: np.random.Generator, shift: float = 0.0) -> dict[str, 
         cx, cy = rng.uniform(0.3, 0.7, 2)
         xx, yy = np.meshgrid(gx, gy)
         lg = 1.5 * np.exp(-((xx - cx - shift) ** 2 + (yy - cy) ** 2) / (2 * 0.1**2)) - 0.3
-        return {"position__grid_x": gx, "position__grid_y": gy, "position__log_gain": lg,
-                "position__se": np.full_like(lg, 0.1)}
+        return {"position__grid_x": gx, "position__grid_y": gy, "position__log_modulation": lg,
+                "position__se": np.full_like(lg, 0.1), "position__baseline_hz": np.asarray(1.5)}
     if var == "heading":
         g = np.linspace(0, 2 * np.pi, 36, endpoint=False)
         mu = rng.uniform(0, 2 * np.pi) + shift
@@ -52,7 +52,8 @@ def _curve(var: str, rng: np.random.Generator, shift: float = 0.0) -> dict[str, 
         hi = {"speed": 0.5, "distance": 2.0, "time": 10.0}.get(var, 1.0)
         g = np.linspace(0, hi, 30)
         lg = np.linspace(-0.5, 0.5, 30) * (1 + shift)
-    return {f"{var}__grid": g, f"{var}__log_gain": lg, f"{var}__se": np.full_like(g, 0.08)}
+    return {f"{var}__grid": g, f"{var}__log_modulation": lg, f"{var}__se": np.full_like(g, 0.08),
+            f"{var}__baseline_hz": np.asarray(2.0)}
 
 
 def write_example_run(
