@@ -20,7 +20,12 @@ import numpy as np
 
 from encodex.errors import InputError, SettingsError
 
-__all__ = ["spatial_edges", "occupancy_map", "rate_map", "skaggs_information",
+#: Spatial bins visited for less than this are given no rate in the report's maps, tables and
+#: Skaggs information, s. Half a second holds 25 bins of 20 ms: fewer make a rate of one
+#: stray spike read as tens of Hz (common practice, no source).
+MIN_OCCUPANCY_S = 0.5
+
+__all__ = ["MIN_OCCUPANCY_S", "spatial_edges", "occupancy_map", "rate_map", "skaggs_information",
            "skaggs_bias", "skaggs_information_corrected"]
 
 

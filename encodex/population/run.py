@@ -201,8 +201,9 @@ def _environment_work(session, env_name: str, settings: RunSettings,
         "n_bins_used": int(rows.size),
         "duration_s": float(rows.size * session.bin_size),
         "variables": list(variables),
+        # without --variables every variable was a candidate: say why each missing one is
         "unavailable": {v: r for v, r in session.unavailable_variables(env_name).items()
-                        if v in wanted},
+                        if settings.variables is None or v in settings.variables},
     }
     cov = {v: np.ascontiguousarray(np.asarray(session.covariates[v])[rows]) for v in
            set(variables) | ({"position"} & set(session.covariates))}

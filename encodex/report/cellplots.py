@@ -17,7 +17,12 @@ import pandas as pd
 from matplotlib.patches import Rectangle
 from matplotlib.ticker import MaxNLocator
 
-from encodex.classic import rate_map, skaggs_information, skaggs_information_corrected
+from encodex.classic import (
+    MIN_OCCUPANCY_S,
+    rate_map,
+    skaggs_information,
+    skaggs_information_corrected,
+)
 from encodex.report.load import carried
 from encodex.report.palette import CHOSEN, NEUTRAL, variable_colour
 from encodex.variables import UNITS, KINDS, canonical_order, label
@@ -27,7 +32,7 @@ __all__ = ["response_terms", "term_rate", "parse_selection_path", "draw_cell",
 
 Z95 = 1.959963984540054
 #: Bins (spatial or along a variable) visited for less than this are not given a rate.
-MIN_BIN_OCCUPANCY_S = 0.5
+MIN_BIN_OCCUPANCY_S = MIN_OCCUPANCY_S
 _PATH_STEP = re.compile(r"([+x])([^(]+)\(p=([^<>=)]+)(?:(<|>=)([^)]+))?\)")
 _NAMES = {"distance": "distance since trial start", "time": "time since trial start"}
 

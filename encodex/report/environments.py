@@ -5,7 +5,7 @@ Paired comparison (cells recorded in both environments, matched by unit id):
 - transition table of labels (environment A in rows, B in columns);
 - per variable, McNemar's test on paired presence/absence, exact binomial form when fewer than
   25 discordant cells (Agresti 2013, Categorical Data Analysis, 3rd ed., sec. 11.1), with the
-  change in fractions and Newcombe's interval for a paired difference (Newcombe 1998b,
+  change in fractions and Newcombe's interval for a paired difference (Newcombe 1998c,
   method 10);
 - Wilcoxon signed-rank test on the paired held-out gains;
 - cells active in one environment and silent (too few spikes) in the other;
@@ -23,9 +23,9 @@ References
 ----------
 McNemar, Q. (1947). Psychometrika 12:153-157.
 Agresti, A. (2013). Categorical Data Analysis, 3rd ed. Wiley.
-Newcombe, R. G. (1998a). Interval estimation for the difference between independent
+Newcombe, R. G. (1998b). Interval estimation for the difference between independent
 proportions: comparison of eleven methods. Stat. Med. 17:873-890.
-Newcombe, R. G. (1998b). Improved confidence intervals for the difference between binomial
+Newcombe, R. G. (1998c). Improved confidence intervals for the difference between binomial
 proportions based on paired data. Stat. Med. 17:2635-2650.
 Wilcoxon, F. (1945). Individual comparisons by ranking methods. Biometrics Bull. 1:80-83.
 Benjamini, Y. & Hochberg, Y. (1995). Controlling the false discovery rate. J. R. Stat. Soc. B
@@ -115,7 +115,7 @@ def paired_difference_interval(
 ) -> tuple[float, float, float]:
     """Newcombe's hybrid score interval for a difference of paired proportions.
 
-    The difference is ``p_A - p_B = (a_only - b_only) / n``. Method 10 of Newcombe (1998b):
+    The difference is ``p_A - p_B = (a_only - b_only) / n``. Method 10 of Newcombe (1998c):
     Wilson intervals of each margin combined with the continuity-corrected phi coefficient.
 
     Returns
@@ -124,7 +124,7 @@ def paired_difference_interval(
 
     References
     ----------
-    Newcombe, R. G. (1998). Improved confidence intervals for the difference between binomial
+    Newcombe, R. G. (1998c). Improved confidence intervals for the difference between binomial
     proportions based on paired data. Stat. Med. 17:2635-2650 (method 10).
     """
     a, b, c, d = (int(x) for x in (both, a_only, b_only, neither))

@@ -25,7 +25,7 @@ from encodex.report.figures import (
     population_figure,
 )
 from encodex.report.load import RunFolder, load_run, setting
-from encodex.report.methods import methods_paragraph, REFERENCES
+from encodex.report.methods import methods_paragraph, methods_references
 from encodex.report.tables import display_frame, make_tables
 from encodex.report.wording import label_caveat
 
@@ -217,7 +217,7 @@ def render_report(run: RunFolder, between=None, max_cells: int = 30,
         "<section id='methods'><h2>Methods</h2>",
         f"<p>{html.escape(methods_paragraph(run.run, with_references=False))}</p>",
         "<h3>References</h3><ul>",
-        *[f"<li>{html.escape(r)}</li>" for r in REFERENCES.values()],
+        *[f"<li>{html.escape(r)}</li>" for r in methods_references(run.run)],
         "</ul></section>",
         "<section id='settings'><h2>Settings (run.json)</h2>",
         f"<pre>{html.escape(json.dumps(run.run, indent=2, default=str))}</pre></section>",

@@ -139,11 +139,18 @@ def write_example_run(
             np.savez(d / f"{unit}.npz", **arrays)
     pd.DataFrame(cells, columns=list(CELL_COLUMNS)).to_csv(path / "cells.csv", index=False)
     pd.DataFrame(models, columns=list(MODEL_COLUMNS)).to_csv(path / "models.csv", index=False)
+    envs = list(dict.fromkeys(e for per_env in labels.values() for e in per_env))
     run = {
         "settings": {"bin_size": 0.02, "folds": folds, "seed": seed, "alpha": alpha,
                      "variables": list(VARIABLES), "min_spikes": 100, "exhaustive": False,
                      "shuffles": 0},
         "versions": {"encodex": "0.1.0"},
+        "input": "example.nwb",
+        "session": {"bin_size_s": 0.02, "environments": envs,
+                    "summary": {"heading_source": "compass", "settings": {
+                        "speed_smoothing_s": 0.2, "max_gap_s": 0.5,
+                        "heading_speed_threshold": 0.03}, "masked_bins": {"tracking_gap": 10}}},
+        "environments": {e: {"variables": list(VARIABLES), "unavailable": {}} for e in envs},
         "timings": {"total_s": 1.0},
         "masked_bins": {"no position": 10},
         "dropped_spikes": 0,
