@@ -150,7 +150,11 @@ def paired_difference_interval(
 
 
 def response_correlation(arrays_a: dict, arrays_b: dict, variable: str) -> float:
-    """Pearson correlation of a variable's fitted log modulation (natural log of the rate factor) between two environments.
+    """Pearson correlation of a variable's fitted response between two environments.
+
+    The response compared is ``<variable>__log_modulation`` of the unit files (natural log of
+    the factor by which the term multiplies the rate; its baseline does not matter to a
+    correlation).
 
     The B curve is interpolated onto the A grid points that lie in the range both grids
     cover (circular interpolation for angles). Position maps are compared bin by bin over the
@@ -526,7 +530,41 @@ def write_comparison(cmp: EnvironmentComparison, out_dir) -> list:
     md += ["## Per variable", "", to_markdown(summary_frame(cmp)), "",
            "## Held-out gains", "", to_markdown(cmp.gains.round(4)), ""]
     files[f"{stem}.md"] = "\n".join(md)
+    files["README.txt"] = COMPARISON_README.format(stem=stem, a=cmp.a, b=cmp.b)
     return write_texts(out, files)
+
+
+COMPARISON_README = """Comparison of environments written by `encodex compare` ({stem}_*)
+==================================================================
+
+A = {a}, B = {b}. Only labelled cells (status "ok") enter; "paired" means matched by unit id.
+Percentages and fractions are of the labelled cells of an environment.
+
+{stem}_variables.csv   one row per variable analysed in A or B:
+  n_a, n_b (labelled cells), carry_a, carry_b (cells carrying the variable),
+  fraction_a, fraction_b (carry / n, 0-1) with ci_low_*, ci_high_* (95% Wilson),
+  change_b_minus_a (fraction B - fraction A) with change_ci_low, change_ci_high (Newcombe's
+  interval: paired method 10 of Newcombe 1998c, or independent proportions, Newcombe 1998b),
+  both, a_only, b_only, neither (paired cells by presence in A and B; empty if unpaired),
+  test (McNemar exact / chi-square, or Fisher / chi-square unpaired), statistic, p_value,
+  p_adjusted (Benjamini-Hochberg over every test of this comparison), significant
+  (rejected by the Benjamini-Hochberg procedure at the comparison's alpha).
+{stem}_gains.csv       the test of held-out information (cells.csv bits_per_spike, bits per
+  spike) between environments: test (Wilcoxon signed-rank paired, Mann-Whitney U unpaired),
+  n_a, n_b, median_a_bits_per_spike, median_b_bits_per_spike,
+  median_change_bits_per_spike (paired: median of B - A over the cells; unpaired: median
+  of B minus median of A; a cell labelled "none" counts with 0), statistic, p_value,
+  p_adjusted, significant.
+{stem}_activity.csv    cells labelled in one environment and "too few spikes" in the other:
+  unit, active_in, silent_in, label_when_active, n_spikes_active, n_spikes_silent.
+{stem}_stability.csv   one row per paired cell and variable carried in both environments:
+  unit, variable, correlation (Pearson correlation, -1..1, of the fitted response
+  <variable>__log_modulation in A and B over the values both cover; position maps bin by
+  bin; empty when a curve is flat or fewer than 3 points overlap).
+{stem}_tests.csv       the family of tests: test, p_value, p_adjusted, significant.
+{stem}_transitions.csv (paired only) label in A (rows) by label in B (columns), cell counts.
+{stem}.md              a readable summary of the above.
+"""
 
 
 def summary_frame(cmp: EnvironmentComparison) -> pd.DataFrame:
