@@ -83,7 +83,7 @@ def test_population_figure_percentages(run):
     for ax in fig.axes:
         widths = [p.get_width() for c in ax.containers for p in c]
         assert sum(widths) == pytest.approx(100.0)  # percent of the classified cells
-        assert ax.get_xlabel().startswith("% of classified cells")
+        assert ax.get_xlabel().startswith("% of labelled cells")
     assert any("not proof of mechanism" in t.get_text() for t in fig.texts)
     plt.close(fig)
 

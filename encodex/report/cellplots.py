@@ -245,11 +245,17 @@ def _draw_path(ax_gain, ax_p, steps: list[dict], models: pd.DataFrame) -> None:
 
 
 def _check_data(arrays: dict):
-    """(what, occupancy, spikes, predicted) of the first binning with model predictions."""
-    if "ratemap__predicted_spikes" in arrays and "ratemap__spikes" in arrays:
+    """(what, occupancy, spikes, predicted) of the first binning with model predictions.
+
+    Spatial bins when the model holds position, otherwise the bins of its first 1-D term:
+    binning along a variable the model ignores would only show the spread it leaves out.
+    """
+    terms = response_terms(arrays)
+    if "position" in terms and "ratemap__predicted_spikes" in arrays \
+            and "ratemap__spikes" in arrays:
         return ("spatial bin", arrays["ratemap__occupancy_s"], arrays["ratemap__spikes"],
                 arrays["ratemap__predicted_spikes"])
-    for name in response_terms(arrays):
+    for name in terms:
         if f"{name}__predicted_spikes" in arrays:
             return (f"{name} bin", arrays[f"{name}__occupancy_s"], arrays[f"{name}__spikes"],
                     arrays[f"{name}__predicted_spikes"])

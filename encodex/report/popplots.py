@@ -59,12 +59,12 @@ def draw_population(cells: pd.DataFrame, level: float = 0.95):
             ax.text(min(p, 100) + 1.5, i + 0.3, f"{k}/{n}", va="center", fontsize=7,
                     color="0.25")
         ax.set_xlim(0, 100)
-        ax.set_xlabel(f"% of classified cells ({int(round(level * 100))}% Wilson CI)")
-        ax.set_title(f"{env} (n = {n} classified)", fontsize=9)
+        ax.set_xlabel(f"% of labelled cells ({level * 100:g}% Wilson CI)")
+        ax.set_title(f"{env} (n = {n} labelled)", fontsize=9)
         ax.grid(axis="x", color="0.92", lw=0.6)
         ax.set_axisbelow(True)
     axes[0, 0].set_yticks(y)
     axes[0, 0].set_yticklabels(labels)
-    fig.suptitle("Label of each classified cell (bar stripes: the variables of the label)",
+    fig.suptitle("Labels of the labelled cells (bar stripes: the variables of the label)",
                  fontsize=10)
     return fig
