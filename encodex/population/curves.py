@@ -92,7 +92,7 @@ def response_arrays(fit, design, y: np.ndarray, bin_size: float, covariates: dic
             out[f"{name}__grid_x"], out[f"{name}__grid_y"] = r.grid
         else:
             out[f"{name}__grid"] = r.grid
-        out[f"{name}__log_modulation"] = r.log_gain
+        out[f"{name}__log_modulation"] = r.log_modulation
         out[f"{name}__se"] = r.se
         # mean over bins of exp(eta - f): the rate with this term's own effect taken out
         out[f"{name}__baseline_hz"] = np.asarray(float(np.mean(np.exp(eta - parts[name]))))
