@@ -70,3 +70,19 @@ def test_forced_paired_without_shared_cells_is_refused(tmp_path):
     with pytest.raises(SettingsError, match="paired comparison is impossible"):
         compare_environments(run, "arena_a", "arena_b", paired=True)
     assert not compare_environments(run, "arena_a", "arena_b").paired
+
+
+def test_variable_analysed_in_one_environment_is_not_compared(tmp_path):
+    import json
+
+    d = write_example_run(tmp_path / "fit", labels={
+        "u1": {"a": "position", "b": "position"}, "u2": {"a": "speed", "b": "none"},
+        "u3": {"a": "none", "b": "speed"}})
+    run_json = json.loads((d / "run.json").read_text())
+    run_json["environments"]["a"]["variables"] = ["position", "heading", "speed"]
+    run_json["environments"]["a"]["unavailable"] = {"distance": "no trials in the recording",
+                                                    "time": "no trials in the recording"}
+    (d / "run.json").write_text(json.dumps(run_json))
+    cmp = compare_environments(load_run(d), "a", "b")
+    assert set(cmp.variables["variable"]) == {"position", "heading", "speed"}
+    assert any("distance, time" in n for n in cmp.notes)

@@ -311,7 +311,15 @@ def compare_environments(
             f"drop --paired to compare the populations unpaired"
         )
     notes = []
-    names = list(variables_in(cells, run.tested_variables))
+    # a variable is compared only where it was analysed in both environments: one never
+    # analysed in an environment is not "0 % of cells" there
+    in_a, in_b = set(run.analysed_variables(a)), set(run.analysed_variables(b))
+    names = [v for v in variables_in(cells, run.tested_variables) if v in in_a and v in in_b]
+    left_out = [v for v in variables_in(cells, run.tested_variables)
+                if (v in in_a) != (v in in_b)]
+    if left_out:
+        notes.append(f"Not compared, analysed in only one of the two environments: "
+                     f"{', '.join(left_out)}.")
     rows, tests = [], []
     if paired:
         la = ok_a.loc[common, "variables"]
