@@ -15,7 +15,6 @@ import matplotlib.pyplot as plt
 import numpy as np
 import pandas as pd
 from matplotlib.patches import Rectangle
-from matplotlib.ticker import MaxNLocator
 
 from encodex.classic import (
     MIN_OCCUPANCY_S,
@@ -129,12 +128,12 @@ def _observed_map(arrays: dict):
         np.asarray(ey)
 
 
-def _map_axes(ax, fig, image, extent, vmax, title, arrays) -> None:
+def _map_axes(ax, fig, image, extent, vmax, title, arrays, bar: str = "rate (Hz)") -> None:
     cmap = plt.get_cmap("viridis").with_extremes(bad="white")
     im = ax.imshow(np.ma.masked_invalid(image), origin="lower", cmap=cmap, extent=extent,
                    aspect="equal", interpolation="nearest", vmin=0, vmax=vmax)
     cb = fig.colorbar(im, ax=ax, fraction=0.046, pad=0.04)
-    cb.set_label("rate (Hz)")
+    cb.set_label(bar)
     ex, ey = arrays.get("ratemap__edges_x"), arrays.get("ratemap__edges_y")
     if ex is not None and ey is not None:
         ax.add_patch(Rectangle((ex[0], ey[0]), ex[-1] - ex[0], ey[-1] - ey[0], fill=False,
@@ -159,10 +158,12 @@ def _draw_maps(axes, fig, arrays: dict, fitted: bool) -> None:
     vmax = _map_vmax(fit_img, None if obs is None else obs[0])
     k = 0
     if fitted:
-        _map_axes(axes[k], fig, fit_img, _centres_extent(gx, gy), vmax,
-                  "position: model" + ("" if in_hz else " (rate factor)"), arrays)
-        axes[k].set_title("position: model", color=variable_colour("position"),
-                          fontweight="bold")
+        # one colour scale for both maps when both are in Hz (old files: factor, own scale)
+        _map_axes(axes[k], fig, fit_img, _centres_extent(gx, gy),
+                  vmax if in_hz else _map_vmax(fit_img),
+                  "position: model", arrays, "rate (Hz)" if in_hz else "rate factor")
+        axes[k].title.set_color(variable_colour("position"))
+        axes[k].title.set_fontweight("bold")
         k += 1
     if obs is not None:
         rates, ex, ey = obs

@@ -99,12 +99,13 @@ def cell_figure(run: RunFolder, unit: str, environment: str):
     m = run.models
     m = m[(m["unit"].astype(str) == str(unit)) & (m["environment"].astype(str) ==
                                                   str(environment))]
-    n_top = len(response_terms(arrays)) + int("ratemap__spikes" in arrays) + 1
     ok = row["status"] == "ok"
-    fig = plt.figure(figsize=(max(3.5 * max(n_top, 3), 9.5), 7.4 if ok else 3.6),
-                     layout="constrained")
+    n_top = (len(response_terms(arrays)) if ok else 0) + int("ratemap__spikes" in arrays)
+    size = (max(3.5 * max(n_top, 3), 9.5), 7.4) if ok else (max(4.6 * n_top, 6.0), 3.8)
+    fig = plt.figure(figsize=size, layout="constrained")
     draw_cell(fig, row, arrays, m)
-    what = (f"label {row['variables']}" if ok else f"not labelled ({row['status']})")
+    what = (f"label {row['variables']}" if ok else
+            f"not labelled ({row['status']})\n{row['reason']}")
     gain = row["bits_per_spike"]
     fig.suptitle(
         f"unit {unit} in {environment}: {what}, {int(row['n_spikes'])} spikes"

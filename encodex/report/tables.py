@@ -355,25 +355,42 @@ def to_latex(df: pd.DataFrame, caption: str = "", label: str = "", long: bool = 
     ``long=True`` writes a ``longtable`` (needs ``\\usepackage{longtable}``) that breaks
     across pages and repeats its header, for tables with one row per cell.
     """
-    spec = "".join("r" if pd.api.types.is_numeric_dtype(df[c]) else "l" for c in df.columns)
-    head = " & ".join(latex_escape(c) for c in df.columns) + r" \\"
+    spec = "".join("r" if _numeric_column(df[c]) else "l" for c in df.columns)
+    if long:
+        # long headers wrap in a narrow paragraph cell so that 12 columns fit a page
+        head = " & ".join(latex_escape(c) if len(str(c)) <= 12 else
+                          r"\multicolumn{1}{p{1.7cm}}{" + latex_escape(c) + "}"
+                          for c in df.columns) + r" \\"
+    else:
+        head = " & ".join(latex_escape(c) for c in df.columns) + r" \\"
     body = [" & ".join(latex_escape(x) for x in row) + r" \\"
             for row in df.itertuples(index=False)]
     cap = (r"\caption{" + latex_escape(caption) + "}") if caption else ""
     lab = (r"\label{" + label + "}") if label else ""
     if long:
-        lines = [r"\begin{longtable}{" + spec + "}"]
+        lines = [r"\begingroup\small\setlength{\tabcolsep}{3pt}",
+                 r"\begin{longtable}{" + spec + "}"]
         if cap or lab:
             lines.append(cap + lab + r" \\")
         lines += [r"\toprule", head, r"\midrule", r"\endfirsthead",
                   r"\toprule", head, r"\midrule", r"\endhead",
-                  r"\bottomrule", r"\endlastfoot", *body, r"\end{longtable}"]
+                  r"\bottomrule", r"\endlastfoot", *body, r"\end{longtable}", r"\endgroup"]
         return "\n".join(lines) + "\n"
     lines = [r"\begin{table}[htbp]", r"\centering"]
     lines += [x for x in (cap, lab) if x]
     lines += [r"\begin{tabular}{" + spec + "}", r"\toprule", head, r"\midrule", *body,
               r"\bottomrule", r"\end{tabular}", r"\end{table}"]
     return "\n".join(lines) + "\n"
+
+
+def _numeric_column(col: pd.Series) -> bool:
+    """Numbers, or text that reads as numbers (blanks allowed): right-aligned."""
+    if pd.api.types.is_numeric_dtype(col):
+        return True
+    vals = [str(x) for x in col if str(x) != ""]
+    if not vals:
+        return False
+    return pd.to_numeric(pd.Series(vals), errors="coerce").notna().all()
 
 
 def cells_display(df: pd.DataFrame) -> pd.DataFrame:
