@@ -228,7 +228,7 @@ def _draw_params(rng, box):
     }
 
 
-def _log_gain(variables, p, beh, rows):
+def _log_modulation(variables, p, beh, rows):
     g = np.zeros(rows.size)
     if "position" in variables:
         d2 = (beh.pos[rows, 0] - p["field_x"]) ** 2 + (beh.pos[rows, 1] - p["field_y"]) ** 2
@@ -397,7 +397,7 @@ def simulate_recording(
                 spikes = np.zeros(0)
                 mean_rate = 0.0
             else:
-                g = np.exp(_log_gain(variables, p, beh, rows))
+                g = np.exp(_log_modulation(variables, p, beh, rows))
                 rate = rate_target * g / g.mean()
                 spikes = _thin(rng, beh.t[rows], rate)
                 mean_rate = rate_target

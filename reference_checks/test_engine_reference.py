@@ -290,13 +290,13 @@ def test_response_function_recovers_simulated_tuning():
     assert fit.converged
     r = fit.response("heading")
     truth = heading_true(r.grid) - np.mean(heading_true(cov["heading"]))
-    assert np.sqrt(np.mean((r.log_gain - truth) ** 2)) < 0.15
+    assert np.sqrt(np.mean((r.log_modulation - truth) ** 2)) < 0.15
     # The band covers the truth at most points (nominal 95%, pointwise).
     covered = np.mean((r.lower <= truth) & (truth <= r.upper))
     assert covered > 0.8
     # Untuned terms shrink to almost nothing.
     assert fit.edf["speed"] < 2.5
-    assert np.max(np.abs(fit.response("speed").log_gain)) < 0.15
+    assert np.max(np.abs(fit.response("speed").log_modulation)) < 0.15
     # Sum-to-zero terms: the intercept is the mean log rate over the bins (exp of it is the
     # geometric mean rate), i.e. log 7 + mean of the true log gain; 0.05 allows for the
     # Poisson noise of ~9,800 spikes (s.e. of a log rate 0.01) plus smoothing bias.

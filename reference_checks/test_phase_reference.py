@@ -77,14 +77,14 @@ def test_phase_locked_cells_are_recovered():
         fit = fit_poisson(design, y, offset=np.log(s.bin_size))
         assert fit.converged
         r = fit.response("phase", n=360)
-        peak = r.grid[np.argmax(r.log_gain)]
-        centroid = np.angle(np.sum(np.exp(r.log_gain) * np.exp(1j * r.grid)))
+        peak = r.grid[np.argmax(r.log_modulation)]
+        centroid = np.angle(np.sum(np.exp(r.log_modulation) * np.exp(1j * r.grid)))
         assert _err(peak, row.pref_phase_rad) < 0.3, (row.unit, peak, row.pref_phase_rad)
         assert _err(centroid, row.pref_phase_rad) < 0.15, (row.unit, centroid)
         # the modulation is real: peak-to-trough log gain near 2 * kappa
-        assert np.ptp(r.log_gain) > row.phase_kappa
+        assert np.ptp(r.log_modulation) > row.phase_kappa
     # an untuned cell of the same session shows no such modulation
     y0 = s.unit_counts(0)[rows]
     assert truth.loc[truth.unit == s.unit_ids[0], "variables"].iloc[0] != "phase"
     fit0 = fit_poisson(design, y0, offset=np.log(s.bin_size))
-    assert np.ptp(fit0.response("phase", n=360).log_gain) < 0.5
+    assert np.ptp(fit0.response("phase", n=360).log_modulation) < 0.5

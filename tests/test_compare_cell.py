@@ -73,4 +73,4 @@ def test_shuffle_control_separates_tuned_and_untuned(data):
     assert a.final_fit is not None and b.final_fit is None
     r = a.final_fit.response("heading")
     # The fitted tuning peaks near the true preferred heading (2 rad).
-    assert abs(r.grid[np.argmax(r.log_gain)] - 2.0) < 0.4
+    assert abs(r.grid[np.argmax(r.log_modulation)] - 2.0) < 0.4

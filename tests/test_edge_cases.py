@@ -104,7 +104,7 @@ def _finite_fit(res, unit, env="open"):
     assert fit.converged or fit.reason.strip()
     for name in fit.names:
         r = fit.response(name)
-        assert np.isfinite(r.log_gain).all() and np.isfinite(r.se).all()
+        assert np.isfinite(r.log_modulation).all() and np.isfinite(r.se).all()
     return fit
 
 
@@ -146,7 +146,7 @@ def test_corner_field_visited_a_handful_of_times(result):
         fit = _finite_fit(res, "corner")
         r = fit.response("position")
         gx, gy = r.grid
-        iy, ix = np.unravel_index(np.argmax(r.log_gain), r.log_gain.shape)
+        iy, ix = np.unravel_index(np.argmax(r.log_modulation), r.log_modulation.shape)
         assert abs(gx[ix] - CORNER[0]) < 0.2 and abs(gy[iy] - CORNER[1]) < 0.2
 
 
@@ -157,8 +157,8 @@ def test_cell_firing_only_while_still_carries_speed(result):
     fit = _finite_fit(res, "still_only")
     r = fit.response("speed")
     # Highest gain at the slowest speeds, far lower when running.
-    slow = r.log_gain[r.grid <= np.quantile(r.grid, 0.1)].mean()
-    fast = r.log_gain[r.grid >= np.quantile(r.grid, 0.9)].mean()
+    slow = r.log_modulation[r.grid <= np.quantile(r.grid, 0.1)].mean()
+    fast = r.log_modulation[r.grid >= np.quantile(r.grid, 0.9)].mean()
     assert slow - fast > 2.0
 
 
@@ -171,7 +171,7 @@ def test_perfectly_separable_heading_gives_finite_fit(result):
     assert np.abs(fit.theta).max() < 1e3
     inside = (r.grid > 0.02) & (r.grid < np.pi / 8 - 0.02)
     outside = (r.grid > np.pi / 2) & (r.grid < 3 * np.pi / 2)
-    assert r.log_gain[inside].min() - r.log_gain[outside].max() > 2.0
+    assert r.log_modulation[inside].min() - r.log_modulation[outside].max() > 2.0
 
 
 def test_rates_of_one_hundredth_and_one_hundred_hz(result):
@@ -188,7 +188,7 @@ def test_rates_of_one_hundredth_and_one_hundred_hz(result):
     assert tuned["status"] == "ok" and tuned["variables"] == "heading", dict(tuned)
     fit = _finite_fit(res, "fast_100hz_heading")
     r = fit.response("heading")
-    assert abs(np.angle(np.exp(1j * (r.grid[np.argmax(r.log_gain)] - 2.0)))) < 0.3
+    assert abs(np.angle(np.exp(1j * (r.grid[np.argmax(r.log_modulation)] - 2.0)))) < 0.3
 
 
 def test_constant_variables_dropped_in_one_environment_with_a_reason(result):

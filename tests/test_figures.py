@@ -32,10 +32,11 @@ def test_cell_figure_position_and_speed(run, tmp_path):
     labels = _labels(fig)
     assert "x (m)" in labels and "y (m)" in labels
     assert "speed (m/s)" in labels
-    assert "held-out gain over mean rate (bits/spike)" in labels
-    assert "observed rate (Hz)" in labels
-    # colour bars of the fitted map and of the rate map carry their units
-    assert "gain (x mean rate)" in labels and "rate (Hz)" in labels
+    # the selection path: held-out gain of each step per fold, p-value against its level
+    assert "held-out gain of\nthe step (bits/spike)" in labels and "p-value" in labels
+    # curves and both maps (with their colour bars) are in Hz; no rate multiplier left
+    assert labels.count("rate (Hz)") >= 3
+    assert not any("gain (x" in lab for lab in labels)
     assert any("statistical statements at alpha = 0.05" in t.get_text() for t in fig.texts)
     titles = " ".join(ax.get_title() for ax in fig.axes)
     assert "Skaggs" in titles and "bits/spike" in titles
@@ -43,8 +44,20 @@ def test_cell_figure_position_and_speed(run, tmp_path):
     speed_ax = next(ax for ax in fig.axes if ax.get_xlabel() == "speed (m/s)")
     assert len(speed_ax.collections) >= 1
     # the position map is an image with the arena outline drawn on top
-    pos_ax = next(ax for ax in fig.axes if ax.get_title() == "position: fitted map")
+    pos_ax = next(ax for ax in fig.axes if ax.get_title() == "position: model")
     assert len(pos_ax.images) == 1 and len(pos_ax.patches) == 1
+    # fitted and observed maps share the colour map and the colour scale
+    obs_ax = next(ax for ax in fig.axes if ax.get_title().startswith("observed, unsmoothed"))
+    assert obs_ax.images[0].get_cmap().name == pos_ax.images[0].get_cmap().name
+    assert obs_ax.images[0].get_clim() == pos_ax.images[0].get_clim()
+    # each variable has its colour, the same in every cell
+    from encodex.report.palette import variable_colour
+
+    assert speed_ax.lines[-1].get_color() == variable_colour("speed")
+    other = cell_figure(run, "u05", "arena_a")  # speed alone
+    sp = next(ax for ax in other.axes if ax.get_xlabel() == "speed (m/s)")
+    assert sp.lines[-1].get_color() == variable_colour("speed")
+    plt.close(other)
     files = save_figure(fig, tmp_path / "cell")
     plt.close(fig)
     assert [p.suffix for p in files] == [".png", ".pdf"]
@@ -57,22 +70,20 @@ def test_heading_axis_in_radians_and_excluded_cell(run):
     assert "heading (rad)" in _labels(fig)
     plt.close(fig)
     fig = cell_figure(run, "u09", "arena_a")  # too few spikes: no response panel
-    text = " ".join(t.get_text() for ax in fig.axes for t in ax.texts)
-    assert "too few spikes" in text
+    assert "not labelled (too few spikes)" in fig.get_suptitle()
+    assert not any(ax.get_ylabel() == "p-value" for ax in fig.axes)  # no selection path
     plt.close(fig)
     with pytest.raises(InputError, match="not in cells.csv"):
         cell_figure(run, "nope", "arena_a")
 
 
-def test_population_figure_counts(run):
+def test_population_figure_percentages(run):
     fig = population_figure(run.cells, run.alpha)
-    bars = fig.axes[0].containers
-    assert len(bars) == 2  # one bar series per environment
-    heights = {env: sorted(int(r.get_height()) for r in c)
-               for env, c in zip(("arena_a", "arena_b"), bars)}
-    ok = run.cells[run.cells["status"] == "ok"]
-    assert sum(heights["arena_a"]) == (ok["environment"] == "arena_a").sum()
-    assert fig.axes[0].get_ylabel() == "cells"
+    assert len(fig.axes) == 2  # one panel per environment
+    for ax in fig.axes:
+        widths = [p.get_width() for c in ax.containers for p in c]
+        assert sum(widths) == pytest.approx(100.0)  # percent of the classified cells
+        assert ax.get_xlabel().startswith("% of labelled cells")
     assert any("not proof of mechanism" in t.get_text() for t in fig.texts)
     plt.close(fig)
 

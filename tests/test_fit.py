@@ -60,7 +60,7 @@ def test_barely_visited_corner_stays_finite():
     assert np.all(np.isfinite(fit.theta))
     assert fit.converged, fit.reason
     r = fit.response("position", n=20)
-    assert np.all(np.isfinite(r.log_gain)) and np.all(np.isfinite(r.se))
+    assert np.all(np.isfinite(r.log_modulation)) and np.all(np.isfinite(r.se))
     # The corner has wide uncertainty compared to the visited centre.
     assert r.se[-1, -1] > 3 * r.se[5, 5]
 
@@ -74,7 +74,7 @@ def test_perfectly_separable_heading_is_finite_with_penalty_and_flagged_without(
     fit = fit_poisson(design, y, np.log(DT))
     assert np.all(np.isfinite(fit.theta))
     assert fit.converged, fit.reason
-    peak = fit.response("heading").grid[np.argmax(fit.response("heading").log_gain)]
+    peak = fit.response("heading").grid[np.argmax(fit.response("heading").log_modulation)]
     assert 1.0 <= peak <= 1.5
     unpenalised = fit_poisson(design, y, np.log(DT), lambdas=np.zeros(1))
     assert np.all(np.isfinite(unpenalised.theta))

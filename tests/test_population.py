@@ -85,7 +85,7 @@ def test_output_folder_contract(first_run, session):
                     "ratemap__edges_y"} <= keys
             assert z["ratemap__spikes"].sum() <= c["n_spikes"]
             for v in c["variables"].split("+") if c["variables"] != "none" else []:
-                assert z[f"{v}__log_gain"].shape == z[f"{v}__grid"].shape == z[f"{v}__se"].shape
+                assert z[f"{v}__log_modulation"].shape == z[f"{v}__grid"].shape == z[f"{v}__se"].shape
 
 
 def test_python_result_matches_files(first_run):

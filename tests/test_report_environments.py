@@ -11,20 +11,20 @@ from encodex.report.testing import write_example_run
 
 def test_response_correlation_one_dimensional_and_circular():
     g = np.linspace(0, 0.5, 30)
-    a = {"speed__grid": g, "speed__log_gain": np.sin(6 * g)}
+    a = {"speed__grid": g, "speed__log_modulation": np.sin(6 * g)}
     assert response_correlation(a, a, "speed") == pytest.approx(1.0)
-    b = {"speed__grid": g, "speed__log_gain": -np.sin(6 * g)}
+    b = {"speed__grid": g, "speed__log_modulation": -np.sin(6 * g)}
     assert response_correlation(a, b, "speed") == pytest.approx(-1.0)
     # B sampled on another grid covering only part of A's range: compared on the overlap
     g2 = np.linspace(0.1, 0.4, 50)
-    c = {"speed__grid": g2, "speed__log_gain": np.sin(6 * g2)}
+    c = {"speed__grid": g2, "speed__log_modulation": np.sin(6 * g2)}
     assert response_correlation(a, c, "speed") > 0.99
     # heading: a tuning curve rotated by pi is anti-correlated, wrap-around handled
     h = np.linspace(0, 2 * np.pi, 36, endpoint=False)
-    ha = {"heading__grid": h, "heading__log_gain": np.cos(h - 0.2)}
-    hb = {"heading__grid": h[::-1].copy(), "heading__log_gain": np.cos(h[::-1] - 0.2 - np.pi)}
+    ha = {"heading__grid": h, "heading__log_modulation": np.cos(h - 0.2)}
+    hb = {"heading__grid": h[::-1].copy(), "heading__log_modulation": np.cos(h[::-1] - 0.2 - np.pi)}
     assert response_correlation(ha, hb, "heading") == pytest.approx(-1.0, abs=1e-2)
-    flat = {"speed__grid": g, "speed__log_gain": np.zeros_like(g)}
+    flat = {"speed__grid": g, "speed__log_modulation": np.zeros_like(g)}
     assert np.isnan(response_correlation(a, flat, "speed"))
     assert np.isnan(response_correlation(a, {}, "speed"))
 
@@ -33,10 +33,10 @@ def test_response_correlation_position_maps():
     gx = np.linspace(0, 1, 20)
     xx, yy = np.meshgrid(gx, gx)
     field = np.exp(-((xx - 0.3) ** 2 + (yy - 0.6) ** 2) / 0.02)
-    a = {"position__grid_x": gx, "position__grid_y": gx, "position__log_gain": field}
+    a = {"position__grid_x": gx, "position__grid_y": gx, "position__log_modulation": field}
     assert response_correlation(a, a, "position") == pytest.approx(1.0)
     moved = np.exp(-((xx - 0.7) ** 2 + (yy - 0.2) ** 2) / 0.02)
-    b = {"position__grid_x": gx, "position__grid_y": gx, "position__log_gain": moved}
+    b = {"position__grid_x": gx, "position__grid_y": gx, "position__log_modulation": moved}
     assert response_correlation(a, b, "position") < 0.1  # a remapped field
 
 
@@ -70,3 +70,19 @@ def test_forced_paired_without_shared_cells_is_refused(tmp_path):
     with pytest.raises(SettingsError, match="paired comparison is impossible"):
         compare_environments(run, "arena_a", "arena_b", paired=True)
     assert not compare_environments(run, "arena_a", "arena_b").paired
+
+
+def test_variable_analysed_in_one_environment_is_not_compared(tmp_path):
+    import json
+
+    d = write_example_run(tmp_path / "fit", labels={
+        "u1": {"a": "position", "b": "position"}, "u2": {"a": "speed", "b": "none"},
+        "u3": {"a": "none", "b": "speed"}})
+    run_json = json.loads((d / "run.json").read_text())
+    run_json["environments"]["a"]["variables"] = ["position", "heading", "speed"]
+    run_json["environments"]["a"]["unavailable"] = {"distance": "no trials in the recording",
+                                                    "time": "no trials in the recording"}
+    (d / "run.json").write_text(json.dumps(run_json))
+    cmp = compare_environments(load_run(d), "a", "b")
+    assert set(cmp.variables["variable"]) == {"position", "heading", "speed"}
+    assert any("distance, time" in n for n in cmp.notes)

@@ -156,7 +156,7 @@ def test_pickles_planted_in_a_results_folder_are_never_executed(run_dir, tmp_pat
         arrays = {k: z[k] for k in z.files}
     trap = np.empty(1, dtype=object)
     trap[0] = _Trap(marker)
-    np.savez(victim, **{**arrays, "record__json": trap, "heading__log_gain": trap})
+    np.savez(victim, **{**arrays, "record__json": trap, "heading__log_modulation": trap})
     try:
         code = main(["report", str(shared), "--cell", "ok_unit", "plain", "--max-cells", "1"])
     except SystemExit as exc:

@@ -1,5 +1,6 @@
 """Tables for papers: files, formats, the caveat, exclusions and the methods paragraph."""
 
+import dataclasses
 import json
 
 import numpy as np
@@ -47,9 +48,24 @@ def test_written_formats(run, tmp_path):
     t = make_tables(run)
     files = write_tables(t, tmp_path / "tables")
     names = sorted(p.name for p in files)
-    assert names == sorted(f"table_{k}.{e}" for k in ("labels", "variables", "excluded", "cells")
-                           for e in ("csv", "md", "tex"))
-    assert "not proof of mechanism" in (tmp_path / "tables" / "README.txt").read_text()
+    assert names == sorted(["README.txt"] + [
+        f"table_{k}.{e}" for k in ("labels", "variables", "excluded", "not_analysed", "cells")
+        for e in ("csv", "md", "tex")])
+    readme = (tmp_path / "tables" / "README.txt").read_text()
+    assert "not proof of mechanism" in readme and "methods.txt" in readme
+    # every column of every CSV written is explained in README.txt
+    for f in (tmp_path / "tables").glob("table_*.csv"):
+        for col in pd.read_csv(f, nrows=0).columns:
+            assert col in readme, (f.name, col)
+    # the per-cell table: a longtable with unit-bearing headers and blanks, never "nan"
+    cells_tex = (tmp_path / "tables" / "table_cells.tex").read_text()
+    assert r"\begin{longtable}" in cells_tex and r"\endhead" in cells_tex
+    assert "nan" not in cells_tex.lower() and "Mean rate (Hz)" in cells_tex
+    assert "Held-out information (bits/spike)" in cells_tex
+    cells_md = (tmp_path / "tables" / "table_cells.md").read_text()
+    assert "nan" not in cells_md.lower()
+    u09 = next(line for line in cells_md.splitlines() if line.startswith("| u09 | arena_a"))
+    assert "| too few spikes |  |" in u09  # not labelled: empty label, not "none"
     back = pd.read_csv(tmp_path / "tables" / "table_labels.csv")
     np.testing.assert_allclose(back["percent"], t.labels["percent"])
     md = (tmp_path / "tables" / "table_variables.md").read_text()
@@ -64,6 +80,34 @@ def test_written_formats(run, tmp_path):
     body = tex.split(r"\midrule")[1].split(r"\bottomrule")[0].strip().splitlines()
     assert len(body) == len(t.labels)
     assert {row.count(" & ") for row in body} == {5}
+
+
+def test_variables_never_analysed_are_not_zero_percent(tmp_path):
+    d = write_example_run(tmp_path / "fit")
+    run_json = json.loads((d / "run.json").read_text())
+    run_json["environments"]["arena_a"] = {
+        "variables": ["position", "heading", "speed"],
+        "unavailable": {"distance": "no trials in the recording",
+                        "time": "no trials in the recording"}}
+    (d / "run.json").write_text(json.dumps(run_json))
+    run = load_run(d)
+    cells = run.cells.copy()
+    # u10 is labelled "distance" in arena_a by the example: drop it to mimic such a run
+    run = dataclasses.replace(run, cells=cells[~((cells["unit"] == "u10")
+                                                 & (cells["environment"] == "arena_a"))])
+    t = make_tables(run)
+    a = t.variables[t.variables["environment"] == "arena_a"]
+    assert set(a["variable"]) == {"position", "heading", "speed"}
+    b = t.variables[t.variables["environment"] == "arena_b"]
+    assert {"distance", "time"} <= set(b["variable"])  # analysed there
+    assert set(t.not_analysed["variable"]) == {"distance", "time"}
+    write_tables(t, tmp_path / "tables")
+    md = (tmp_path / "tables" / "table_variables.md").read_text()
+    assert "| arena_a | distance |" not in md and "| arena_a | time |" not in md
+    na = (tmp_path / "tables" / "table_not_analysed.md").read_text()
+    assert "| arena_a | distance | no trials in the recording |" in na
+    methods = methods_paragraph(run.run)
+    assert "Not analysed: distance in arena_a (no trials in the recording)" in methods
 
 
 def test_markdown_and_latex_escape_specials():
@@ -121,29 +165,30 @@ def test_methods_paragraph_states_settings_and_cites(run):
     for cite in ("Eilers & Marx 1996", "Wood 2011", "Hardcastle et al. 2017", "Wilcoxon 1945",
                  "Wilson 1927", "Benjamini & Hochberg 1995", "Skaggs et al. 1993"):
         assert cite in text
-    assert len(REFERENCES) == text.split("References")[1].count("\n- ")
+    cited = [c for c in REFERENCES if c in text.split("References")[0]]
+    assert len(cited) == text.split("References")[1].count("\n- ")
     assert "not proof of mechanism" in text
     # settings that change the text: exhaustive search and shuffles
     other = json.loads(json.dumps(run.run))
     other["settings"].update(exhaustive=True, shuffles=200, min_shift_s=20.0, alpha=0.01)
     t2 = methods_paragraph(other)
-    assert "exhaustive search" in t2 and "200 times" in t2 and "alpha = 0.01" in t2
+    assert "Every subset" in t2 and "200 times" in t2 and "alpha = 0.01" in t2
     assert "forward search" not in t2
     other["settings"]["correction"] = "bonferroni"
-    assert "Bonferroni-corrected" in methods_paragraph(other)
+    assert "(Bonferroni)" in methods_paragraph(other)
     other["settings"]["correction"] = "none"
     assert "without correction" in methods_paragraph(other)
 
 
 def test_cell_measures_put_skaggs_beside_the_model(run):
-    from encodex.classic import skaggs_information
+    from encodex.classic import MIN_OCCUPANCY_S, skaggs_information
 
     t = make_tables(run).cells
     assert len(t) == len(run.cells)
     row = t.set_index(["unit", "environment"]).loc[("u04", "arena_a")]
     arr = run.unit_arrays("arena_a", "u04")
     expected = skaggs_information(arr["ratemap__occupancy_s"], arr["ratemap__spikes"],
-                                  min_occupancy_s=0.1)
+                                  min_occupancy_s=MIN_OCCUPANCY_S)
     assert row["skaggs_bits_per_spike"] == pytest.approx(expected)
     assert row["peak_rate_hz"] > row["map_mean_rate_hz"] > 0
     # the example's place cells carry more spatial information than its speed cell

@@ -144,9 +144,9 @@ def test_a_bearing_tuned_cell_is_recovered(sim_session):
     design = build_design(cov, default_bases(cov, kinds=s2.kinds))
     fit = fit_poisson(design, y, offset=np.log(s.bin_size))
     r = fit.response("goal_bearing", n=360)
-    centroid = np.angle(np.sum(np.exp(r.log_gain) * np.exp(1j * r.grid)))
+    centroid = np.angle(np.sum(np.exp(r.log_modulation) * np.exp(1j * r.grid)))
     assert _err(centroid, pref) < 0.15
-    assert np.ptp(r.log_gain) == pytest.approx(2 * kappa, rel=0.3)
+    assert np.ptp(r.log_modulation) == pytest.approx(2 * kappa, rel=0.3)
 
 
 # --------------------------------------------------------------------------- files

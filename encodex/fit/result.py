@@ -25,34 +25,45 @@ class TermLayout:
 
 @dataclass(frozen=True)
 class Response:
-    """A term's fitted response: log gain relative to the mean rate, with a 95% band.
+    """A term's fitted response: the log of the factor by which it multiplies the rate.
 
-    For interval and circular terms ``grid`` is 1-D and ``log_gain`` and ``se`` have its
-    shape; for a planar term ``grid`` is ``(grid_x, grid_y)`` and ``log_gain`` has shape
-    ``(len(grid_y), len(grid_x))`` (rows along y, as an image).
+    ``log_modulation`` is the term's value (natural log). Each term sums to zero over the
+    bins it was fitted on, so a factor of 1 is the rate with the term at its average log
+    value, not the mean rate; :func:`encodex.population.curves.response_arrays` gives the
+    baseline in Hz that turns it into a rate.
 
-    The band is the pointwise Bayesian credible interval ``log_gain +- 1.96 se`` from the
+    For interval and circular terms ``grid`` is 1-D and ``log_modulation`` and ``se`` have
+    its shape; for a planar term ``grid`` is ``(grid_x, grid_y)`` and ``log_modulation`` has
+    shape ``(len(grid_y), len(grid_x))`` (rows along y, as an image).
+
+    The band is the pointwise Bayesian credible interval ``log_modulation +- 1.96 se`` from the
     posterior covariance ``(H + S_lambda)^{-1}`` (Wood 2017, sec. 6.10; Marra & Wood 2012,
     Scand. J. Stat. 39:53, who show its good frequentist coverage across the function).
     """
 
     variable: str
     grid: np.ndarray | tuple[np.ndarray, np.ndarray]
-    log_gain: np.ndarray
+    log_modulation: np.ndarray
     se: np.ndarray
 
     @property
     def lower(self) -> np.ndarray:
-        return self.log_gain - Z95 * self.se
+        return self.log_modulation - Z95 * self.se
 
     @property
     def upper(self) -> np.ndarray:
-        return self.log_gain + Z95 * self.se
+        return self.log_modulation + Z95 * self.se
 
     @property
-    def gain(self) -> np.ndarray:
-        """Multiplicative gain on the rate (1 = the mean rate)."""
-        return np.exp(self.log_gain)
+    def modulation(self) -> np.ndarray:
+        """Factor by which the term multiplies the rate (see the class docstring for its 1)."""
+        return np.exp(self.log_modulation)
+
+    @property
+    def log_gain(self) -> np.ndarray:
+        """Former name of :attr:`log_modulation`, kept for code written before the rename
+        ("gain" now means held-out information in bits per spike only)."""
+        return self.log_modulation
 
 
 @dataclass(frozen=True)
@@ -158,7 +169,7 @@ class PoissonFit:
         return np.exp(design.linear_predictor(self.theta_for(design), rows) + off)
 
     def response(self, name: str, grid=None, n: int | None = None) -> Response:
-        """Fitted log gain of term ``name`` on a grid, with its standard error.
+        """Fitted log modulation of term ``name`` on a grid, with its standard error.
 
         Parameters
         ----------

@@ -203,8 +203,9 @@ def _environment_work(session, env_name: str, settings: RunSettings,
         "n_bins_used": int(rows.size),
         "duration_s": float(rows.size * session.bin_size),
         "variables": list(variables),
+        # without --variables every variable was a candidate: say why each missing one is
         "unavailable": {v: r for v, r in session.unavailable_variables(env_name).items()
-                        if v in wanted},
+                        if settings.variables is None or v in settings.variables},
     }
     cov = {v: np.ascontiguousarray(np.asarray(session.covariates[v])[rows]) for v in
            set(variables) | ({"position"} & set(session.covariates))}
@@ -559,26 +560,57 @@ README = """encodex fit output
 
 cells.csv   one row per unit and environment:
   unit, environment, n_spikes, mean_rate_hz (spikes / usable time, Hz),
-  status ("ok" = labelled; otherwise "too few spikes", "no variables", "too few bins",
-          "error") and reason,
-  variables (the label: variables carried, in canonical order joined by "+", "none" when
-             none; empty when the cell was not labelled),
-  bits_per_spike (held-out log-likelihood gain of the chosen model over the mean-rate
-                  model, all held-out bins pooled, per held-out spike),
+  status ("ok" = labelled; otherwise "too few spikes" (cell not labelled), "no variables"
+          (nothing analysable in the environment), "too few bins", "error") and reason,
+  variables (the label: variables carried, in canonical order joined by "+"; "none" when
+             the cell was labelled and carries no variable; empty when not labelled),
+  bits_per_spike (held-out information: log-likelihood gain of the chosen model over the
+                  mean-rate model, base-2, all held-out bins of all folds pooled, per
+                  held-out spike; 0 for "none", whose chosen model is the mean rate),
   p_value (one-sided Wilcoxon signed-rank p of the chosen model against the mean-rate model
            across folds; for "none", that of the best single-variable model),
   gain_<variable> (held-out bits per spike that the variable adds to the chosen model, or
-                   that removing it costs when it is in the model; NaN if not analysed),
-  shuffle_p (empirical p of the held-out gain against circular shifts; NaN when off),
+                   that removing it costs when it is in the model, averaged over folds -
+                   the average the test works on, which weights folds equally and so can
+                   differ from the pooled bits_per_spike; empty if not analysed),
+  shuffle_p (empirical p of the held-out gain against circular shifts; empty when off),
   ambiguous_with (variables that a chosen variable cannot be told apart from in this
                   environment because their smooth terms overlap - concurvity of the
                   design >= 0.8, see encodex.compare.concurvity - ";"-separated),
-  pseudo_r2 (McFadden, held-out), deviance_explained (held-out), selection_path,
+  pseudo_r2 (McFadden, 1 - LL_model / LL_mean, held-out, pooled),
+  deviance_explained (1 - D_model / D_mean, held-out, pooled),
+  selection_path (the forward steps, e.g. "+position(p=0.002<0.0167) > xspeed(p=0.0244>=0.025)":
+                  "+" the step's best candidate was added, "x" it was rejected; p is its
+                  one-sided Wilcoxon signed-rank p-value across folds, shown against the
+                  step's level - alpha, divided by the step's number of candidates under the
+                  Bonferroni correction; a variable is added when p < level. With k folds
+                  the smallest attainable p is 2^-k (0.000977 for 10 folds), so a level below
+                  it can never be passed),
   tied_with (other models with as many variables that the chosen one does not beat
              significantly across folds, ";"-separated labels).
-models.csv  one row per unit, environment, model (label) and fold, with held-out scores.
-run.json    settings, package versions, timings, masked bins and dropped spikes.
-units/<environment>/<unit>.npz   response curves of the chosen model and the occupancy map.
+models.csv  one row per unit, environment, model (label) and fold: n_spikes_test (spikes in
+  the held-out fold), loglik_test (Poisson log-likelihood of the held-out bins, natural log,
+  nats, including the log y! term), bits_per_spike (held-out gain over the mean-rate model
+  fitted on the training folds, bits per held-out spike), pseudo_r2, deviance_explained.
+run.json    settings, reading options, package versions, timings, masked bins, dropped
+  spikes, and per environment the variables analysed and the reason each other was not.
+units/<environment>/<unit>.npz   arrays (no pickles) of one cell:
+  ratemap__occupancy_s, ratemap__spikes (seconds and spikes per spatial bin, rows y,
+    columns x), ratemap__edges_x, ratemap__edges_y (bin edges, m);
+  for each term <t> of the chosen model (any name: built-in, phase, user or nuisance term):
+    <t>__grid (planar: <t>__grid_x, <t>__grid_y), in the variable's unit;
+    <t>__log_modulation: natural log of the factor by which the term multiplies the rate;
+      each term sums to zero over the environment's bins, so factor 1 is NOT the mean rate;
+    <t>__se: its standard error (natural-log scale; 95% band = +-1.96 se);
+    <t>__baseline_hz: the rate (Hz) that factor 1 stands for - the model's rate averaged
+      over the bins with this term's own contribution removed - so that
+      baseline_hz * exp(log_modulation) is the term's partial-dependence rate in Hz;
+    1-D terms: <t>__edges (20 bins over the basis range), <t>__occupancy_s, <t>__spikes,
+      <t>__predicted_spikes (the model's expected spikes) per bin;
+  ratemap__predicted_spikes (the model's expected spikes per spatial bin);
+  record__json (the unit's table rows, used to resume);
+  shuffle__null_bits_per_spike (with --shuffles: held-out gain of each shifted train).
+checkpoint.json  settings and input fingerprint (refuses to mix runs).
 
 What a label means
 ------------------

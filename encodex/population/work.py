@@ -207,30 +207,36 @@ def _analyse_cell(env, unit, y, settings, n_spikes, rate, arrays):
         ambiguous_with=";".join(flagged),
         pseudo_r2=chosen_cv.pooled.pseudo_r2 if sel.chosen else 0.0,
         deviance_explained=chosen_cv.pooled.deviance_explained if sel.chosen else 0.0,
-        selection_path=" > ".join(
-            f"{'+' if s.accepted else 'x'}{label(set(s.best) - set(s.base))}(p={s.p_value:.3g})"
-            for s in sel.steps
-        ),
+        selection_path=selection_path(sel.steps, settings.alpha, settings.correction),
         tied_with=";".join(sel.ambiguous_with),
     )
     if a.final_fit is not None:
-        arrays.update(_responses(a.final_fit))
+        # the chosen model's terms, keys in one place (encodex.population.curves)
+        from encodex.population.curves import response_arrays
+
+        arrays.update(response_arrays(
+            a.final_fit, design, y, env.bin_size, env.covariates,
+            None if env.edges_x is None else (env.edges_x, env.edges_y)))
     if settings.shuffles:
         arrays["shuffle__null_bits_per_spike"] = a.shuffle_null
     return {"cell": row, "models": model_rows(a.models)}, arrays, a.final_fit
 
 
-def _responses(fit) -> dict:
-    out = {}
-    for name in fit.names:
-        r = fit.response(name)
-        if isinstance(r.grid, tuple):
-            out[f"{name}__grid_x"], out[f"{name}__grid_y"] = r.grid
-        else:
-            out[f"{name}__grid"] = r.grid
-        out[f"{name}__log_gain"] = r.log_gain
-        out[f"{name}__se"] = r.se
-    return out
+def selection_path(steps, alpha: float, correction: str) -> str:
+    """The forward steps as text: ``+position(p=0.002<0.0125) > xspeed(p=0.0244>=0.0167)``.
+
+    ``+`` a variable was added, ``x`` the step's best candidate was rejected; each p-value is
+    shown against the level of its step (alpha, divided by the step's number of candidates
+    under the Bonferroni correction).
+    """
+    out = []
+    for s in steps:
+        m = max(1, len(s.candidates))
+        level = alpha / m if correction == "bonferroni" else alpha
+        sign = "<" if s.p_value < level else ">="
+        out.append(f"{'+' if s.accepted else 'x'}{label(set(s.best) - set(s.base))}"
+                   f"(p={s.p_value:.3g}{sign}{level:.3g})")
+    return " > ".join(out)
 
 
 def _ratemap(env: EnvironmentWork, y: np.ndarray) -> dict:

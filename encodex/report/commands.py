@@ -62,8 +62,8 @@ def run_table(args) -> int:
     out = Path(args.out) if args.out else run.path / "tables"
     written = write_tables(tables, out)
     try:
-        (out / "methods.md").write_text(methods_markdown(run.run))
-        (out / "methods.txt").write_text(methods_paragraph(run.run))
+        (out / "methods.md").write_text(methods_markdown(run.run, level=args.level))
+        (out / "methods.txt").write_text(methods_paragraph(run.run, level=args.level))
     except OSError as exc:
         raise OutputError(f"cannot write the methods paragraph in {out} ({exc.strerror})")
     with pd.option_context("display.width", 200):

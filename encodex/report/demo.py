@@ -92,7 +92,7 @@ def demo(out, n_cells: int = 12, duration_s: float = 900.0, jobs: int = 2, seed:
     from encodex.report.figures import comparison_figure, population_figure, save_figure
     from encodex.report.html import build_report
     from encodex.report.load import load_run
-    from encodex.report.methods import methods_markdown
+    from encodex.report.methods import methods_markdown, methods_paragraph
     from encodex.report.tables import make_tables, to_markdown, display_frame, write_tables
     from encodex.simulate import simulate_to_files
 
@@ -125,6 +125,7 @@ def demo(out, n_cells: int = 12, duration_s: float = 900.0, jobs: int = 2, seed:
     tables = make_tables(run)
     write_tables(tables, fit_dir / "tables")
     (fit_dir / "tables" / "methods.md").write_text(methods_markdown(run.run))
+    (fit_dir / "tables" / "methods.txt").write_text(methods_paragraph(run.run))
     echo(to_markdown(display_frame(tables.variables, tables.level)))
     truth = pd.read_csv(files["truth"], dtype={"unit": str, "environment": str})
     rec = recovery_summary(run.cells, truth)

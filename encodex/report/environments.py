@@ -5,7 +5,7 @@ Paired comparison (cells recorded in both environments, matched by unit id):
 - transition table of labels (environment A in rows, B in columns);
 - per variable, McNemar's test on paired presence/absence, exact binomial form when fewer than
   25 discordant cells (Agresti 2013, Categorical Data Analysis, 3rd ed., sec. 11.1), with the
-  change in fractions and Newcombe's interval for a paired difference (Newcombe 1998b,
+  change in fractions and Newcombe's interval for a paired difference (Newcombe 1998c,
   method 10);
 - Wilcoxon signed-rank test on the paired held-out gains;
 - cells active in one environment and silent (too few spikes) in the other;
@@ -23,9 +23,9 @@ References
 ----------
 McNemar, Q. (1947). Psychometrika 12:153-157.
 Agresti, A. (2013). Categorical Data Analysis, 3rd ed. Wiley.
-Newcombe, R. G. (1998a). Interval estimation for the difference between independent
+Newcombe, R. G. (1998b). Interval estimation for the difference between independent
 proportions: comparison of eleven methods. Stat. Med. 17:873-890.
-Newcombe, R. G. (1998b). Improved confidence intervals for the difference between binomial
+Newcombe, R. G. (1998c). Improved confidence intervals for the difference between binomial
 proportions based on paired data. Stat. Med. 17:2635-2650.
 Wilcoxon, F. (1945). Individual comparisons by ranking methods. Biometrics Bull. 1:80-83.
 Benjamini, Y. & Hochberg, Y. (1995). Controlling the false discovery rate. J. R. Stat. Soc. B
@@ -115,7 +115,7 @@ def paired_difference_interval(
 ) -> tuple[float, float, float]:
     """Newcombe's hybrid score interval for a difference of paired proportions.
 
-    The difference is ``p_A - p_B = (a_only - b_only) / n``. Method 10 of Newcombe (1998b):
+    The difference is ``p_A - p_B = (a_only - b_only) / n``. Method 10 of Newcombe (1998c):
     Wilson intervals of each margin combined with the continuity-corrected phi coefficient.
 
     Returns
@@ -124,7 +124,7 @@ def paired_difference_interval(
 
     References
     ----------
-    Newcombe, R. G. (1998). Improved confidence intervals for the difference between binomial
+    Newcombe, R. G. (1998c). Improved confidence intervals for the difference between binomial
     proportions based on paired data. Stat. Med. 17:2635-2650 (method 10).
     """
     a, b, c, d = (int(x) for x in (both, a_only, b_only, neither))
@@ -150,7 +150,11 @@ def paired_difference_interval(
 
 
 def response_correlation(arrays_a: dict, arrays_b: dict, variable: str) -> float:
-    """Pearson correlation of a variable's fitted log gain between two environments.
+    """Pearson correlation of a variable's fitted response between two environments.
+
+    The response compared is ``<variable>__log_modulation`` of the unit files (natural log of
+    the factor by which the term multiplies the rate; its baseline does not matter to a
+    correlation).
 
     The B curve is interpolated onto the A grid points that lie in the range both grids
     cover (circular interpolation for angles). Position maps are compared bin by bin over the
@@ -163,7 +167,7 @@ def response_correlation(arrays_a: dict, arrays_b: dict, variable: str) -> float
         overlap.
     """
     if variable == "position":
-        keys = ("position__grid_x", "position__grid_y", "position__log_gain")
+        keys = ("position__grid_x", "position__grid_y", "position__log_modulation")
         if not all(k in arrays_a and k in arrays_b for k in keys):
             return float("nan")
         gxa, gya, la = (np.asarray(arrays_a[k], float) for k in keys)
@@ -177,7 +181,7 @@ def response_correlation(arrays_a: dict, arrays_b: dict, variable: str) -> float
         vb = interp(np.column_stack([yy.ravel(), xx.ravel()]))
         va = la.ravel()
     else:
-        g, lg = f"{variable}__grid", f"{variable}__log_gain"
+        g, lg = f"{variable}__grid", f"{variable}__log_modulation"
         if not all(k in arrays_a and k in arrays_b for k in (g, lg)):
             return float("nan")
         ga, va = np.asarray(arrays_a[g], float), np.asarray(arrays_a[lg], float)
@@ -307,7 +311,15 @@ def compare_environments(
             f"drop --paired to compare the populations unpaired"
         )
     notes = []
-    names = list(variables_in(cells, run.tested_variables))
+    # a variable is compared only where it was analysed in both environments: one never
+    # analysed in an environment is not "0 % of cells" there
+    in_a, in_b = set(run.analysed_variables(a)), set(run.analysed_variables(b))
+    names = [v for v in variables_in(cells, run.tested_variables) if v in in_a and v in in_b]
+    left_out = [v for v in variables_in(cells, run.tested_variables)
+                if (v in in_a) != (v in in_b)]
+    if left_out:
+        notes.append(f"Not compared, analysed in only one of the two environments: "
+                     f"{', '.join(left_out)}.")
     rows, tests = [], []
     if paired:
         la = ok_a.loc[common, "variables"]
@@ -526,7 +538,41 @@ def write_comparison(cmp: EnvironmentComparison, out_dir) -> list:
     md += ["## Per variable", "", to_markdown(summary_frame(cmp)), "",
            "## Held-out gains", "", to_markdown(cmp.gains.round(4)), ""]
     files[f"{stem}.md"] = "\n".join(md)
+    files["README.txt"] = COMPARISON_README.format(stem=stem, a=cmp.a, b=cmp.b)
     return write_texts(out, files)
+
+
+COMPARISON_README = """Comparison of environments written by `encodex compare` ({stem}_*)
+==================================================================
+
+A = {a}, B = {b}. Only labelled cells (status "ok") enter; "paired" means matched by unit id.
+Percentages and fractions are of the labelled cells of an environment.
+
+{stem}_variables.csv   one row per variable analysed in A or B:
+  n_a, n_b (labelled cells), carry_a, carry_b (cells carrying the variable),
+  fraction_a, fraction_b (carry / n, 0-1) with ci_low_*, ci_high_* (95% Wilson),
+  change_b_minus_a (fraction B - fraction A) with change_ci_low, change_ci_high (Newcombe's
+  interval: paired method 10 of Newcombe 1998c, or independent proportions, Newcombe 1998b),
+  both, a_only, b_only, neither (paired cells by presence in A and B; empty if unpaired),
+  test (McNemar exact / chi-square, or Fisher / chi-square unpaired), statistic, p_value,
+  p_adjusted (Benjamini-Hochberg over every test of this comparison), significant
+  (rejected by the Benjamini-Hochberg procedure at the comparison's alpha).
+{stem}_gains.csv       the test of held-out information (cells.csv bits_per_spike, bits per
+  spike) between environments: test (Wilcoxon signed-rank paired, Mann-Whitney U unpaired),
+  n_a, n_b, median_a_bits_per_spike, median_b_bits_per_spike,
+  median_change_bits_per_spike (paired: median of B - A over the cells; unpaired: median
+  of B minus median of A; a cell labelled "none" counts with 0), statistic, p_value,
+  p_adjusted, significant.
+{stem}_activity.csv    cells labelled in one environment and "too few spikes" in the other:
+  unit, active_in, silent_in, label_when_active, n_spikes_active, n_spikes_silent.
+{stem}_stability.csv   one row per paired cell and variable carried in both environments:
+  unit, variable, correlation (Pearson correlation, -1..1, of the fitted response
+  <variable>__log_modulation in A and B over the values both cover; position maps bin by
+  bin; empty when a curve is flat or fewer than 3 points overlap).
+{stem}_tests.csv       the family of tests: test, p_value, p_adjusted, significant.
+{stem}_transitions.csv (paired only) label in A (rows) by label in B (columns), cell counts.
+{stem}.md              a readable summary of the above.
+"""
 
 
 def summary_frame(cmp: EnvironmentComparison) -> pd.DataFrame:

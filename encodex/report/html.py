@@ -25,8 +25,14 @@ from encodex.report.figures import (
     population_figure,
 )
 from encodex.report.load import RunFolder, load_run, setting
-from encodex.report.methods import methods_paragraph, REFERENCES
-from encodex.report.tables import display_frame, make_tables
+from encodex.report.methods import methods_paragraph, methods_references
+from encodex.report.tables import (
+    cells_display,
+    display_frame,
+    excluded_display,
+    make_tables,
+    not_analysed_display,
+)
 from encodex.report.wording import label_caveat
 
 __all__ = ["build_report", "render_report"]
@@ -47,6 +53,7 @@ table.data{border-collapse:collapse;font-size:.88em;margin:8px 0 14px}
 table.data th{background:#eef2f6;text-align:left}
 table.data th,table.data td{border:1px solid #d5dbe2;padding:3px 8px}
 table.data tr:nth-child(even) td{background:#fafbfc}
+.scroll{overflow-x:auto;max-width:100%}
 img.fig{max-width:100%;height:auto;border:1px solid #eef0f3;margin:6px 0}
 .cell{border-top:1px dashed #cfd6de;padding-top:8px;margin-top:14px}
 pre{background:#f1f3f5;padding:10px;overflow-x:auto;font-size:.85em}
@@ -60,7 +67,7 @@ def _table(df: pd.DataFrame, caption: str = "") -> str:
     body = df.to_html(index=False, classes="data", border=0, na_rep="", escape=True,
                       float_format=lambda x: f"{x:.4g}")
     cap = f"<p class='small'>{html.escape(caption)}</p>" if caption else ""
-    return cap + body
+    return cap + f"<div class='scroll'>{body}</div>"
 
 
 def _img(fig, alt: str) -> str:
@@ -134,12 +141,16 @@ def render_report(run: RunFolder, between=None, max_cells: int = 30,
     for env in envs:
         sub = cells[cells["environment"] == env]
         ok = sub[sub["status"] == "ok"]
+        tuned = ok[ok["variables"] != "none"]
         summary_rows.append({
-            "environment": env, "units": len(sub), "classified": len(ok),
-            "carry at least one variable": int((ok["variables"] != "none").sum()),
-            "not classified": int((sub["status"] != "ok").sum()),
-            "median held-out gain (bits/spike)": float(np.nanmedian(pd.to_numeric(
-                ok["bits_per_spike"], errors="coerce"))) if len(ok) else np.nan,
+            "environment": env, "units": len(sub), "labelled": len(ok),
+            "carry at least one variable": len(tuned),
+            "labelled none": len(ok) - len(tuned),
+            "not labelled": int((sub["status"] != "ok").sum()),
+            # "none" cells have the mean-rate model (0 by construction): not in the median
+            "median held-out information of cells carrying a variable (bits/spike)":
+                float(np.nanmedian(pd.to_numeric(tuned["bits_per_spike"], errors="coerce")))
+                if len(tuned) else np.nan,
         })
     parts = [
         "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
@@ -161,17 +172,22 @@ def render_report(run: RunFolder, between=None, max_cells: int = 30,
         _table(pd.DataFrame(summary_rows)), "</section>",
         "<section id='tables'><h2>Tables</h2>",
         "<h3>Cells per label</h3>",
-        _table(display_frame(tables.labels), "Percent of classified cells with 95% Wilson "
-               "score intervals; gain is the held-out gain of the chosen model."),
+        _table(display_frame(tables.labels), "Percent of labelled cells with 95% Wilson "
+               "score intervals; held-out information of the chosen model (all held-out "
+               "bins pooled), blank for 'none'."),
         "<h3>Cells per variable (a cell can carry several)</h3>",
-        _table(display_frame(tables.variables)),
-        "<h3>Cells not classified</h3>", _table(tables.excluded),
+        _table(display_frame(tables.variables), "Only variables analysed in the "
+               "environment; gain of the variable averaged over folds."),
+        "<h3>Variables not analysed</h3>", _table(not_analysed_display(tables.not_analysed)),
+        "<h3>Cells not labelled</h3>", _table(excluded_display(tables.excluded)),
         "<h3>Every cell: model beside classic measures</h3>",
-        _table(tables.cells, "Held-out gain of the chosen model and Skaggs spatial information "
-               "(bits/spike), peak and mean rate of the occupancy-normalised map (Hz)."),
+        _table(cells_display(tables.cells), "Held-out information of the chosen model and "
+               "Skaggs spatial information (bias-corrected and plug-in) in bits/spike; peak "
+               "and mean rate of the unsmoothed occupancy-normalised map (Hz). Blank: not "
+               "labelled (see Status) or not available."),
         f"<p class='small'>{html.escape(caveat)}</p></section>",
         "<section id='population'><h2>Population</h2>",
-        _img(population_figure(cells, alpha), "cells per combination of variables"),
+        _img(population_figure(cells, alpha), "percent of labelled cells per label"),
         "</section>",
         "<section id='compare'><h2>Comparing environments</h2>",
     ]
@@ -217,7 +233,7 @@ def render_report(run: RunFolder, between=None, max_cells: int = 30,
         "<section id='methods'><h2>Methods</h2>",
         f"<p>{html.escape(methods_paragraph(run.run, with_references=False))}</p>",
         "<h3>References</h3><ul>",
-        *[f"<li>{html.escape(r)}</li>" for r in REFERENCES.values()],
+        *[f"<li>{html.escape(r)}</li>" for r in methods_references(run.run)],
         "</ul></section>",
         "<section id='settings'><h2>Settings (run.json)</h2>",
         f"<pre>{html.escape(json.dumps(run.run, indent=2, default=str))}</pre></section>",

@@ -75,6 +75,33 @@ class RunFolder:
             v = [x.strip() for x in v.split(",") if x.strip()]
         return tuple(v) if v else None
 
+    def analysed_variables(self, environment: str) -> tuple[str, ...]:
+        """Variables analysed in an environment (run.json ``environments``), canonical order.
+
+        Folders without that record fall back to the ``variables`` setting, then to every
+        variable that appears in a label or a ``gain_<v>`` column with a value there.
+        """
+        envs = self.run.get("environments")
+        if isinstance(envs, dict) and isinstance(envs.get(environment), dict) \
+                and "variables" in envs[environment]:
+            return tuple(envs[environment]["variables"])
+        if self.tested_variables:
+            return self.tested_variables
+        from encodex.variables import canonical_order
+
+        sub = self.cells[self.cells["environment"] == environment]
+        seen = {v for lab in sub["variables"] for v in carried(lab)}
+        seen |= {c[5:] for c in sub.columns if c.startswith("gain_")
+                 and pd.to_numeric(sub[c], errors="coerce").notna().any()}
+        return canonical_order(seen)
+
+    def unavailable_variables(self, environment: str) -> dict[str, str]:
+        """Variables not analysed in an environment with the reason (run.json), if recorded."""
+        envs = self.run.get("environments")
+        if isinstance(envs, dict) and isinstance(envs.get(environment), dict):
+            return dict(envs[environment].get("unavailable") or {})
+        return {}
+
     @property
     def alpha(self) -> float:
         """Significance level of the model comparison recorded in ``run.json`` (default 0.05)."""
@@ -105,11 +132,18 @@ class RunFolder:
         try:
             with np.load(f, allow_pickle=False) as z:
                 # the fit stage may add a JSON record; only arrays of the contract matter here
-                return {k: z[k] for k in z.files if "__" in k and not k.startswith("record__")}
+                return {_current_key(k): z[k] for k in z.files
+                        if "__" in k and not k.startswith("record__")}
         except (ValueError, OSError) as exc:
             raise FileFormatError(
                 f"{f} is not a readable npz file ({exc}); re-run `encodex fit` for this unit"
             ) from None
+
+
+def _current_key(key: str) -> str:
+    """Key of a unit array in today's naming: folders written before the rate factor had its
+    own name stored it as ``<term>__log_gain`` (same numbers, natural log)."""
+    return key[:-len("__log_gain")] + "__log_modulation" if key.endswith("__log_gain") else key
 
 
 def _plain_part(name) -> bool:
@@ -194,7 +228,8 @@ def load_run(path: str | Path) -> RunFolder:
         path / "cells.csv", CELL_COLUMNS,
         ("unit", "environment", "n_spikes", "status", "variables", "bits_per_spike"),
     )
-    cells["variables"] = cells["variables"].astype(object).fillna("none").astype(str)
+    # cells that were not labelled have an empty label, never "none" (a statement about a cell)
+    cells["variables"] = cells["variables"].astype(object).fillna("").astype(str)
     cells["status"] = cells["status"].astype(object).fillna("").astype(str)
     cells["reason"] = cells["reason"].astype(object).fillna("").astype(str)
     models = _read_csv(

@@ -42,8 +42,8 @@ def _curve(var: str, rng: np.random.Generator, shift: float = 0.0) -> dict[str, 
         cx, cy = rng.uniform(0.3, 0.7, 2)
         xx, yy = np.meshgrid(gx, gy)
         lg = 1.5 * np.exp(-((xx - cx - shift) ** 2 + (yy - cy) ** 2) / (2 * 0.1**2)) - 0.3
-        return {"position__grid_x": gx, "position__grid_y": gy, "position__log_gain": lg,
-                "position__se": np.full_like(lg, 0.1)}
+        return {"position__grid_x": gx, "position__grid_y": gy, "position__log_modulation": lg,
+                "position__se": np.full_like(lg, 0.1), "position__baseline_hz": np.asarray(1.5)}
     if var == "heading":
         g = np.linspace(0, 2 * np.pi, 36, endpoint=False)
         mu = rng.uniform(0, 2 * np.pi) + shift
@@ -52,7 +52,8 @@ def _curve(var: str, rng: np.random.Generator, shift: float = 0.0) -> dict[str, 
         hi = {"speed": 0.5, "distance": 2.0, "time": 10.0}.get(var, 1.0)
         g = np.linspace(0, hi, 30)
         lg = np.linspace(-0.5, 0.5, 30) * (1 + shift)
-    return {f"{var}__grid": g, f"{var}__log_gain": lg, f"{var}__se": np.full_like(g, 0.08)}
+    return {f"{var}__grid": g, f"{var}__log_modulation": lg, f"{var}__se": np.full_like(g, 0.08),
+            f"{var}__baseline_hz": np.asarray(2.0)}
 
 
 def write_example_run(
@@ -138,11 +139,18 @@ def write_example_run(
             np.savez(d / f"{unit}.npz", **arrays)
     pd.DataFrame(cells, columns=list(CELL_COLUMNS)).to_csv(path / "cells.csv", index=False)
     pd.DataFrame(models, columns=list(MODEL_COLUMNS)).to_csv(path / "models.csv", index=False)
+    envs = list(dict.fromkeys(e for per_env in labels.values() for e in per_env))
     run = {
         "settings": {"bin_size": 0.02, "folds": folds, "seed": seed, "alpha": alpha,
                      "variables": list(VARIABLES), "min_spikes": 100, "exhaustive": False,
                      "shuffles": 0},
         "versions": {"encodex": "0.1.0"},
+        "input": "example.nwb",
+        "session": {"bin_size_s": 0.02, "environments": envs,
+                    "summary": {"heading_source": "compass", "settings": {
+                        "speed_smoothing_s": 0.2, "max_gap_s": 0.5,
+                        "heading_speed_threshold": 0.03}, "masked_bins": {"tracking_gap": 10}}},
+        "environments": {e: {"variables": list(VARIABLES), "unavailable": {}} for e in envs},
         "timings": {"total_s": 1.0},
         "masked_bins": {"no position": 10},
         "dropped_spikes": 0,
