@@ -91,3 +91,25 @@ def test_default_selection_ends_at_a_stationary_point(problem):
 def test_out_of_range_fit_options_are_refused(field, value):
     with pytest.raises(SettingsError, match=field):
         FitOptions(**{field: value})
+
+
+# Fellner-Schall sends a smoothing parameter whose term looks unused straight to its bound and
+# keeps it there; the criterion is flat there (gradient ~1/lambda), so a small gradient is no
+# sign of an optimum. Started with the heading term smoothed away (lambda 1e9), Fellner-Schall
+# alone stays stranded; the default selection must walk back to the cold start's optimum.
+def test_term_stranded_on_the_plateau_is_recovered(problem):
+    import dataclasses
+
+    design, y, _ = problem
+    cold = fit_poisson(design, y, np.log(DT))
+    k = 2  # the heading penalty (position x, position y, heading, speed)
+    stranded = dataclasses.replace(cold, lambdas=np.where(np.arange(4) == k, 1e9, cold.lambdas))
+    fs = fit_poisson(design, y, np.log(DT), start=stranded, options=FitOptions(max_newton=0))
+    assert fs.edf["heading"] < cold.edf["heading"] - 0.3
+    assert fs.laml < cold.laml - 1e-3
+    fit = fit_poisson(design, y, np.log(DT), start=stranded)
+    assert fit.converged, fit.reason
+    assert fit.laml == pytest.approx(cold.laml, abs=1e-6)
+    # The speed lambda (index 3) is on a genuine plateau (linear truth, edf 1): not determined.
+    np.testing.assert_allclose(fit.lambdas[:3], cold.lambdas[:3], rtol=0.01)
+    assert fit.edf["heading"] == pytest.approx(cold.edf["heading"], abs=0.005)

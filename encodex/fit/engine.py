@@ -248,7 +248,7 @@ def _select_smoothness(design, y, offset, mask, structure, theta0, warm, options
     iteration", Wood 2017, sec. 6.12.1, here with the Fellner-Schall update).
 
     Returns (lambdas, theta, rounds, newton steps, last change in log lambda, mu, Gram
-    matrix, (lower, upper) bounds of lambda), mu and the Gram matrix at the returned theta
+    matrix, (lower, upper, start) values of lambda), mu and the Gram matrix at the returned theta
     (the Gram matrix None when the last one was formed at an earlier theta and reused).
     """
     solver = PenalisedPoissonNewton(design, y, offset, np.zeros((design.n_theta,) * 2), mask,
@@ -313,11 +313,14 @@ def _select_smoothness(design, y, offset, mask, structure, theta0, warm, options
             gram = solver.gram(mu)
             eta_at_gram = eta
     fresh = eta_at_gram is eta
-    return lam, theta, rounds, rounds, change, mu, (gram if fresh else None), (lower, upper)
+    return lam, theta, rounds, rounds, change, mu, (gram if fresh else None), (lower, upper, init)
 
 
 #: Largest change of any log lambda in one Newton step of the selection's second phase.
 MAX_LOG_STEP = 2.0
+
+#: Curvature ``-d2V/drho^2`` below which the criterion counts as flat in a direction.
+PLATEAU_CURVATURE = 1e-2
 
 
 @dataclass(frozen=True)
@@ -352,6 +355,28 @@ def _solve_from_prediction(solver, res, delta):
     return solver.solve(res.theta, res.mu, res.gram)
 
 
+def _walk_off_plateau(newton, design, y, mask, structure, rho, start, plateau, res, value):
+    """Move the ``plateau`` log lambdas towards ``start`` in quarters while ``V`` rises.
+
+    Returns ``(lambdas, NewtonResult, V, newton iterations)`` of the best point, with
+    ``lambdas`` None if the first quarter already lowers ``V`` (the plateau is the optimum's
+    side: the term is smoothed away by the data).
+    """
+    best = (None, res, value)
+    n_iter = 0
+    for frac in (0.75, 0.5, 0.25, 0.0):
+        lam = np.exp(np.where(plateau, start + frac * (rho - start), rho))
+        here = best[1]
+        trial = newton(lam).solve(here.theta, here.mu, here.gram)
+        n_iter += trial.n_iter
+        trial_value = laml(poisson_loglik(y, trial.mu, mask), trial.theta, trial.gram, design,
+                           structure, lam)
+        if not (trial.converged and trial_value > best[2]):
+            break
+        best = (lam, trial, trial_value)
+    return (*best, n_iter)
+
+
 def _newton_finish(newton, design, y, mask, structure, lam, res, bounds, options) -> _Finish:
     """Newton steps on ``rho = log lambda`` from the Fellner-Schall start, to the optimum.
 
@@ -363,20 +388,39 @@ def _newton_finish(newton, design, y, mask, structure, lam, res, bounds, options
     re-solved exactly at every trial ``lambda`` (a trial whose solve did not converge counts
     as a failed one).
 
+    A smoothing parameter more than ``e`` times its start value, where ``V`` is flat
+    (curvature below :data:`PLATEAU_CURVATURE`) but still rises towards smaller lambda, is
+    walked back towards its start value once (:func:`_walk_off_plateau`).
+
     Stops when (a) every free ``|dV/drho_k| <= options.gradient_tol``, or (b) the step just
     taken moved no ``rho_k`` by more than ``options.step_tol``, or (c) no halving of the step
     increases ``V`` (the criterion is flat to rounding: "flat"), or (d) after
     ``options.max_newton`` steps ("limit", reported as not converged).
     """
-    lower, upper = np.log(bounds[0]), np.log(bounds[1])
+    lower, upper, start = (np.log(b) for b in bounds)
     value = laml(poisson_loglik(y, res.mu, mask), res.theta, res.gram, design, structure, lam)
     n_iter = 0
     gmax = np.inf
+    probed = np.zeros(lam.size, dtype=bool)
     for steps in range(options.max_newton):
         der = laml_derivatives(res.theta, mask * res.mu, res.gram, design, structure, lam)
         rho, g = np.log(lam), der.gradient
         held = ((rho >= upper - 1e-9) & (g >= 0)) | ((rho <= lower + 1e-9) & (g <= 0))
         free = ~held
+        # A term smoothed far beyond its start sits on a plateau of V (no curvature, gradient
+        # ~1/lambda) where a small gradient does not mean an optimum. If V still rises towards
+        # smaller lambda there, try the start value once (Fellner-Schall's jump to the bound
+        # can strand a term that the data do support).
+        plateau = (free & ~probed & (g < 0) & (rho > start + 1.0)
+                   & (-np.diag(der.hessian) <= PLATEAU_CURVATURE))
+        if plateau.any():
+            probed |= plateau
+            walked = _walk_off_plateau(newton, design, y, mask, structure, rho, start, plateau,
+                                       res, value)
+            n_iter += walked[3]
+            if walked[0] is not None:
+                lam, res, value = walked[:3]
+                continue
         gmax = float(np.max(np.abs(g[free]), initial=0.0))
         if gmax <= options.gradient_tol:
             return _Finish(lam, res, steps, n_iter, gmax, "gradient")
