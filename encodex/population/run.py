@@ -25,7 +25,8 @@ from encodex.population.checkpoint import (
 )
 from encodex.population.settings import RunSettings, stable_hash
 from encodex.population.work import (
-    PURPOSE_FOLDS, EnvironmentWork, UnitOutcome, analyse_unit, environment_design, stream,
+    PURPOSE_FOLDS, EnvironmentWork, SpikeColumn, UnitOutcome, analyse_unit, environment_design,
+    stream,
 )
 from encodex.variables import VARIABLES, canonical_order
 
@@ -409,15 +410,19 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
     counts = session.counts
     for name in session.environments:
         sub = counts[col_rows[name], :]
-        sub = sub.tocsc() if hasattr(sub, "tocsc") else sub
+        if not hasattr(sub, "tocsc"):
+            from scipy import sparse
+
+            sub = sparse.csc_array(np.asarray(sub))
+        sub = sub.tocsc()
         for unit in unit_ids:
             if out_path is not None:
                 rec = read_unit_record(unit_path(out_path, name, unit))
                 if rec is not None:
                     records[(name, unit)] = rec
                     continue
-            j = session.unit_index(unit)
-            y = np.asarray(sub[:, [j]].toarray()).ravel().astype(np.int64)
+            # Sent to the worker by its spike bins only (SpikeColumn), not bins-long.
+            y = SpikeColumn.from_csc(sub, session.unit_index(unit))
             tasks.append((envs[name], unit, y, rs))
 
     n_total = len(session.environments) * len(unit_ids)
