@@ -230,6 +230,91 @@ def line_search_counts(session, n_cells: int) -> dict:
             "share_of_cell_time": counts["seconds"] / total, "cells_seconds": total}
 
 
+# --- 4. single-precision X'WX (a lever of our own, measured here) ---------------------------
+_ROWS32: dict = {}
+
+
+def _gram_single(self, w, groups=None, n_groups=None):
+    """``Design.weighted_gram`` with the compact rows and each chunk's product in float32
+    (summed in float64): the Hessian alone is approximated; gradients and objectives stay
+    exact, so Newton still converges to the same optimum."""
+    from encodex.design.design import GRAM_CHUNK_ROWS
+
+    plan = self._base._gram_plan(groups)
+    rows32 = _ROWS32.get(id(plan))
+    if rows32 is None:
+        rows32 = _ROWS32[id(plan)] = plan.columns_by_row.astype(np.float32)
+    runs, width, spans = plan.layout_for(self)
+    n_out = 1 if groups is None else (int(np.max(groups)) + 1 if n_groups is None
+                                      else int(n_groups))
+    p = self.n_beta
+    out = np.zeros((n_out, p, p))
+    sw = np.sqrt(np.asarray(w, dtype=float)[plan.order]).astype(np.float32)
+    buf = np.empty((width, GRAM_CHUNK_ROWS), dtype=np.float32)
+    for r0, r1, gid, cols in runs:
+        if not sw[r0:r1].any():
+            continue
+        g = np.zeros((width, width))
+        for start in range(r0, r1, GRAM_CHUNK_ROWS):
+            stop = min(start + GRAM_CHUNK_ROWS, r1)
+            c = buf[:, :stop - start]
+            for lo, hi, at in spans:
+                np.multiply(rows32[lo:hi, start:stop], sw[start:stop], out=c[at:at + hi - lo])
+            g += c @ c.T
+        out[gid][np.ix_(cols, cols)] += g
+    out = self.Z.T @ out @ self.Z
+    return out[0] if groups is None else out
+
+
+def single_precision(session, n_cells: int) -> dict:
+    """Whole cells with the exact X'WX and with :func:`_gram_single`, interleaved."""
+    from encodex.design import Design
+    from encodex.population.run import _env_counts, _environment_work
+    from encodex.population.settings import RunSettings
+    from encodex.population.work import analyse_unit, environment_design
+
+    rs = RunSettings()
+    env, _ = _environment_work(session, session.environments[0], rs, "levers-f32")
+    design = environment_design(env)
+    exact = Design.weighted_gram
+    w = np.exp(np.random.default_rng(0).normal(-3.0, 0.5, design.n_rows))
+    g64, g32 = exact(design, w), _gram_single(design, w)
+    gram_err = float(np.max(np.abs(g32 - g64)) / np.max(np.abs(g64)))
+    t64 = median_ms(lambda: exact(design, w), 5)
+    t32 = median_ms(lambda: _gram_single(design, w), 5)
+    cells = []
+    for unit in session.unit_ids[:n_cells]:
+        y = _env_counts(session, env.name, unit, env)
+        res = {}
+        for mode in ("double", "single"):
+            Design.weighted_gram = exact if mode == "double" else _gram_single
+            try:
+                t0 = time.process_time()
+                oc = analyse_unit(env, unit, y, rs)
+                res[mode] = (time.process_time() - t0, oc)
+            finally:
+                Design.weighted_gram = exact
+        (c64, o64), (c32, o32) = res["double"], res["single"]
+        r64, r32 = o64.record["cell"], o32.record["cell"]
+        row = {"unit": unit, "label_double": r64["variables"], "label_single": r32["variables"],
+               "cpu_double": c64, "cpu_single": c32,
+               "bits_per_spike_diff": abs(float(r64["bits_per_spike"])
+                                          - float(r32["bits_per_spike"])),
+               "p_value_double": float(r64["p_value"]), "p_value_single": float(r32["p_value"])}
+        if o64.fit is not None and o32.fit is not None:
+            th64, th32 = o64.fit.theta, o32.fit.theta
+            row["theta_max_rel_diff"] = float(np.max(np.abs(th32 - th64)) / np.max(np.abs(th64)))
+            row["log_lambda_max_diff"] = float(np.max(np.abs(np.log(o32.fit.lambdas)
+                                                             - np.log(o64.fit.lambdas))))
+        cells.append(row)
+    cpu64 = sum(c["cpu_double"] for c in cells)
+    cpu32 = sum(c["cpu_single"] for c in cells)
+    return {"gram_ms_double": t64, "gram_ms_single": t32, "gram_ratio": t64 / t32,
+            "gram_max_rel_error": gram_err, "cells": cells,
+            "cpu_ratio_double_over_single": cpu64 / cpu32,
+            "labels_identical": all(c["label_double"] == c["label_single"] for c in cells)}
+
+
 def run(args) -> dict:
     from threadpoolctl import threadpool_limits
 
@@ -246,11 +331,12 @@ def run(args) -> dict:
                 for m in args.grid}
         multi = cells_per_pass(design, args.cells, args.repeats, rng)
         ls = line_search_counts(session, args.cells)
+        single = single_precision(session, args.cells) if args.single else None
     return {"benchmark": "levers",
             "date_utc": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
             "machine": _peers.machine(), "minutes": args.minutes, "n_rows": design.n_rows,
             "n_theta": design.n_theta, "discretisation": disc, "cells_per_pass": multi,
-            "line_search": ls}
+            "line_search": ls, "single_precision_gram": single}
 
 
 def table(r: dict) -> str:
@@ -276,6 +362,22 @@ def table(r: dict) -> str:
           f"{s['objective_evaluations']} objective evaluations "
           f"({s['evaluations_per_search']:.2f} per search), {s['share_of_cell_time']:.1%} of the "
           f"cells' {s['cells_seconds']:.1f} s"]
+    f = r["single_precision_gram"]
+    if f is not None:
+        L += ["", f"4. single-precision X'WX: {f['gram_ms_double']:.1f} ms -> "
+              f"{f['gram_ms_single']:.1f} ms ({f['gram_ratio']:.2f}x; max rel. error "
+              f"{f['gram_max_rel_error']:.1g}); whole cells CPU double/single "
+              f"{f['cpu_ratio_double_over_single']:.2f}; labels identical "
+              f"{f['labels_identical']}", "",
+              "| unit | label (double) | label (single) | CPU s double | single | "
+              "bits/spike diff | p double | p single | theta max rel diff | log lambda diff |",
+              "|---|---|---|---|---|---|---|---|---|---|"]
+        for c in f["cells"]:
+            L.append(f"| {c['unit']} | {c['label_double']} | {c['label_single']} | "
+                     f"{c['cpu_double']:.2f} | {c['cpu_single']:.2f} | "
+                     f"{c['bits_per_spike_diff']:.1g} | {c['p_value_double']:.3g} | "
+                     f"{c['p_value_single']:.3g} | {c.get('theta_max_rel_diff', float('nan')):.1g} "
+                     f"| {c.get('log_lambda_max_diff', float('nan')):.1g} |")
     return "\n".join(L)
 
 
@@ -287,6 +389,8 @@ def main(argv=None) -> int:
                     help="grid points per axis (default 100 300)")
     ap.add_argument("--repeats", type=int, default=7, help="timed repeats (default 7)")
     ap.add_argument("--seed", type=int, default=1, help="simulation seed (default 1)")
+    ap.add_argument("--single", action="store_true",
+                    help="also run whole cells with a single-precision X'WX (prototype)")
     ap.add_argument("--quick", action="store_true", help="10 min of data, 3 repeats")
     args = ap.parse_args(argv)
     if args.quick:
