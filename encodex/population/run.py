@@ -226,7 +226,8 @@ def _environment_work(session, env_name: str, settings: RunSettings,
     all_kinds = dict(getattr(session, "kinds", {}) or {})
     kinds = tuple(sorted((v, all_kinds[v]) for v in variables if v in all_kinds))
     work = EnvironmentWork(env_name, token, cov, variables, float(session.bin_size), fold,
-                           settings.folds, settings.basis_sizes, kinds, ex, ey, note)
+                           settings.folds, settings.basis_sizes, kinds, ex, ey, note,
+                           settings.gram_precision)
     return work, info
 
 

@@ -67,6 +67,8 @@ class EnvironmentWork:
         Spatial bins of the occupancy map (metres), None without position.
     note : str
         Why the environment cannot be analysed ("" when it can).
+    gram_precision : str
+        Arithmetic of the design's X'WX (:func:`encodex.design.build_design`).
     """
 
     name: str
@@ -81,6 +83,7 @@ class EnvironmentWork:
     edges_x: np.ndarray | None
     edges_y: np.ndarray | None
     note: str = ""
+    gram_precision: str = "double"
 
     @property
     def n_rows(self) -> int:
@@ -146,7 +149,7 @@ def environment_design(env: EnvironmentWork):
     cov = {v: env.covariates[v] for v in env.variables}
     bases = default_bases(cov, env.variables, sizes=dict(env.basis_sizes),
                           kinds=dict(env.kinds))
-    design = build_design(cov, bases)
+    design = build_design(cov, bases, gram_precision=env.gram_precision)
     _DESIGNS[env.token] = design
     while len(_DESIGNS) > 2:
         _DESIGNS.popitem(last=False)
