@@ -67,7 +67,7 @@ FULL_BINS = 180_000
 #: Targets of issue 6.
 TARGET_WALL_S = 600.0
 TARGET_MEMORY_MB = 4096.0
-TARGET_PEER_SPEEDUP = 20.0
+TARGET_PEER_SPEEDUP = 40.0   # issue 16 (was 20 in issue 6)
 TARGET_DASK_WITHIN = 0.15
 
 BIN_SIZE = 0.02
@@ -268,51 +268,71 @@ def peer(args) -> dict:
     splits = folds.splits()
     offset = float(np.log(env.bin_size))
     off = np.full(env.n_rows, offset)
-    labels, t_peer, t_lam, n_fits = {}, 0.0, 0.0, 0
+    libraries = tuple(args.peer_libraries)
+    fitters = {"glum": lambda A, X, y, S: _peers.fit_glum(X, y, offset, S)[0],
+               "numpy": lambda A, X, y, S: _peers.fit_numpy(
+                   A, y, offset, S, _peers.start_theta(y, offset, A.shape[1]))[0]}
+    labels = {lib: {} for lib in libraries}
+    t_peer = {lib: 0.0 for lib in libraries}
+    n_fits = {lib: 0 for lib in libraries}
+    t_lam = 0.0
     with threadpool_limits(limits=1):
         for unit in session.unit_ids:
             y = _env_counts(session, name, unit, env).astype(float)
             if y.sum() < rs.min_spikes:
-                labels[unit] = ""
+                for lib in libraries:
+                    labels[lib][unit] = ""
                 continue
+            lams = {}
 
-            def score(model, y=y):
-                nonlocal t_peer, t_lam, n_fits
-                if not model:
-                    return np.zeros(folds.k)
-                sub = design.subset(model)
-                t0 = time.perf_counter()
-                lam = np.asarray(fit_poisson(sub, y, off).lambdas, float)  # encodex's LAML
-                t1 = time.perf_counter()
-                t_lam += t1 - t0
-                # The straightforward pipeline: dense constrained design, one glum fit per fold.
-                A = _peers.constrained_dense(sub)
-                S = sub.penalty_matrix(lam)
-                bps = np.empty(folds.k)
-                for k, (train, test) in enumerate(splits):
-                    X = _peers.glum_design(A[train])
-                    theta, _ = _peers.fit_glum(X, y[train], offset, S)
-                    mu = np.exp(offset + A[test] @ theta)
-                    mu0 = mean_rate_counts(y[train], off[train], off[test])
-                    bps[k] = heldout_score(y[test], mu, mu0).bits_per_spike
-                    n_fits += 1
-                t_peer += time.perf_counter() - t1
-                return bps
+            def lambdas(model, y=y, lams=lams):
+                nonlocal t_lam
+                if model not in lams:
+                    t0 = time.perf_counter()
+                    lams[model] = np.asarray(fit_poisson(design.subset(model), y, off).lambdas,
+                                             float)  # encodex's LAML, charged to no one
+                    t_lam += time.perf_counter() - t0
+                return lams[model]
 
-            sel = select_variables(env.variables, score, alpha=rs.alpha,
-                                   correction=rs.correction)
-            labels[unit] = sel.label
-    out["peer"] = {"library": "glum", "seconds_fits": t_peer, "seconds_lambda_selection": t_lam,
-                   "n_fold_fits": n_fits, "labels": labels}
+            for lib in libraries:
+                def score(model, y=y, lib=lib):
+                    if not model:
+                        return np.zeros(folds.k)
+                    lam = lambdas(model)
+                    sub = design.subset(model)
+                    t1 = time.perf_counter()
+                    # The straightforward pipeline: dense constrained design, one fit per fold.
+                    A = _peers.constrained_dense(sub)
+                    S = sub.penalty_matrix(lam)
+                    bps = np.empty(folds.k)
+                    for k, (train, test) in enumerate(splits):
+                        At = A[train]
+                        X = _peers.glum_design(At) if lib == "glum" else None
+                        theta = fitters[lib](At, X, y[train], S)
+                        mu = np.exp(offset + A[test] @ theta)
+                        mu0 = mean_rate_counts(y[train], off[train], off[test])
+                        bps[k] = heldout_score(y[test], mu, mu0).bits_per_spike
+                        n_fits[lib] += 1
+                    t_peer[lib] += time.perf_counter() - t1
+                    return bps
+
+                sel = select_variables(env.variables, score, alpha=rs.alpha,
+                                       correction=rs.correction)
+                labels[lib][unit] = sel.label
+    out["peers"] = {lib: {"seconds_fits": t_peer[lib], "n_fold_fits": n_fits[lib],
+                          "labels": labels[lib]} for lib in libraries}
+    out["seconds_lambda_selection"] = t_lam
     out["comparison"] = {}
-    for mode in MODES:
-        same = all(enc[mode]["labels"][u] == labels[u] for u in labels)
-        out["comparison"][mode] = {
-            "labels_match": bool(same),
-            "speedup_vs_peer_fits": t_peer / enc[mode]["wall_s"],
-            "speedup_vs_peer_with_lambdas": (t_peer + t_lam) / enc[mode]["wall_s"],
-            "target_speedup_reached": bool(t_peer / enc[mode]["wall_s"] >= TARGET_PEER_SPEEDUP),
-        }
+    for lib in libraries:
+        for mode in MODES:
+            same = all(enc[mode]["labels"][u] == labels[lib][u] for u in labels[lib])
+            ratio = t_peer[lib] / enc[mode]["wall_s"]
+            out["comparison"][f"{lib}/{mode}"] = {
+                "labels_match": bool(same),
+                "speedup_vs_peer_fits": ratio,
+                "speedup_vs_peer_with_lambdas": (t_peer[lib] + t_lam) / enc[mode]["wall_s"],
+                "target_speedup_reached": bool(ratio >= TARGET_PEER_SPEEDUP),
+            }
     return out
 
 
@@ -324,19 +344,31 @@ def dask_vs_jobs(args, tmp: Path) -> dict:
     # tiny job (1 unit x 1 min) both ways, so that a steady-state ratio can be given too.
     tiny, _ = make_session(1, 60.0, args.seed)
     t_a = timed_run(tiny, tmp / "tiny_jobs", mode, jobs=JOBS)["wall_s"]
-    t_b = timed_run(tiny, tmp / "tiny_dask", mode, jobs=JOBS, cluster="local")["wall_s"]
     a = timed_run(session, tmp / "dask_jobs", mode, jobs=JOBS)
-    b = timed_run(session, tmp / "dask_local", mode, jobs=JOBS, cluster="local")
     ca = (tmp / "dask_jobs" / "cells.csv").read_bytes()
-    cb = (tmp / "dask_local" / "cells.csv").read_bytes()
-    ratio = a["wall_s"] / b["wall_s"]  # throughput(dask) / throughput(jobs)
-    return {"units": args.dask_units, "minutes": args.dask_minutes, "n_bins": int(session.n_bins),
-            "mode": mode, "jobs2": a, "dask_local2": b,
-            "throughput_ratio_dask_over_jobs": ratio,
-            "fixed_cost_s": {"jobs2": t_a, "dask_local2": t_b},
+    out = {"units": args.dask_units, "minutes": args.dask_minutes,
+           "n_bins": int(session.n_bins), "mode": mode, "jobs2": a,
+           "fixed_cost_s": {"jobs2": t_a}, "local": {}}
+    for w in args.dask_workers:
+        t_b = timed_run(tiny, tmp / f"tiny_dask{w}", mode, jobs=w, cluster="local")["wall_s"]
+        b = timed_run(session, tmp / f"dask_local{w}", mode, jobs=w, cluster="local")
+        cb = (tmp / f"dask_local{w}" / "cells.csv").read_bytes()
+        out["local"][str(w)] = {
+            **b, "fixed_cost_s": t_b,
+            # throughput(dask) / throughput(jobs=2)
+            "throughput_ratio_over_jobs2": a["wall_s"] / b["wall_s"],
             "throughput_ratio_without_fixed_cost": (a["wall_s"] - t_a) / (b["wall_s"] - t_b),
-            "target_within_reached": bool(ratio >= 1 - TARGET_DASK_WITHIN),
-            "cells_csv_identical": ca == cb}
+            "cells_csv_identical": ca == cb,
+        }
+    if "1" in out["local"] and "2" in out["local"]:
+        one, two = out["local"]["1"], out["local"]["2"]
+        out["scaling_2_over_1_workers"] = one["wall_s"] / two["wall_s"]
+        out["scaling_2_over_1_without_fixed_cost"] = ((one["wall_s"] - one["fixed_cost_s"])
+                                                      / (two["wall_s"] - two["fixed_cost_s"]))
+    if str(JOBS) in out["local"]:
+        r = out["local"][str(JOBS)]["throughput_ratio_over_jobs2"]
+        out["target_within_reached"] = bool(r >= 1 - TARGET_DASK_WITHIN)
+    return out
 
 
 # --------------------------------------------------------------------------------------------
@@ -393,15 +425,20 @@ def profile_unit(args) -> dict:
 def run(args) -> dict:
     wall0 = time.perf_counter()
     load0 = os.getloadavg()
+    parts = {}
     with tempfile.TemporaryDirectory(prefix="encodex-bench-pop-") as d:
         tmp = Path(d)
-        sc = scaling(args, tmp)
-        print("# peer ...", file=sys.stderr, flush=True)
-        pe = peer(args)
-        print("# dask ...", file=sys.stderr, flush=True)
-        da = dask_vs_jobs(args, tmp)
-    print("# profile ...", file=sys.stderr, flush=True)
-    pr = profile_unit(args)
+        if "scaling" in args.only:
+            parts["scaling"] = scaling(args, tmp)
+        if "peer" in args.only:
+            print("# peer ...", file=sys.stderr, flush=True)
+            parts["peer"] = peer(args)
+        if "dask" in args.only:
+            print("# dask ...", file=sys.stderr, flush=True)
+            parts["dask"] = dask_vs_jobs(args, tmp)
+    if "profile" in args.only:
+        print("# profile ...", file=sys.stderr, flush=True)
+        parts["profile"] = profile_unit(args)
     return {
         "benchmark": "population",
         "date_utc": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
@@ -413,7 +450,7 @@ def run(args) -> dict:
         "full_job": {"units": FULL_UNITS, "n_bins": FULL_BINS, "jobs": JOBS},
         "targets": {"wall_s": TARGET_WALL_S, "memory_mb": TARGET_MEMORY_MB,
                     "peer_speedup": TARGET_PEER_SPEEDUP, "dask_within": TARGET_DASK_WITHIN},
-        "scaling": sc, "peer": pe, "dask": da, "profile": pr,
+        **parts,
         "total_wall_seconds": time.perf_counter() - wall0,
     }
 
@@ -422,11 +459,18 @@ def table(res: dict) -> str:
     m = res["machine"]
     L = [f"population benchmark, {res['date_utc']}, {m['nproc']} CPUs ({m['cpu']}); load "
          f"average {m['loadavg_start'][0]:.2f} at start, {m['loadavg_end'][0]:.2f} at end; "
-         f"total {res['total_wall_seconds']:.0f} s", "",
-         "1. scaling (jobs=2, 10 folds, forward selection, LAML, 5 variables)", "",
+         f"total {res['total_wall_seconds']:.0f} s"]
+    for part, fmt in (("scaling", _table_scaling), ("peer", _table_peer), ("dask", _table_dask),
+                      ("profile", _table_profile)):
+        if part in res:
+            L += ["", *fmt(res[part])]
+    return "\n".join(L)
+
+
+def _table_scaling(sc: dict) -> list:
+    L = ["1. scaling (jobs=2, 10 folds, forward selection, LAML, 5 variables)", "",
          "| mode | units | min | bins | wall s | worker CPU s | us per unit-bin | peak RSS MB "
          "| load |", "|---|---|---|---|---|---|---|---|---|"]
-    sc = res["scaling"]
     for r in sc["runs"]:
         L.append(f"| {r['mode']} | {r['units']} | {r['minutes']:g} | {r['n_bins']} | "
                  f"{r['wall_s']:.1f} | {r['cpu_s_cells']:.1f} | {r['us_per_unit_bin']:.2f} | "
@@ -442,34 +486,53 @@ def table(res: dict) -> str:
                  f"10-min target {'MET' if p['target_wall_reached'] else 'NOT MET'}; peak memory "
                  + ("n/a" if mem is None else f"{mem:.0f} MB, 4-GB target "
                     f"{'MET' if p['target_memory_reached'] else 'NOT MET'}"))
-    pe = res["peer"]
-    L += ["", f"2. peer ({pe['units']} units x {pe['minutes']:g} min, {pe['n_bins']} bins, one "
+    return L
+
+
+def _table_peer(pe: dict) -> list:
+    L = [f"2. peer ({pe['units']} units x {pe['minutes']:g} min, {pe['n_bins']} bins, one "
           "process, one BLAS thread)", "",
-          "| unit | truth | glum pipeline | encodex refit | encodex one-step |",
-          "|---|---|---|---|---|"]
-    for u, lab in pe["peer"]["labels"].items():
-        L.append(f"| {u} | {pe['truth'].get(u, '')} | {lab} | {pe['encodex']['refit']['labels'][u]} "
+          "| unit | truth | " + " | ".join(f"{lib} pipeline" for lib in pe["peers"])
+          + " | encodex refit | encodex one-step |",
+          "|---|---|" + "---|" * len(pe["peers"]) + "---|---|"]
+    for u in pe["truth"]:
+        L.append(f"| {u} | {pe['truth'][u]} | "
+                 + " | ".join(p["labels"].get(u, "") for p in pe["peers"].values())
+                 + f" | {pe['encodex']['refit']['labels'][u]} "
                  f"| {pe['encodex']['one-step']['labels'][u]} |")
     L.append("")
-    L.append(f"glum: {pe['peer']['seconds_fits']:.1f} s for {pe['peer']['n_fold_fits']} fold fits "
-             f"(+ {pe['peer']['seconds_lambda_selection']:.1f} s of encodex LAML to get its "
+    for lib, p in pe["peers"].items():
+        L.append(f"{lib}: {p['seconds_fits']:.1f} s for {p['n_fold_fits']} fold fits")
+    L.append(f"(+ {pe['seconds_lambda_selection']:.1f} s of encodex LAML to get the peers' "
              "smoothing parameters, not charged)")
-    for mode, c in pe["comparison"].items():
-        L.append(f"encodex {mode}: {pe['encodex'][mode]['wall_s']:.1f} s; peer/encodex "
+    for key, c in pe["comparison"].items():
+        lib, mode = key.split("/")
+        L.append(f"{lib} vs encodex {mode}: {pe['encodex'][mode]['wall_s']:.1f} s; peer/encodex "
                  f"{c['speedup_vs_peer_fits']:.1f}x (target {TARGET_PEER_SPEEDUP:g}x: "
                  f"{'MET' if c['target_speedup_reached'] else 'NOT MET'}); labels match: "
                  f"{c['labels_match']}")
-    da = res["dask"]
-    L += ["", f"3. dask LocalCluster(2) vs jobs=2 ({da['units']} units x {da['minutes']:g} min, "
-          f"{da['mode']}): {da['dask_local2']['wall_s']:.1f} s vs {da['jobs2']['wall_s']:.1f} s; "
-          f"throughput ratio {da['throughput_ratio_dask_over_jobs']:.2f} (target >= "
-          f"{1 - TARGET_DASK_WITHIN:.2f}: {'MET' if da['target_within_reached'] else 'NOT MET'}); "
-          f"without the fixed cost of each (tiny 1-unit job: {da['fixed_cost_s']['dask_local2']:.1f} s "
-          f"vs {da['fixed_cost_s']['jobs2']:.1f} s) {da['throughput_ratio_without_fixed_cost']:.2f}; "
-          f"cells.csv identical: {da['cells_csv_identical']}; peak RSS "
-          f"{da['dask_local2']['peak_rss_mb']:.0f} MB vs {da['jobs2']['peak_rss_mb']:.0f} MB"]
-    pr = res["profile"]
-    L += ["", f"4. profile of one unit ({pr['unit']}, truth {pr['truth']}, {pr['minutes']:g} min), "
+    return L
+
+
+def _table_dask(da: dict) -> list:
+    L = [f"3. dask LocalCluster vs jobs=2 ({da['units']} units x {da['minutes']:g} min, "
+         f"{da['mode']}); jobs=2: {da['jobs2']['wall_s']:.1f} s, peak RSS "
+         f"{da['jobs2']['peak_rss_mb']:.0f} MB, fixed cost {da['fixed_cost_s']['jobs2']:.1f} s", "",
+         "| dask workers | wall s | fixed cost s | throughput / jobs=2 | without fixed cost "
+         "| peak RSS MB | cells.csv identical |", "|---|---|---|---|---|---|---|"]
+    for w, b in da["local"].items():
+        L.append(f"| {w} | {b['wall_s']:.1f} | {b['fixed_cost_s']:.1f} | "
+                 f"{b['throughput_ratio_over_jobs2']:.2f} | "
+                 f"{b['throughput_ratio_without_fixed_cost']:.2f} | {b['peak_rss_mb']:.0f} | "
+                 f"{b['cells_csv_identical']} |")
+    if "scaling_2_over_1_workers" in da:
+        L.append(f"throughput of 2 dask workers / 1 worker: {da['scaling_2_over_1_workers']:.2f} "
+                 f"({da['scaling_2_over_1_without_fixed_cost']:.2f} without the fixed cost)")
+    return L
+
+
+def _table_profile(pr: dict) -> list:
+    L = [f"4. profile of one unit ({pr['unit']}, truth {pr['truth']}, {pr['minutes']:g} min), "
           "share of the unit's time (cumulative, pieces nest: direction inside solver etc.)", ""]
     L.append("| piece | " + " | ".join(MODES) + " |")
     L.append("|---|" + "---|" * len(MODES))
@@ -477,13 +540,22 @@ def table(res: dict) -> str:
         L.append(f"| {k} | " + " | ".join(f"{pr[mo]['share'][k]:.1%}" for mo in MODES) + " |")
     L.append("| unit seconds (label, models) | " + " | ".join(
         f"{pr[mo]['seconds']:.1f} ({pr[mo]['label']}, {pr[mo]['n_models']})" for mo in MODES) + " |")
-    return "\n".join(L)
+    return L
 
 
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--quick", action="store_true", help="smoke run (about 2 minutes)")
     ap.add_argument("--seed", type=int, default=1, help="simulation seed (default 1)")
+    ap.add_argument("--peers", dest="peer_libraries", nargs="+", choices=("numpy", "glum"),
+                    default=["numpy", "glum"], help="peer pipelines to run (default both)")
+    ap.add_argument("--only", nargs="+", choices=("scaling", "peer", "dask", "profile"),
+                    default=["scaling", "peer", "dask", "profile"],
+                    help="parts to run (default all)")
+    ap.add_argument("--dask-workers", type=int, nargs="+", default=[JOBS],
+                    help="LocalCluster sizes to measure against jobs=2 (default 2)")
+    ap.add_argument("--dask-size", type=float, nargs=2, metavar=("UNITS", "MINUTES"),
+                    help="size of the dask job (default 20 units x 60 min; --quick 2 x 2)")
     args = ap.parse_args(argv)
     if args.quick:
         args.sizes = [(1, 2.0), (2, 2.0), (2, 1.0), (2, 4.0)]
@@ -499,6 +571,8 @@ def main(argv=None) -> int:
         args.peer_units, args.peer_minutes = 4, 5.0
         args.dask_units, args.dask_minutes = 20, 60.0
         args.profile_units, args.profile_minutes = 20, 60.0
+    if args.dask_size:
+        args.dask_units, args.dask_minutes = int(args.dask_size[0]), float(args.dask_size[1])
     res = run(args)
     return _peers.emit(res, table)
 

@@ -110,4 +110,10 @@ def test_sub_designs_share_the_base_plan_and_match_dense_products(names):
     np.testing.assert_allclose(sub.linear_predictors(theta), xz @ theta.T, atol=1e-12)
     np.testing.assert_allclose(sub.transpose_dot(r), xz.T @ r, atol=1e-10)
     by_group = sub.transpose_dot_groups(r, groups, 4)
-    np.testing.assert_allclose(by_group[2], xz[groups == 2].T @ r[groups == 2], atol=1e-10)
+    for k in range(4):
+        np.testing.assert_allclose(by_group[k], xz[groups == k].T @ r[groups == k], atol=1e-10)
+    # Left-out rows (negative group) and an empty group (5 of 6).
+    g2 = np.where(groups == 1, -1, groups)
+    by_group = sub.transpose_dot_groups(r, g2, 6)
+    for k in range(6):
+        np.testing.assert_allclose(by_group[k], xz[g2 == k].T @ r[g2 == k], atol=1e-10)

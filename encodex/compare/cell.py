@@ -33,6 +33,7 @@ from encodex.compare.folds import Folds
 from encodex.compare.scores import HeldOutScore, heldout_score, mean_rate_counts, pool_scores
 from encodex.compare.selection import Model, Selection, select_variables
 from encodex.errors import SettingsError
+from encodex.threads import single_threaded
 from encodex.variables import label
 
 
@@ -174,6 +175,7 @@ class CellAnalysis:
         return self.selection.label
 
 
+@single_threaded
 def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
                  variables, alpha: float = 0.05, exhaustive: bool = False,
                  shuffles: int = 0, min_shift_bins: int = 0,

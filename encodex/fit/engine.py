@@ -8,6 +8,7 @@ import numpy as np
 
 from encodex.design import Design
 from encodex.errors import InputError, SettingsError
+from encodex.threads import single_threaded
 
 from .result import (PoissonFit, TermLayout, log_factorial_sum, poisson_deviance,
                      poisson_loglik)
@@ -130,6 +131,7 @@ def _warm_lambdas(design: Design, start) -> np.ndarray | None:
     return np.array(out, dtype=float)
 
 
+@single_threaded
 def fit_poisson(design: Design, y, offset=0.0, lambdas=None, rows=None, start=None,
                 options: FitOptions | None = None) -> PoissonFit:
     """Fit a penalised Poisson GLM to spike counts.

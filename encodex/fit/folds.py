@@ -24,12 +24,14 @@ import numpy as np
 from scipy.special import gammaln
 
 from encodex.design import Design
+from encodex.threads import single_threaded
 
 from .engine import FitOptions, _posterior_covariance, fit_poisson
 from .result import PoissonFit
 from .solver import PenalisedPoissonNewton
 
 
+@single_threaded
 def refit_folds(design: Design, y, offset, full: PoissonFit, folds: np.ndarray, n_folds: int,
                 exact: bool = False, options: FitOptions | None = None,
                 heldout: bool = False):

@@ -101,7 +101,9 @@ class PoissonFit:
         Smoothness-selection updates: Fellner-Schall rounds plus Newton steps on log lambda
         (0 with fixed lambdas).
     offset : float or ndarray
-        Offset used in the fit.
+        Offset used in the fit; an array whose values are all equal (the usual log bin
+        width) is kept as that one number, so that a fit sent between processes or kept for
+        every cell of a population does not carry a bins-long array.
     """
 
     terms: tuple[TermLayout, ...]
@@ -117,6 +119,11 @@ class PoissonFit:
     n_iter: int
     n_outer: int
     offset: float | np.ndarray = field(repr=False, default=0.0)
+
+    def __post_init__(self):
+        off = self.offset
+        if np.ndim(off) == 1 and np.size(off) and np.all(off == off[0]):
+            object.__setattr__(self, "offset", float(off[0]))
 
     @property
     def names(self) -> tuple[str, ...]:

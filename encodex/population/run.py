@@ -27,7 +27,8 @@ from encodex.population.checkpoint import (
 from encodex.population.settings import RunSettings, stable_hash
 from encodex.population.summary import session_summary
 from encodex.population.work import (
-    PURPOSE_FOLDS, EnvironmentWork, UnitOutcome, analyse_unit, environment_design, stream,
+    PURPOSE_FOLDS, EnvironmentWork, SpikeColumn, UnitOutcome, analyse_unit, environment_design,
+    stream,
 )
 from encodex.variables import VARIABLES, canonical_order
 
@@ -228,7 +229,8 @@ def _environment_work(session, env_name: str, settings: RunSettings,
     all_kinds = dict(getattr(session, "kinds", {}) or {})
     kinds = tuple(sorted((v, all_kinds[v]) for v in variables if v in all_kinds))
     work = EnvironmentWork(env_name, token, cov, variables, float(session.bin_size), fold,
-                           settings.folds, settings.basis_sizes, kinds, ex, ey, note)
+                           settings.folds, settings.basis_sizes, kinds, ex, ey, note,
+                           settings.gram_precision)
     return work, info
 
 
@@ -426,15 +428,19 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
     counts = session.counts
     for name in session.environments:
         sub = counts[col_rows[name], :]
-        sub = sub.tocsc() if hasattr(sub, "tocsc") else sub
+        if not hasattr(sub, "tocsc"):
+            from scipy import sparse
+
+            sub = sparse.csc_array(np.asarray(sub))
+        sub = sub.tocsc()
         for unit in unit_ids:
             if out_path is not None:
                 rec = read_unit_record(unit_path(out_path, name, unit))
                 if rec is not None:
                     records[(name, unit)] = rec
                     continue
-            j = session.unit_index(unit)
-            y = np.asarray(sub[:, [j]].toarray()).ravel().astype(np.int64)
+            # Sent to the worker by its spike bins only (SpikeColumn), not bins-long.
+            y = SpikeColumn.from_csc(sub, session.unit_index(unit))
             tasks.append((envs[name], unit, y, rs))
 
     n_total = len(session.environments) * len(unit_ids)

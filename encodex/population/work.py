@@ -67,6 +67,8 @@ class EnvironmentWork:
         Spatial bins of the occupancy map (metres), None without position.
     note : str
         Why the environment cannot be analysed ("" when it can).
+    gram_precision : str
+        Arithmetic of the design's X'WX (:func:`encodex.design.build_design`).
     """
 
     name: str
@@ -81,10 +83,57 @@ class EnvironmentWork:
     edges_x: np.ndarray | None
     edges_y: np.ndarray | None
     note: str = ""
+    gram_precision: str = "double"
 
     @property
     def n_rows(self) -> int:
         return int(len(self.fold))
+
+
+@dataclass(frozen=True)
+class SpikeColumn:
+    """One unit's spike counts on an environment's usable bins, kept by their non-zero bins.
+
+    What a task carries to a worker instead of a bins-long int64 array: at a few Hz and
+    20 ms bins about a tenth of the bins hold a spike, so this is ~10x fewer bytes to pickle,
+    send and hold while the task waits (measured in benchmarks/RESULTS.md).
+
+    Attributes
+    ----------
+    n_rows : int
+        Number of bins.
+    bins : ndarray of int32 or int64
+        Bins with at least one spike, increasing.
+    counts : ndarray of unsigned int
+        Spike count of each of those bins (the narrowest type that holds the largest).
+    """
+
+    n_rows: int
+    bins: np.ndarray
+    counts: np.ndarray
+
+    @classmethod
+    def from_csc(cls, counts, j: int) -> "SpikeColumn":
+        """Column ``j`` of a ``scipy.sparse`` CSC matrix of counts (bins x units)."""
+        lo, hi = int(counts.indptr[j]), int(counts.indptr[j + 1])
+        n = int(counts.shape[0])
+        rows = np.asarray(counts.indices[lo:hi])
+        vals = np.asarray(counts.data[lo:hi])
+        keep = vals != 0
+        rows, vals = rows[keep], vals[keep]
+        order = np.argsort(rows, kind="stable")
+        top = int(vals.max()) if vals.size else 0
+        ctype = np.min_scalar_type(max(top, 0))
+        if vals.size and (np.any(vals < 0) or np.any(vals != np.round(vals))):
+            ctype = np.float64  # left for the fit stage to reject with its own message
+        itype = np.int32 if n < 2**31 else np.int64
+        return cls(n, rows[order].astype(itype), vals[order].astype(ctype))
+
+    def toarray(self) -> np.ndarray:
+        """Counts of every bin, int64 (n_rows,) (repeated bins are summed)."""
+        out = np.zeros(self.n_rows, dtype=np.int64 if self.counts.dtype.kind == "u" else float)
+        np.add.at(out, self.bins, self.counts)
+        return out
 
 
 _DESIGNS: OrderedDict = OrderedDict()
@@ -100,7 +149,7 @@ def environment_design(env: EnvironmentWork):
     cov = {v: env.covariates[v] for v in env.variables}
     bases = default_bases(cov, env.variables, sizes=dict(env.basis_sizes),
                           kinds=dict(env.kinds))
-    design = build_design(cov, bases)
+    design = build_design(cov, bases, gram_precision=env.gram_precision)
     _DESIGNS[env.token] = design
     while len(_DESIGNS) > 2:
         _DESIGNS.popitem(last=False)
@@ -141,8 +190,9 @@ def analyse_unit(env: EnvironmentWork, unit: str, y: np.ndarray,
 
     # CPU time of this (single-threaded) worker: a fair cost even on a busy machine.
     start = time.process_time()
+    y = y.toarray() if isinstance(y, SpikeColumn) else np.asarray(y)
     with threadpool_limits(limits=1):
-        outcome = _analyse(env, unit, np.asarray(y), settings)
+        outcome = _analyse(env, unit, y, settings)
     rec, arrays, fit = outcome
     return UnitOutcome(env.name, unit, rec, arrays, fit, time.process_time() - start)
 

@@ -368,9 +368,11 @@ def _bases(m: MethodsInput):
 @register_sentence("fold_fits")
 def _smoothness(m: MethodsInput):
     text = ("Smoothing parameters were chosen by maximising the Laplace-approximate "
-            "restricted marginal likelihood (a REML-type criterion; Wood 2011), with the "
-            "generalised Fellner-Schall update alternated with Newton steps on the "
-            "coefficients (Wood & Fasiolo 2017)")
+            "restricted marginal likelihood (a REML-type criterion, unpenalised effects "
+            "integrated out; Wood 2011): generalised Fellner-Schall updates (Wood & Fasiolo "
+            "2017) gave the start and Newton steps on the log smoothing parameters, with the "
+            "exact gradient including the dependence of the Poisson weights on them (Wood "
+            "2011), reached the optimum")
     cites = ("Wood 2011", "Wood & Fasiolo 2017")
     ff = m.get("fold_fits")
     if ff == "one-step":
@@ -384,6 +386,16 @@ def _smoothness(m: MethodsInput):
     else:
         text += "."
     return Sentence(text, cites)
+
+
+@register_sentence("gram_precision")
+def _gram_precision(m: MethodsInput):
+    if m.get("gram_precision") != "single":
+        return None
+    return Sentence(
+        "The Hessian pieces of the Newton iterations were accumulated from single-precision "
+        "blocks summed in double precision; gradients and likelihoods were computed in double "
+        "precision, so the optima are those of the exact objective.", ())
 
 
 @register_sentence("responses")
