@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 
 from encodex.compare.folds import chunked_folds
+from encodex.compare.goodness import GOODNESS_COLUMNS, GOODNESS_STATEMENT
 from encodex.errors import EncodexError, InputError, SettingsError
 from encodex.population.checkpoint import (
     atomic_write_text, data_fingerprint, open_checkpoint, read_unit_record,
@@ -34,6 +35,7 @@ CELL_COLUMNS = (
     "unit", "environment", "n_spikes", "mean_rate_hz", "status", "reason", "variables",
     "bits_per_spike", "p_value", *(f"gain_{v}" for v in VARIABLES), "shuffle_p",
     "ambiguous_with", "pseudo_r2", "deviance_explained", "selection_path", "tied_with",
+    *GOODNESS_COLUMNS,
 )
 MODEL_COLUMNS = (
     "unit", "environment", "model", "fold", "n_spikes_test", "loglik_test", "bits_per_spike",
@@ -488,7 +490,8 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
                                   + (" divided by the number of candidates of the step "
                                      "(Bonferroni)" if rs.correction == "bonferroni" else "")
                                   + ("; every subset scored (exhaustive)"
-                                     if rs.exhaustive else ""))},
+                                     if rs.exhaustive else "")),
+                    "goodness_of_fit": GOODNESS_STATEMENT},
         "session": {
             "bin_size_s": float(session.bin_size),
             "n_bins": int(session.n_bins),
@@ -555,10 +558,20 @@ cells.csv   one row per unit and environment:
                   design >= 0.8, see encodex.compare.concurvity - ";"-separated),
   pseudo_r2 (McFadden, held-out), deviance_explained (held-out), selection_path,
   tied_with (other models with as many variables that the chosen one does not beat
-             significantly across folds, ";"-separated labels).
+             significantly across folds, ";"-separated labels),
+  goodness of fit of the chosen model (the mean-rate model for "none") on its held-out
+  predictions (encodex.compare.goodness): ks_distance (time-rescaling KS distance, with the
+  discrete-time correction), ks_critical (its 95% point), ks_within_band (True/False),
+  ks_intervals (rescaled intervals used), dispersion (Pearson statistic of held-out counts
+  in 1 s windows, 1 under the model; > 1 over-dispersed), dispersion_p, history_ratio
+  (observed / expected spike pairs within 0.05 s; > 1 bursts, < 1 refractoriness),
+  history_p. A cell outside the band, or with small dispersion_p or history_p, is not
+  described well by its model: its label still says which variables improved prediction,
+  but its response curves and gains are approximate.
 models.csv  one row per unit, environment, model (label) and fold, with held-out scores.
 run.json    settings, package versions, timings, masked bins and dropped spikes.
-units/<environment>/<unit>.npz   response curves of the chosen model and the occupancy map.
+units/<environment>/<unit>.npz   response curves of the chosen model, the occupancy map and
+            the KS curve (goodness__ks_uniform, goodness__ks_rescaled, goodness__ks_critical).
 
 What a label means
 ------------------
