@@ -38,6 +38,10 @@ def run_table(args) -> int:
     tables = make_tables(run, level=args.level)
     out = Path(args.out) if args.out else run.path / "tables"
     written = write_tables(tables, out)
+    from encodex.report.goodness import ALL_LABELS, fit_summary, write_fit_summary
+
+    fit = fit_summary(run.cells, level=args.level)
+    written += write_fit_summary(fit, out)
     try:
         (out / "methods.md").write_text(methods_markdown(run.run))
         (out / "methods.txt").write_text(methods_paragraph(run.run))
@@ -46,6 +50,9 @@ def run_table(args) -> int:
     with pd.option_context("display.width", 200):
         _out(to_markdown(display_frame(tables.variables, tables.level)))
     _out(tables.caveat)
+    for r in fit[fit["label"] == ALL_LABELS].itertuples(index=False):
+        _out(f"Goodness of fit, {r.environment}: {r.n_within_band} of {r.n_checked} classified "
+             f"cells inside the 95% KS band ({r.percent_within_band:.0f}%; table_goodness.md)")
     _out(f"\nwrote {len(written) + 2} files in {out} (CSV, Markdown, LaTeX tables; methods.md)")
     return 0
 

@@ -233,8 +233,8 @@ def cell_figure(run: RunFolder, unit: str, environment: str):
 
     Top row: the fitted response of each carried variable with its 95% band (position as a
     map with a colour bar and the arena outline) and the classic rate map with its Skaggs
-    information. Bottom row: held-out scores of every compared model (fold by fold) and the
-    observed versus predicted rate per spatial bin.
+    information. Bottom row: held-out scores of every compared model (fold by fold), the
+    observed versus predicted rate per spatial bin, and the KS plot of time rescaling.
 
     Returns
     -------
@@ -250,7 +250,7 @@ def cell_figure(run: RunFolder, unit: str, environment: str):
     arrays = run.unit_arrays(environment, unit) or {}
     vs = list(carried(row["variables"])) if row["status"] == "ok" else []
     n_top = max(1, len(vs)) + 1
-    fig = plt.figure(figsize=(3.6 * max(n_top, 2), 6.6), layout="constrained")
+    fig = plt.figure(figsize=(3.6 * max(n_top, 3), 6.6), layout="constrained")
     grid = fig.add_gridspec(2, max(n_top, 2))
     for i, v in enumerate(vs):
         ax = fig.add_subplot(grid[0, i])
@@ -265,13 +265,16 @@ def cell_figure(run: RunFolder, unit: str, environment: str):
         ax.text(0.5, 0.5, msg, ha="center", va="center", transform=ax.transAxes)
         ax.set_axis_off()
     _plot_ratemap(fig.add_subplot(grid[0, n_top - 1]), fig, arrays)
-    half = max(n_top, 2) // 2
     m = run.models
     m = m[(m["unit"].astype(str) == str(unit)) & (m["environment"].astype(str) ==
                                                   str(environment))]
-    _plot_scores(fig.add_subplot(grid[1, :half]), m, row["variables"])
-    _plot_observed_predicted(fig.add_subplot(grid[1, half:]), arrays,
+    bottom = grid[1, :].subgridspec(1, 3, width_ratios=(1.2, 1, 1))
+    _plot_scores(fig.add_subplot(bottom[0]), m, row["variables"])
+    _plot_observed_predicted(fig.add_subplot(bottom[1]), arrays,
                              float(row.get("mean_rate_hz", np.nan)))
+    from encodex.report.goodness_figures import ks_panel
+
+    ks_panel(fig.add_subplot(bottom[2]), arrays, row)
     gain = row["bits_per_spike"]
     fig.suptitle(
         f"unit {unit}, {environment}: label '{row['variables']}' (status {row['status']}), "
