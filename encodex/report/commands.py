@@ -58,7 +58,25 @@ def run_table(args) -> int:
 
 
 def run_compare(args) -> int:
-    """``encodex compare DIR --between A B``: paired (or unpaired) comparison of labels."""
+    """``encodex compare DIR --between A B``: paired (or unpaired) comparison of labels.
+
+    With two or more folders (``encodex compare DIR_A DIR_B [...]``) the recordings are
+    compared instead (:func:`encodex.report.recordings_cli.run_compare_recordings`).
+    """
+    if len(args.dir) > 1:
+        from encodex.report.recordings_cli import run_compare_recordings
+
+        return run_compare_recordings(args, _out)
+    from encodex.errors import SettingsError
+
+    if not args.between:
+        raise SettingsError("with one folder, --between A B names the two environments to "
+                            "compare; or give two folders to compare recordings")
+    for option in ("environments", "match", "names"):
+        if getattr(args, option):
+            raise SettingsError(f"--{option} is for comparing two or more folders; with one "
+                                f"folder use --between A B")
+    args.dir = args.dir[0]
     _headless()
     import matplotlib.pyplot as plt
 
@@ -165,18 +183,25 @@ def register_report_commands(subparsers) -> None:
     p.set_defaults(func=run_table)
 
     p = subparsers.add_parser(
-        "compare", help="compare labels between two environments",
+        "compare", help="compare labels between two environments, or between recordings",
         description="Transition table of labels, McNemar tests per variable, Wilcoxon "
                     "signed-rank test on paired gains, Benjamini-Hochberg correction; "
-                    "unpaired tests when no cell is matched.")
-    p.add_argument("dir", help="output folder of `encodex fit`")
-    p.add_argument("--between", nargs=2, metavar=("A", "B"), required=True,
-                   help="the two environments (A: rows of the transition table)")
+                    "unpaired tests when no cell is matched. One folder: two of its "
+                    "environments (--between). Two or more folders: each later folder against "
+                    "the first, cells matched by --match tables (identical ids by default).")
+    p.add_argument("dir", nargs="+", metavar="DIR",
+                   help="output folder(s) of `encodex fit`")
+    p.add_argument("--between", nargs=2, metavar=("A", "B"),
+                   help="the two environments of one folder (A: rows of the transition table)")
+    from encodex.report.recordings_cli import add_recording_options
+
+    add_recording_options(p)
     p.add_argument("--unpaired", action="store_true",
                    help="treat the populations as independent even if unit ids match")
     p.add_argument("--alpha", type=float, default=None,
                    help="false discovery rate of the BH correction (default: the run's alpha)")
-    p.add_argument("--out", help="folder for the results (default DIR/compare)")
+    p.add_argument("--out", help="folder for the results (default DIR/compare; with several "
+                                 "folders DIR_A/compare_recordings)")
     p.set_defaults(func=run_compare)
 
     p = subparsers.add_parser(
