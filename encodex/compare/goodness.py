@@ -344,13 +344,14 @@ def goodness_of_fit(y, mu, bin_size: float, rng: np.random.Generator, gaps=None,
 
 #: What the checks are, for run.json and the methods text.
 GOODNESS_STATEMENT = (
-    "Goodness of fit of each cell's chosen model (the mean-rate model for cells labelled "
-    "'none') is checked on its held-out predictions, every bin predicted by the fold model "
-    "that did not see it: time-rescaling KS test with the discrete-time correction "
-    "(Brown et al. 2002; Haslinger, Pipa & Brown 2010) against the 95% point of the exact KS "
-    f"distribution; Pearson dispersion of held-out counts in {DISPERSION_WINDOW_S:g} s "
-    f"windows (1 under the model); observed over expected spike pairs within "
-    f"{HISTORY_WINDOW_S:g} s (short-lag history: bursts above 1, refractoriness below 1). "
-    "A poor fit qualifies a label: the variables still improved prediction, but the model "
-    "misses structure of the spike train, so its response curves and gains are approximate."
+    "The goodness of fit of each cell's chosen model (the mean-rate model for cells labelled "
+    "'none') was checked on its held-out predictions, each bin predicted by the fold model "
+    "that had not seen it: a time-rescaling Kolmogorov-Smirnov test with the discrete-time "
+    "correction (Brown et al. 2002; Haslinger, Pipa & Brown 2010) against the 95% point of the "
+    "exact KS distribution; the Pearson dispersion of held-out counts in "
+    f"{DISPERSION_WINDOW_S:g} s windows (1 under the model); and the ratio of observed to "
+    f"expected spike pairs within {HISTORY_WINDOW_S:g} s (short-lag history: above 1 for "
+    "bursts, below 1 for refractoriness). A poor fit qualifies a label: the variables still "
+    "improved prediction, but the model misses structure of the spike train, so its response "
+    "curves and gains are approximate."
 )

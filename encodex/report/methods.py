@@ -45,6 +45,12 @@ REFERENCES: dict[str, str] = {
     "bh1995": "Benjamini, Y. & Hochberg, Y. (1995). Controlling the false discovery rate: a "
               "practical and powerful approach to multiple testing. J. R. Stat. Soc. B "
               "57:289-300.",
+    "brown2002": "Brown, E. N., Barbieri, R., Ventura, V., Kass, R. E. & Frank, L. M. (2002). "
+                 "The time-rescaling theorem and its application to neural spike train data "
+                 "analysis. Neural Computation 14:325-346.",
+    "haslinger2010": "Haslinger, R., Pipa, G. & Brown, E. (2010). Discrete time rescaling "
+                     "theorem: determining goodness of fit for discrete time statistical models "
+                     "of neural spiking. Neural Computation 22:2477-2506.",
     "rubel2022": "Rübel, O. et al. (2022). The Neurodata Without Borders ecosystem for "
                  "neurophysiological data science. eLife 11:e78362.",
 }
@@ -156,6 +162,9 @@ def methods_paragraph(run: dict, with_references: bool = True) -> str:
             f"As a control, each spike train was circularly shifted against behaviour "
             f"{shuffles} times (shifts of at least {_fmt(min_shift, ' s')}) to obtain an "
             f"empirical null distribution of the cell's gain and an empirical p-value.")
+    methods = run.get("methods") if isinstance(run.get("methods"), dict) else {}
+    if methods.get("goodness_of_fit"):  # stated by the fit stage (encodex.compare.goodness)
+        parts.append(str(methods["goodness_of_fit"]))
     parts.append(
         f"Proportions of cells are reported with 95% Wilson score intervals (Wilson 1927; "
         f"Newcombe 1998). Between environments, presence of each variable in the same cells was "
