@@ -143,6 +143,9 @@ def test_bad_matching_tables(folders, tmp_path):
     bad.write_text("first,second\nc000,n00\nc001,n00\n")
     with pytest.raises(InputError, match="appears twice"):
         compare_recordings(root / "a", root / "b", matching=bad)
+    with pytest.raises(InputError, match="not in folder A"):
+        compare_recordings(root / "a", root / "b",
+                           matching=pd.DataFrame({"x": ["zz"], "y": ["n00"]}))
     # identical ids by default: day1 and day2 share none, and every cell is unmatched
     cmp = compare_recordings(root / "a", root / "b")
     assert cmp.paired is None and cmp.unpaired is not None and cmp.matching.empty

@@ -210,23 +210,31 @@ def read_matching(path, units_a, units_b) -> pd.DataFrame:
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
         raise FileFormatError(f"{path} is not a readable CSV file ({exc}); write one row per "
                               f"matched cell: unit_a,unit_b") from None
+    return checked_matching(df, units_a, units_b, path.name)
+
+
+def checked_matching(df: pd.DataFrame, units_a, units_b, what: str = "the matching table"):
+    """Columns ``unit_a, unit_b`` of a matching frame, ids checked against both folders.
+
+    Columns named ``unit_a, unit_b`` are used, otherwise the first two columns.
+    """
     if df.shape[1] < 2:
-        raise FileFormatError(f"{path} needs two columns (unit in A, unit in B); it has "
-                              f"{df.shape[1]}")
+        raise InputError(f"{what} needs two columns (unit in A, unit in B); it has "
+                         f"{df.shape[1]}")
     cols = list(_MATCH_COLUMNS) if set(_MATCH_COLUMNS) <= set(df.columns) else list(df.columns[:2])
-    m = df[cols].copy()
+    m = df[cols].astype(str).copy()
     m.columns = list(_MATCH_COLUMNS)
     m = m.apply(lambda s: s.str.strip())
     m = m[(m["unit_a"] != "") | (m["unit_b"] != "")]
     for col, known, side in (("unit_a", set(units_a), "A"), ("unit_b", set(units_b), "B")):
         unknown = [u for u in m[col] if u not in known]
         if unknown:
-            raise InputError(f"matching table {path.name} names unit(s) {unknown[:3]} that are "
-                             f"not in folder {side}; check the columns (unit in A, unit in B)")
+            raise InputError(f"{what} names unit(s) {unknown[:3]} that are not in folder "
+                             f"{side}; check the columns (unit in A, unit in B)")
         dup = m[col][m[col].duplicated()]
         if len(dup):
-            raise InputError(f"unit {dup.iloc[0]} appears twice in column {col} of "
-                             f"{path.name}; a cell can be matched to one cell only")
+            raise InputError(f"unit {dup.iloc[0]} appears twice in column {col} of {what}; a "
+                             f"cell can be matched to one cell only")
     return m.reset_index(drop=True)
 
 
@@ -324,8 +332,7 @@ def compare_recordings(run_a, run_b, environment_a: str | None = None,
         pairs["unit_b"] = pairs["unit_a"]
         source = "identical unit ids"
     elif isinstance(matching, pd.DataFrame):
-        pairs = matching.rename(columns=dict(zip(matching.columns[:2], _MATCH_COLUMNS)))
-        pairs = pairs[list(_MATCH_COLUMNS)].astype(str)
+        pairs = checked_matching(matching, ca.index, cb.index)
         source = "table given from Python"
     else:
         pairs = read_matching(matching, ca.index, cb.index)
