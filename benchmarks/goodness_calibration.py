@@ -76,6 +76,7 @@ def main(argv=None) -> int:
     res = {"benchmark": "goodness_calibration", "cells": a.cells, "duration_s": a.duration,
            "seed": a.seed, "jobs": a.jobs, "machine": machine(),
            "correct_model": _rates(right), "missing_variable": _rates(missing),
+           "correct_model_by_label": {lab: _rates(g) for lab, g in right.groupby("variables")},
            "wall_s": {"all_variables": round(t_full, 1), "heading_speed": round(t_part, 1)}}
 
     def table(r):
@@ -85,6 +86,10 @@ def main(argv=None) -> int:
                           ("missing_variable", "true variable not tested (model wrong)")):
             x = r[key]
             rows.append(f"| {name} | {x['n']} | {x['within_band']:.2f} | "
+                        f"{x['dispersion_rejected']:.2f} | {x['history_rejected']:.2f} | "
+                        f"{x['median_dispersion']:.2f} | {x['median_history_ratio']:.2f} |")
+        for lab, x in r["correct_model_by_label"].items():
+            rows.append(f"| model correct, label {lab} | {x['n']} | {x['within_band']:.2f} | "
                         f"{x['dispersion_rejected']:.2f} | {x['history_rejected']:.2f} | "
                         f"{x['median_dispersion']:.2f} | {x['median_history_ratio']:.2f} |")
         return "\n".join(rows)
