@@ -126,7 +126,8 @@ def test_incompatible_folders_are_refused_with_one_line(folders, tmp_path, capsy
     run["session"]["bin_size_s"] = 0.1
     run["environments"]["day2"]["variables"] = ["position", "speed"]
     (other / "run.json").write_text(json.dumps(run))
-    with pytest.raises(SettingsError, match="different variables: position,heading in .* and position,speed in "):
+    with pytest.raises(SettingsError,
+                       match="different variables: position,heading in .* and position,speed in "):
         compare_recordings(root / "a", other, matching=root / "match.csv")
     code = main(["compare", str(root / "a"), str(other), "--match", str(root / "match.csv")])
     err = capsys.readouterr().err

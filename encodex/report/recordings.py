@@ -361,7 +361,8 @@ def compare_recordings(run_a, run_b, environment_a: str | None = None,
                  cb.loc[ub].to_dict() | {"unit": key, "environment": b}]
         sources[(a, key)] = (run_a, env_a, ua)
         sources[(b, key)] = (run_b, env_b, ub)
-    both = pairs[(pairs["status_a"] == CLASSIFIED_STATUS) & (pairs["status_b"] == CLASSIFIED_STATUS)]
+    both = pairs[(pairs["status_a"] == CLASSIFIED_STATUS)
+                 & (pairs["status_b"] == CLASSIFIED_STATUS)]
     notes = [f"{len(pairs)} cells matched ({source}); {len(both)} of them classified in both "
              f"{a} and {b}; {len(lone_a)} cells of {a} and {len(lone_b)} of {b} without a "
              f"partner."]
