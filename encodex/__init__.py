@@ -11,7 +11,9 @@ The public API is re-exported here lazily (importing :mod:`encodex` stays cheap)
 - :func:`select_variables`, :func:`analyse_cell` - the model comparison of one cell;
 - :func:`load_session`, :func:`build_session`, :class:`Session` - sessions;
 - :func:`simulate_recording` - ground-truth simulator;
-- :func:`build_design`, :func:`default_bases`, :func:`fit_poisson` - the engine.
+- :func:`build_design`, :func:`default_bases`, :func:`fit_poisson` - the engine;
+- :func:`goodness_of_fit` - time-rescaling, dispersion and history checks of held-out
+  predictions; :func:`compare_recordings` - two fit folders, cells matched by a table.
 """
 
 from importlib import import_module
@@ -35,6 +37,8 @@ _EXPORTS = {
     "default_bases": "encodex.design",
     "fit_poisson": "encodex.fit",
     "PoissonFit": "encodex.fit",
+    "goodness_of_fit": "encodex.compare.goodness",
+    "compare_recordings": "encodex.report.recordings",
     "label": "encodex.variables",
     "VARIABLES": "encodex.variables",
 }

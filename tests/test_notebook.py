@@ -26,6 +26,8 @@ def test_tutorial_notebook_executes(tmp_path):
         for c in nb.cells if c.cell_type == "code" for o in c.get("outputs", []))
     assert "statistical statement at alpha" in text
     assert "Skaggs information" in text
+    assert "A poor fit qualifies a label" in text and "ks_within_band" in text
+    assert "cells matched" in text and "McNemar" in text
     assert any("image/png" in o.get("data", {}) for c in nb.cells if c.cell_type == "code"
                for o in c.get("outputs", []))
     out = tmp_path / "tutorial_output"
@@ -34,3 +36,5 @@ def test_tutorial_notebook_executes(tmp_path):
     assert (out / "fit" / "tables" / "table_labels.tex").exists()
     assert (out / "report.html").exists()
     assert list((out / "figures").glob("cell_*.pdf"))
+    pairs = list((out / "compare_recordings").glob("recordings.json"))
+    assert pairs and '"matching"' in pairs[0].read_text()

@@ -202,3 +202,24 @@ def test_user_defined_circular_variable_is_analysed_and_labelled(session):
     assert fit.names == ("cue",)
     with pytest.raises(SettingsError, match="unknown variable"):
         run_population(s2, None, variables=("cue", "tone"))
+
+
+def test_goodness_of_fit_columns_and_ks_curve(first_run):
+    from encodex.compare.goodness import GOODNESS_COLUMNS
+
+    out = first_run.out
+    cells = pd.read_csv(out / "cells.csv", dtype={"unit": str, "environment": str})
+    assert set(GOODNESS_COLUMNS) <= set(cells.columns)
+    ok = cells[cells["status"] == "ok"]
+    assert ok["ks_distance"].notna().all() and (ok["ks_intervals"] > 0).all()
+    assert set(ok["ks_within_band"].astype(str)) <= {"True", "False"}
+    assert (cells.loc[cells["status"] != "ok", "ks_distance"].isna()).all()
+    u, e = ok["unit"].iloc[0], ok["environment"].iloc[0]
+    with np.load(out / "units" / e / f"{u}.npz") as z:
+        uni, res = z["goodness__ks_uniform"], z["goodness__ks_rescaled"]
+        assert uni.shape == res.shape and uni.size > 10
+        assert np.all(np.diff(res) >= 0) and 0 <= res[0] and res[-1] <= 1
+        # the curve's largest gap is (up to thinning) the KS distance in cells.csv
+        d = float(ok["ks_distance"].iloc[0])
+        assert np.max(np.abs(res - uni)) <= d + 1e-9
+        assert np.max(np.abs(res - uni)) >= d - 2.0 / uni.size - 1.0 / ok["ks_intervals"].iloc[0]

@@ -46,6 +46,9 @@ class ModelCV:
     pooled: HeldOutScore
     n_not_converged: int = 0
     reasons: tuple[str, ...] = ()
+    #: Held-out expected counts of every row (each from the fold model that did not see it),
+    #: row order; the input of the goodness-of-fit checks (:mod:`encodex.compare.goodness`).
+    heldout: np.ndarray | None = None
 
     @property
     def bits_per_spike(self) -> np.ndarray:
@@ -115,6 +118,7 @@ def cross_validate(design, model: Model, y: np.ndarray, offset: np.ndarray, fold
             reasons.append(full.reason)
     if baselines is None:
         baselines = mean_rate_baselines(y, offset, folds)
+    heldout = np.full(len(y), np.nan)
     for k, (train, test) in enumerate(folds.splits()):
         mu0 = baselines[k]
         if sub is None:
@@ -133,8 +137,9 @@ def cross_validate(design, model: Model, y: np.ndarray, offset: np.ndarray, fold
                   else fit.predict(sub, rows=test, offset=offset))
         per_fold.append(heldout_score(y[test], mu, mu0))
         pooled_parts.append((y[test], mu, mu0))
+        heldout[test] = mu
     return ModelCV(tuple(model), tuple(per_fold), pool_scores(pooled_parts), bad,
-                   tuple(dict.fromkeys(reasons)))
+                   tuple(dict.fromkeys(reasons)), heldout)
 
 
 def mean_rate_baselines(y: np.ndarray, offset: np.ndarray, folds: Folds) -> list[np.ndarray]:
@@ -161,6 +166,9 @@ class CellAnalysis:
         Mean held-out bits per spike of the tested model on each shifted spike train.
     notes : tuple of str
         Warnings worth a line in the table (fits that did not converge).
+    goodness : GoodnessOfFit or None
+        Goodness of fit of the chosen model (the mean-rate model for "none") on its held-out
+        predictions (:mod:`encodex.compare.goodness`); None when not computed.
     """
 
     selection: Selection
@@ -169,6 +177,7 @@ class CellAnalysis:
     shuffle_p: float = float("nan")
     shuffle_null: np.ndarray = field(default_factory=lambda: np.empty(0))
     notes: tuple[str, ...] = ()
+    goodness: object | None = None
 
     @property
     def label(self) -> str:
@@ -181,7 +190,8 @@ def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
                  shuffles: int = 0, min_shift_bins: int = 0,
                  rng: np.random.Generator | None = None, fit_options=None,
                  refit: bool = True, correction: str = "bonferroni",
-                 fold_fits: str = "one-step") -> CellAnalysis:
+                 fold_fits: str = "one-step", goodness: bool = True,
+                 goodness_rng: np.random.Generator | None = None) -> CellAnalysis:
     """Choose the variables one cell carries and score every model tried.
 
     Parameters
@@ -214,6 +224,13 @@ def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
         How each fold's model is fitted; see :func:`cross_validate`.
     refit : bool
         Refit the chosen model on all bins for plotting.
+    goodness : bool
+        Check the fit of the chosen model on its held-out predictions (time-rescaling KS
+        test, dispersion, short-lag history; :func:`encodex.compare.goodness.goodness_of_fit`,
+        bin width ``exp(offset)``).
+    goodness_rng : numpy Generator
+        Stream for the within-bin spike positions of the time-rescaling check (derive it
+        from seed, unit and environment).
 
     Returns
     -------
@@ -262,7 +279,17 @@ def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
                                 fit_options, fold_fits)
             observed = float(np.mean(cvs[tested].bits_per_spike))
             shuffle_p = float((1 + np.count_nonzero(null >= observed)) / (1 + shuffles))
-    return CellAnalysis(selection, dict(cvs), final, shuffle_p, null, tuple(notes))
+    fit_check = None
+    if goodness:
+        from encodex.compare.goodness import goodness_of_fit
+
+        chosen = tuple(selection.chosen)
+        mu = cvs[chosen].heldout if chosen in cvs else None
+        if mu is not None and np.all(np.isfinite(mu)):
+            fit_check = goodness_of_fit(
+                y, mu, float(np.exp(np.median(offset))),
+                goodness_rng if goodness_rng is not None else np.random.default_rng(0))
+    return CellAnalysis(selection, dict(cvs), final, shuffle_p, null, tuple(notes), fit_check)
 
 
 def shuffle_null(design, model: Model, y, offset, folds: Folds, n: int, min_shift_bins: int,

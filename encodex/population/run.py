@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 
 from encodex.compare.folds import chunked_folds
+from encodex.compare.goodness import GOODNESS_COLUMNS, GOODNESS_STATEMENT
 from encodex.errors import EncodexError, InputError, SettingsError
 from encodex.fit.smoothing import CRITERION_STATEMENT
 from encodex.population.checkpoint import (
@@ -37,6 +38,7 @@ CELL_COLUMNS = (
     "unit", "environment", "n_spikes", "mean_rate_hz", "status", "reason", "variables",
     "bits_per_spike", "p_value", *(f"gain_{v}" for v in VARIABLES), "shuffle_p",
     "ambiguous_with", "pseudo_r2", "deviance_explained", "selection_path", "tied_with",
+    *GOODNESS_COLUMNS,
 )
 MODEL_COLUMNS = (
     "unit", "environment", "model", "fold", "n_spikes_test", "loglik_test", "bits_per_spike",
@@ -515,7 +517,8 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
                                   + (" divided by the number of candidates of the step "
                                      "(Bonferroni)" if rs.correction == "bonferroni" else "")
                                   + ("; every subset scored (exhaustive)"
-                                     if rs.exhaustive else ""))},
+                                     if rs.exhaustive else "")),
+                    "goodness_of_fit": GOODNESS_STATEMENT},
         "session": {
             "bin_size_s": float(session.bin_size),
             "n_bins": int(session.n_bins),
@@ -593,7 +596,16 @@ cells.csv   one row per unit and environment:
                   the smallest attainable p is 2^-k (0.000977 for 10 folds), so a level below
                   it can never be passed),
   tied_with (other models with as many variables that the chosen one does not beat
-             significantly across folds, ";"-separated labels).
+             significantly across folds, ";"-separated labels),
+  goodness of fit of the chosen model (the mean-rate model for "none") on its held-out
+  predictions (encodex.compare.goodness): ks_distance (time-rescaling KS distance, with the
+  discrete-time correction), ks_critical (its 95% point), ks_within_band (True/False),
+  ks_intervals (rescaled intervals used), dispersion (Pearson statistic of held-out counts
+  in 1 s windows, 1 under the model; > 1 over-dispersed), dispersion_p, history_ratio
+  (observed / expected spike pairs within 0.05 s; > 1 bursts, < 1 refractoriness),
+  history_p. A cell outside the band, or with small dispersion_p or history_p, is not
+  described well by its model: its label still says which variables improved prediction,
+  but its response curves and gains are approximate.
 models.csv  one row per unit, environment, model (label) and fold: n_spikes_test (spikes in
   the held-out fold), loglik_test (Poisson log-likelihood of the held-out bins, natural log,
   nats, including the log y! term), bits_per_spike (held-out gain over the mean-rate model
@@ -614,6 +626,8 @@ units/<environment>/<unit>.npz   arrays (no pickles) of one cell:
     1-D terms: <t>__edges (20 bins over the basis range), <t>__occupancy_s, <t>__spikes,
       <t>__predicted_spikes (the model's expected spikes) per bin;
   ratemap__predicted_spikes (the model's expected spikes per spatial bin);
+  goodness__ks_uniform, goodness__ks_rescaled, goodness__ks_critical (the KS curve of the
+    time-rescaling check: uniform quantiles, sorted rescaled values, the 95% band half-width);
   record__json (the unit's table rows, used to resume);
   shuffle__null_bits_per_spike (with --shuffles: held-out gain of each shifted train).
 checkpoint.json  settings and input fingerprint (refuses to mix runs).

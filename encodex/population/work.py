@@ -28,6 +28,7 @@ STATUS_ERROR = "error"
 #: Streams of randomness, one purpose each.
 PURPOSE_FOLDS = 1
 PURPOSE_SHUFFLES = 2
+PURPOSE_GOODNESS = 3
 
 
 def _h(text: str) -> int:
@@ -180,6 +181,9 @@ def empty_cell_row(unit: str, environment: str, n_spikes: int, rate: float, stat
         row[f"gain_{v}"] = np.nan
     row.update(shuffle_p=np.nan, ambiguous_with="", pseudo_r2=np.nan,
                deviance_explained=np.nan, selection_path="", tied_with="")
+    from encodex.compare.goodness import GOODNESS_COLUMNS
+
+    row.update({c: np.nan for c in GOODNESS_COLUMNS})
     return row
 
 
@@ -235,6 +239,7 @@ def _analyse_cell(env, unit, y, settings, n_spikes, rate, arrays):
         shuffles=settings.shuffles, min_shift_bins=min_shift,
         rng=stream(settings.seed, env.name, unit, PURPOSE_SHUFFLES),
         fold_fits=settings.fold_fits,
+        goodness_rng=stream(settings.seed, env.name, unit, PURPOSE_GOODNESS),
     )
     sel = a.selection
     chosen_cv = a.models[sel.chosen]
@@ -260,6 +265,9 @@ def _analyse_cell(env, unit, y, settings, n_spikes, rate, arrays):
         selection_path=selection_path(sel.steps, settings.alpha, settings.correction),
         tied_with=";".join(sel.ambiguous_with),
     )
+    if a.goodness is not None:
+        row.update(a.goodness.row())
+        arrays.update(a.goodness.arrays())
     if a.final_fit is not None:
         # the chosen model's terms, keys in one place (encodex.population.curves)
         from encodex.population.curves import response_arrays

@@ -8,6 +8,8 @@ Typical use from Python::
     run = load_run("fit_output")
     tables = make_tables(run)            # tables.labels, tables.variables, tables.excluded
     cmp = compare_environments(run, "room_a", "room_b")
+    fit = fit_summary(run.cells)         # cells inside the KS band, per environment and label
+    rec = compare_recordings("day1_fit", "day2_fit", matching="match.csv")  # two folders
     build_report("fit_output")           # fit_output/report.html
 
 Every label is a statistical statement at the run's alpha about this session's behaviour,
@@ -29,6 +31,10 @@ _WHERE = {
     "PaperTables": "tables", "make_tables": "tables", "wilson_interval": "tables",
     "write_tables": "tables",
     "label_caveat": "wording",
+    "RecordingComparison": "recordings", "compare_recordings": "recordings",
+    "write_recording_comparison": "recordings",
+    "write_recordings_report": "recordings_html",
+    "fit_summary": "goodness", "ks_figure": "goodness_figures",
 }
 
 
@@ -45,10 +51,14 @@ def __dir__():
 __all__ = [
     "EnvironmentComparison",
     "PaperTables",
+    "RecordingComparison",
     "RunFolder",
     "build_report",
     "cell_figure",
+    "fit_summary",
+    "ks_figure",
     "compare_environments",
+    "compare_recordings",
     "comparison_figure",
     "label_caveat",
     "load_run",
@@ -60,5 +70,7 @@ __all__ = [
     "save_figure",
     "wilson_interval",
     "write_comparison",
+    "write_recording_comparison",
+    "write_recordings_report",
     "write_tables",
 ]

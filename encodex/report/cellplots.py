@@ -297,7 +297,10 @@ def draw_cell(fig, row: pd.Series, arrays: dict, models: pd.DataFrame) -> None:
     n_maps = int("position" in terms) + int(has_map)
     n_top = len(one_d) + n_maps
     check = _check_data(arrays) if ok else None
-    ncol = max(n_top, 3 if ok else 1)
+    ks = arrays.get("goodness__ks_rescaled")
+    has_ks = ok and ks is not None and np.size(ks) > 0
+    n_side = int(check is not None) + int(has_ks)
+    ncol = max(n_top, (2 + n_side if n_side else 3) if ok else 1)
     heights = ([1.25] if n_top else []) + ([0.8, 0.5] if ok else [])
     if not heights:
         return
@@ -310,9 +313,17 @@ def draw_cell(fig, row: pd.Series, arrays: dict, models: pd.DataFrame) -> None:
     if not ok:
         return
     r0 = 1 if n_top else 0
-    split = max(1, (2 * ncol) // 3) if check is not None else ncol
+    # the selection path takes what the side panels (model check, KS plot) leave
+    width = max(1, ncol // (2 + n_side)) if n_side else 0
+    split = ncol - n_side * width
     steps = parse_selection_path(row.get("selection_path"), row["variables"])
     _draw_path(fig.add_subplot(grid[r0, :split]), fig.add_subplot(grid[r0 + 1, :split]),
                steps, models)
+    at = split
     if check is not None:
-        _draw_check(fig.add_subplot(grid[r0:, split:]), check)
+        _draw_check(fig.add_subplot(grid[r0:, at:at + width]), check)
+        at += width
+    if has_ks:
+        from encodex.report.goodness_figures import ks_panel
+
+        ks_panel(fig.add_subplot(grid[r0:, at:at + width]), arrays, row)

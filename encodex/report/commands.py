@@ -12,7 +12,7 @@ import argparse
 import sys
 from pathlib import Path
 
-from encodex.report.options import (add_jobs_option, add_results_argument, positive_number,
+from encodex.report.options import (RESULTS, add_jobs_option, add_results_argument, positive_number,
                                     resolve_jobs, whole_number)
 
 __all__ = ["register_report_commands", "run_table", "run_compare", "run_report", "run_demo"]
@@ -61,6 +61,10 @@ def run_table(args) -> int:
     tables = make_tables(run, level=args.level)
     out = Path(args.out) if args.out else run.path / "tables"
     written = write_tables(tables, out)
+    from encodex.report.goodness import ALL_LABELS, fit_summary, write_fit_summary
+
+    fit = fit_summary(run.cells, level=args.level)
+    written += write_fit_summary(fit, out)
     try:
         (out / "methods.md").write_text(methods_markdown(run.run, level=args.level))
         (out / "methods.txt").write_text(methods_paragraph(run.run, level=args.level))
@@ -69,12 +73,33 @@ def run_table(args) -> int:
     with pd.option_context("display.width", 200):
         _out(to_markdown(display_frame(tables.variables, tables.level)))
     _out(tables.caveat)
+    for r in fit[fit["label"] == ALL_LABELS].itertuples(index=False):
+        _out(f"Goodness of fit, {r.environment}: {r.n_within_band} of {r.n_checked} classified "
+             f"cells inside the 95% KS band ({r.percent_within_band:.0f}%; table_goodness.md)")
     _out(f"\nwrote {len(written) + 2} files in {out} (CSV, Markdown, LaTeX tables; methods.md)")
     return 0
 
 
 def run_compare(args) -> int:
-    """``encodex compare DIR --between A B``: paired (or unpaired) comparison of labels."""
+    """``encodex compare DIR --between A B``: paired (or unpaired) comparison of labels.
+
+    With two or more folders (``encodex compare DIR_A DIR_B [...]``) the recordings are
+    compared instead (:func:`encodex.report.recordings_cli.run_compare_recordings`).
+    """
+    if len(args.dir) > 1:
+        from encodex.report.recordings_cli import run_compare_recordings
+
+        return run_compare_recordings(args, _out)
+    from encodex.errors import SettingsError
+
+    if not args.between:
+        raise SettingsError("with one folder, --between A B names the two environments to "
+                            "compare; or give two folders to compare recordings")
+    for option in ("environments", "match", "names"):
+        if getattr(args, option):
+            raise SettingsError(f"--{option} is for comparing two or more folders; with one "
+                                f"folder use --between A B")
+    args.dir = args.dir[0]
     _headless()
     import matplotlib.pyplot as plt
 
@@ -183,20 +208,28 @@ def register_report_commands(subparsers) -> None:
     p.set_defaults(func=run_table)
 
     p = subparsers.add_parser(
-        "compare", help="compare labels between two environments",
+        "compare", help="compare labels between two environments, or between recordings",
         description="Transition table of labels, McNemar tests per variable, Wilcoxon "
                     "signed-rank test on paired gains, Benjamini-Hochberg correction; "
-                    "unpaired tests when no cell is matched.")
-    add_results_argument(p)
-    p.add_argument("--between", nargs=2, metavar=("A", "B"), required=True,
-                   help="the two environments (A: rows of the transition table)")
+                    "unpaired tests when no cell is matched. One folder: two of its "
+                    "environments (--between). Two or more folders: each later folder against "
+                    "the first, cells matched by --match tables (identical ids by default).")
+    p.add_argument("dir", nargs="+", metavar=RESULTS,
+                   help="results folder(s) written by `encodex fit ... --out RESULTS`")
+    p.add_argument("--between", nargs=2, metavar=("A", "B"),
+                   help="the two environments of one folder (A: rows of the transition table)")
+    from encodex.report.recordings_cli import add_recording_options
+
+    add_recording_options(p)
     p.add_argument("--unpaired", action="store_true",
                    help="treat the populations as independent even if unit ids match")
     p.add_argument("--fdr", type=_fraction, default=None, metavar="Q",
                    help="false discovery rate of the Benjamini-Hochberg correction across "
                         "the tests (default: the run's alpha)")
     p.add_argument("--alpha", type=_renamed("--fdr"), default=None, help=argparse.SUPPRESS)
-    p.add_argument("--out", metavar="DIR", help="folder for the results (default RESULTS/compare)")
+    p.add_argument("--out", metavar="DIR", help="folder for the results (default RESULTS/compare; "
+                                                "with several folders the first's "
+                                                "compare_recordings)")
     p.set_defaults(func=run_compare)
 
     p = subparsers.add_parser(

@@ -61,6 +61,34 @@ def recovery_summary(cells: pd.DataFrame, truth: pd.DataFrame) -> pd.DataFrame:
     return pd.DataFrame(rows, columns=["environment", "classified", "exact", "percent_exact"])
 
 
+def _goodness(run, fit_dir: Path, echo) -> Path | None:
+    """Goodness-of-fit table, one line per environment, and the KS plot of the best cell."""
+    import matplotlib.pyplot as plt
+
+    from encodex.report.figures import save_figure
+    from encodex.report.goodness import ALL_LABELS, fit_summary, write_fit_summary
+    from encodex.report.goodness_figures import ks_figure
+    from encodex.report.load import file_name_part
+
+    summary = fit_summary(run.cells)
+    write_fit_summary(summary, fit_dir / "tables")
+    for r in summary[summary["label"] == ALL_LABELS].itertuples(index=False):
+        echo(f"  goodness of fit, {r.environment}: {r.n_within_band} of {r.n_checked} "
+             f"classified cells inside the 95% KS band of time rescaling")
+    ok = run.cells[(run.cells["status"] == "ok") & (run.cells["variables"] != "none")]
+    if ok.empty:
+        return None
+    best = ok.loc[pd.to_numeric(ok["bits_per_spike"], errors="coerce").idxmax()]
+    unit, env = str(best["unit"]), str(best["environment"])
+    fig = ks_figure(run.unit_arrays(env, unit) or {}, best,
+                    title=f"unit {unit} in {env}, label '{best['variables']}'")
+    stem = fit_dir / "figures" / f"ks_{file_name_part(env)}_{file_name_part(unit)}"
+    save_figure(fig, stem)
+    plt.close(fig)
+    echo(f"  KS plot of unit {unit} in {env}: {stem}.png")
+    return stem.with_name(stem.name + ".png")
+
+
 def demo(out, n_cells: int = 12, duration_s: float = 900.0, jobs: int = 2, seed: int = 1,
          echo=print, max_cells: int = 16) -> dict[str, Path]:
     """Run the demo: simulate a session, write NWB, fit, then tables, comparison and report.
@@ -127,6 +155,7 @@ def demo(out, n_cells: int = 12, duration_s: float = 900.0, jobs: int = 2, seed:
     (fit_dir / "tables" / "methods.md").write_text(methods_markdown(run.run))
     (fit_dir / "tables" / "methods.txt").write_text(methods_paragraph(run.run))
     echo(to_markdown(display_frame(tables.variables, tables.level)))
+    _goodness(run, fit_dir, echo)
     truth = pd.read_csv(files["truth"], dtype={"unit": str, "environment": str})
     rec = recovery_summary(run.cells, truth)
     for r in rec.itertuples(index=False):

@@ -113,6 +113,30 @@ def _cell_order(run: RunFolder, max_cells: int) -> tuple[list[tuple[str, str]], 
     return pairs[:max_cells], max(0, len(pairs) - max_cells)
 
 
+def _goodness_section(cells: pd.DataFrame) -> list[str]:
+    """The "Goodness of fit" section: summary per environment and label, figure, caveat."""
+    from encodex.report.goodness import display_fit_summary, fit_caveat, fit_summary
+    from encodex.report.goodness_figures import ks_population_figure
+
+    summary = fit_summary(cells)
+    head = ["<section id='fit'><h2>Goodness of fit</h2>"]
+    if summary.empty:
+        return head + ["<p>This folder has no goodness-of-fit columns (written before they "
+                       "existed); re-run <code>encodex fit</code> to add them.</p></section>"]
+    return head + [
+        "<p>Each chosen model (the mean-rate model for 'none') is checked on its held-out "
+        "predictions: time-rescaling KS test with the discrete-time correction, dispersion "
+        "of counts in 1 s windows, and spike pairs within 0.05 s (bursts above 1, "
+        "refractoriness below 1). If every model described its spike train, about 95% of "
+        "cells would lie inside the band.</p>",
+        f"<div class='caveat'>{html.escape(fit_caveat())}</div>",
+        _table(display_fit_summary(summary), "Classified cells inside the 95% KS band with "
+               "95% Wilson intervals; over-dispersion and history structure counted at "
+               "p < 0.05 (two-sided)."),
+        _img(ks_population_figure(summary), "cells inside the KS band"),
+        "</section>"]
+
+
 def render_report(run: RunFolder, between=None, max_cells: int = 30,
                   title: str | None = None) -> str:
     """The report of a fit run as one HTML string (figures embedded).
@@ -159,7 +183,8 @@ def render_report(run: RunFolder, between=None, max_cells: int = 30,
         f"<header><h1>{html.escape(title)}</h1><p>Run folder {html.escape(str(run.path))} - "
         f"report written {_dt.datetime.now().strftime('%Y-%m-%d %H:%M')}</p></header>",
         "<nav><a href='#summary'>Summary</a><a href='#tables'>Tables</a>"
-        "<a href='#population'>Population</a><a href='#compare'>Environments</a>"
+        "<a href='#population'>Population</a><a href='#fit'>Fit</a>"
+        "<a href='#compare'>Environments</a>"
         "<a href='#cells'>Cells</a><a href='#methods'>Methods</a>"
         "<a href='#settings'>Settings</a></nav><main>",
         f"<div class='caveat' id='caveat'><b>How to read the labels.</b> "
@@ -189,6 +214,7 @@ def render_report(run: RunFolder, between=None, max_cells: int = 30,
         "<section id='population'><h2>Population</h2>",
         _img(population_figure(cells, alpha), "percent of labelled cells per label"),
         "</section>",
+        *_goodness_section(cells),
         "<section id='compare'><h2>Comparing environments</h2>",
     ]
     pairs = _pairs(envs, between)

@@ -58,6 +58,13 @@ REFERENCES: dict[str, str] = {
     "Treves & Panzeri 1995": "Treves, A. & Panzeri, S. (1995). The upward bias in measures of "
                              "information derived from limited data samples. Neural "
                              "Computation 7:399-407.",
+    "Brown et al. 2002": "Brown, E. N., Barbieri, R., Ventura, V., Kass, R. E. & Frank, L. M. "
+                         "(2002). The time-rescaling theorem and its application to neural "
+                         "spike train data analysis. Neural Computation 14:325-346.",
+    "Haslinger et al. 2010": "Haslinger, R., Pipa, G. & Brown, E. (2010). Discrete time "
+                             "rescaling theorem: determining goodness of fit for discrete time "
+                             "statistical models of neural spiking. Neural Computation "
+                             "22:2477-2506.",
     "Wilson 1927": "Wilson, E. B. (1927). Probable inference, the law of succession, and "
                    "statistical inference. J. Am. Stat. Assoc. 22:209-212.",
     "Newcombe 1998a": "Newcombe, R. G. (1998a). Two-sided confidence intervals for the single "
@@ -499,6 +506,15 @@ def _concurvity(m: MethodsInput):
         f"(ambiguous_with) when their concurvity (Hastie & Tibshirani 1990; Wood 2017), "
         f"computed from the design alone as {how}, reached {_num(DEFAULT_THRESHOLD)}; the "
         f"flag does not depend on the spikes.", ("Hastie & Tibshirani 1990", "Wood 2017"))
+
+
+@register_sentence("goodness_of_fit")
+def _goodness(m: MethodsInput):
+    methods = m.run.get("methods") if isinstance(m.run.get("methods"), dict) else {}
+    text = methods.get("goodness_of_fit")
+    if not text:  # a folder written before the fit stage stated its checks
+        return None
+    return Sentence(str(text), ("Brown et al. 2002", "Haslinger et al. 2010"))
 
 
 @register_sentence("ratemap_bin_m")
