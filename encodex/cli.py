@@ -134,10 +134,12 @@ def add_fit_command(subparsers) -> None:
     p.add_argument("--min-shift", type=_seconds, default=20.0, metavar="SECONDS",
                    help="smallest circular shift in seconds (default 20)")
     p.add_argument("--alpha", type=float, default=0.05, metavar="A",
-                   help="level of the one-sided Wilcoxon test of each variable (default 0.05)")
-    p.add_argument("--correction", choices=("bonferroni", "none"), default="bonferroni",
-                   help="test the best of m candidates of a step at alpha/m (bonferroni, "
-                        "default: untuned cells labelled at most at rate alpha) or at alpha")
+                   help="level of the test of each added variable (default 0.05)")
+    p.add_argument("--correction", choices=("signflip", "bonferroni", "none"),
+                   default="signflip",
+                   help="step test: signflip (default; exact sign-flip test of the largest "
+                        "candidate statistic over the folds, at alpha), bonferroni (Wilcoxon at "
+                        "alpha/m for m candidates) or none (Wilcoxon at alpha)")
     p.add_argument("--fold-fits", choices=("one-step", "refit"), default="one-step",
                    help="one-step (default): one fit per model to all bins, smoothness by "
                         "LAML, then one Newton step per fold without its bins; refit: each "

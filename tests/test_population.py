@@ -173,7 +173,10 @@ def test_bad_settings_are_one_line_errors(session):
         run_population(session, None, fold=3)
     # 5 folds cannot give p < 0.05 / 2: refused instead of labelling every cell "none"
     with pytest.raises(SettingsError, match="use --folds 6 or more"):
-        run_population(session, None, **{**SETTINGS, "folds": 5})
+        run_population(session, None, **{**SETTINGS, "folds": 5, "correction": "bonferroni"})
+    # the sign-flip test reaches 2^-5 <= 0.05 with 5 folds, not 2^-4 with 4
+    with pytest.raises(SettingsError, match="use --folds 5 or more"):
+        run_population(session, None, **{**SETTINGS, "folds": 4, "correction": "signflip"})
 
 
 def test_dask_local_cluster_gives_same_results(first_run, session):

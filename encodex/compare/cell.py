@@ -178,7 +178,7 @@ def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
                  variables, alpha: float = 0.05, exhaustive: bool = False,
                  shuffles: int = 0, min_shift_bins: int = 0,
                  rng: np.random.Generator | None = None, fit_options=None,
-                 refit: bool = True, correction: str = "bonferroni",
+                 refit: bool = True, correction: str = "signflip",
                  fold_fits: str = "one-step") -> CellAnalysis:
     """Choose the variables one cell carries and score every model tried.
 
@@ -198,8 +198,8 @@ def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
         Level of each one-sided Wilcoxon signed-rank test.
     exhaustive : bool
         Score every subset (same decision rule).
-    correction : {"bonferroni", "none"}
-        Multiple-candidate correction of each forward step (see
+    correction : {"signflip", "bonferroni", "none"}
+        Step test of forward selection (see
         :func:`encodex.compare.selection.select_variables`).
     shuffles : int
         Circular shifts of the spike train for the empirical null of the held-out gain of

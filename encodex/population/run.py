@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 
 from encodex.compare.folds import chunked_folds
+from encodex.compare.selection import describe_test
 from encodex.errors import EncodexError, InputError, SettingsError
 from encodex.population.checkpoint import (
     atomic_write_text, data_fingerprint, open_checkpoint, read_unit_record,
@@ -43,7 +44,8 @@ MODEL_COLUMNS = (
 LABEL_STATEMENT = (
     "A label (column 'variables') is a statistical statement about this session's recorded "
     "behaviour: adding each listed variable improved held-out prediction of the spike counts "
-    "across cross-validation folds (one-sided Wilcoxon signed-rank test at the stated alpha). "
+    "across cross-validation folds (the step test of run.json, methods.selection, at the "
+    "stated alpha). "
     "It is not proof that the cell encodes the variable mechanistically: correlated "
     "behaviour, unmodelled variables or limited sampling can produce or hide a label."
 )
@@ -392,7 +394,9 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
     m = max((len(e.variables) for e in envs.values()), default=0)
     if m:
         level = rs.alpha / m if rs.correction == "bonferroni" else rs.alpha
-        if 2.0 ** -rs.folds >= level:
+        reachable = (2.0 ** -rs.folds <= level if rs.correction == "signflip"
+                     else 2.0 ** -rs.folds < level)
+        if not reachable:
             need = int(np.floor(-np.log2(level))) + 1
             raise SettingsError(
                 f"with {rs.folds} folds the smallest possible p-value is 2^-{rs.folds} = "
@@ -484,9 +488,7 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
         "methods": {"folds": FOLD_STATEMENT, "smoothness": SMOOTHNESS_STATEMENTS[rs.fold_fits],
                     "selection": ("forward selection from the mean-rate model; a variable is "
                                   "kept if it improves held-out bits per spike across folds by "
-                                  f"a one-sided Wilcoxon signed-rank test at alpha={rs.alpha}"
-                                  + (" divided by the number of candidates of the step "
-                                     "(Bonferroni)" if rs.correction == "bonferroni" else "")
+                                  "an " + describe_test(rs.correction, rs.alpha)
                                   + ("; every subset scored (exhaustive)"
                                      if rs.exhaustive else ""))},
         "session": {
@@ -545,15 +547,17 @@ cells.csv   one row per unit and environment:
              none; empty when the cell was not labelled),
   bits_per_spike (held-out log-likelihood gain of the chosen model over the mean-rate
                   model, all held-out bins pooled, per held-out spike),
-  p_value (one-sided Wilcoxon signed-rank p of the chosen model against the mean-rate model
-           across folds; for "none", that of the best single-variable model),
+  p_value (one-sided p of the chosen model against the baseline model across folds, by the
+           run's step test; for "none", the first step's p-value),
   gain_<variable> (held-out bits per spike that the variable adds to the chosen model, or
                    that removing it costs when it is in the model; NaN if not analysed),
   shuffle_p (empirical p of the held-out gain against circular shifts; NaN when off),
   ambiguous_with (variables that a chosen variable cannot be told apart from in this
                   environment because their smooth terms overlap - concurvity of the
                   design >= 0.8, see encodex.compare.concurvity - ";"-separated),
-  pseudo_r2 (McFadden, held-out), deviance_explained (held-out), selection_path,
+  pseudo_r2 (McFadden, held-out), deviance_explained (held-out),
+  selection_path (each forward step: +added or xrefused variable, its p-value and the level
+                  it was tested at),
   tied_with (other models with as many variables that the chosen one does not beat
              significantly across folds, ";"-separated labels).
 models.csv  one row per unit, environment, model (label) and fold, with held-out scores.

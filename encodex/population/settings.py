@@ -38,12 +38,14 @@ class RunSettings:
         Seed of every random stream (folds, shuffles); streams are derived from
         (seed, environment[, unit]) so results do not depend on the order of the work.
     alpha : float
-        Level of the one-sided Wilcoxon signed-rank test of each added variable.
+        Level of the test of each added variable (false-label rate of untuned cells).
     exhaustive : bool
         Score every subset of the variables (same decision rule as forward selection).
     correction : str
-        "bonferroni" (default): the best of m candidates of a forward step is tested at
-        alpha / m, so that untuned cells are labelled at most at rate alpha; "none": at alpha.
+        Step test of forward selection (:mod:`encodex.compare.selection`): "signflip"
+        (default), an exact sign-flip max-statistic test over the candidates of the step at
+        alpha; "bonferroni": one-sided Wilcoxon test of the best of m candidates at alpha / m;
+        "none": Wilcoxon at alpha.
     shuffles : int
         Number of circular shifts of each spike train for the empirical null (0: off).
     min_shift_s : float
@@ -74,7 +76,7 @@ class RunSettings:
     seed: int = 0
     alpha: float = 0.05
     exhaustive: bool = False
-    correction: str = "bonferroni"
+    correction: str = "signflip"
     shuffles: int = 0
     min_shift_s: float = 20.0
     min_spikes: int = 100
@@ -106,9 +108,9 @@ class RunSettings:
         _int_at_least("min_spikes", self.min_spikes, 1, "100")
         if not (isinstance(self.alpha, (int, float)) and 0 < self.alpha < 1):
             raise SettingsError(f"alpha must be between 0 and 1 (got {self.alpha}); use 0.05")
-        if self.correction not in ("bonferroni", "none"):
-            raise SettingsError(f"correction must be 'bonferroni' or 'none' (got "
-                                f"{self.correction!r})")
+        if self.correction not in ("signflip", "bonferroni", "none"):
+            raise SettingsError(f"correction must be 'signflip', 'bonferroni' or 'none' (got "
+                                f"{self.correction!r}); use --correction signflip")
         if self.fold_fits not in ("refit", "one-step"):
             raise SettingsError(f"fold_fits must be 'refit' or 'one-step' (got "
                                 f"{self.fold_fits!r}); use --fold-fits refit")

@@ -208,7 +208,8 @@ def _analyse_cell(env, unit, y, settings, n_spikes, rate, arrays):
         pseudo_r2=chosen_cv.pooled.pseudo_r2 if sel.chosen else 0.0,
         deviance_explained=chosen_cv.pooled.deviance_explained if sel.chosen else 0.0,
         selection_path=" > ".join(
-            f"{'+' if s.accepted else 'x'}{label(set(s.best) - set(s.base))}(p={s.p_value:.3g})"
+            f"{'+' if s.accepted else 'x'}{label(set(s.best) - set(s.base))}"
+            f"(p={s.p_value:.3g}, level {s.level:.3g})"
             for s in sel.steps
         ),
         tied_with=";".join(sel.ambiguous_with),
