@@ -146,6 +146,10 @@ def add_fit_command(subparsers) -> None:
                         "fold's models fitted to its training bins with their own smoothness "
                         "selection (strict: held-out bins never touch the smoothing; about 4x "
                         "slower)")
+    p.add_argument("--no-drift", dest="drift", action="store_false",
+                   help="leave out the slow-drift term (a smooth of time on the environment's "
+                        "clock in every model, on by default); the baseline is then the "
+                        "mean-rate model")
     p.add_argument("--min-spikes", type=_positive_int, default=100, metavar="N",
                    help="cells with fewer spikes in an environment are not labelled "
                         "(default 100)")
@@ -175,7 +179,7 @@ def _run_fit(args) -> int:
     settings = dict(folds=args.folds, seed=args.seed, exhaustive=args.exhaustive,
                     shuffles=args.shuffles, min_shift_s=args.min_shift, alpha=args.alpha,
                     correction=args.correction, fold_fits=args.fold_fits,
-                    min_spikes=args.min_spikes)
+                    min_spikes=args.min_spikes, drift=args.drift)
     if args.bin_size is not None:
         settings["bin_size"] = args.bin_size
     if args.variables is not None:

@@ -102,7 +102,7 @@ def test_python_result_matches_files(first_run):
         fit = first_run.fits[key]
         env, unit = key
         lab = first_run.label(unit, env)
-        assert set(fit.names) == set(lab.split("+"))
+        assert set(fit.names) == set(lab.split("+")) | {"drift"}  # drift is on by default
 
 
 def test_results_identical_whatever_jobs(first_run, session, tmp_path):
@@ -202,6 +202,6 @@ def test_user_defined_circular_variable_is_analysed_and_labelled(session):
     assert set(r.cells["variables"]) == {"cue"}
     assert "gain_cue" in r.cells.columns and (r.cells["gain_cue"] > 0.05).all()
     fit = r.fits[("arena", "cue_cell")]
-    assert fit.names == ("cue",)
+    assert fit.names == ("cue", "drift")
     with pytest.raises(SettingsError, match="unknown variable"):
         run_population(s2, None, variables=("cue", "tone"))

@@ -41,6 +41,13 @@ MODEL_COLUMNS = (
     "pseudo_r2", "deviance_explained",
 )
 
+DRIFT_STATEMENT = (
+    "every model, the baseline included, holds a smooth of time on the environment's clock "
+    "(cubic P-spline, one basis function per 300 s of environment plus three, 4 to 12, "
+    "second-order difference penalty, smoothness selected with the other terms); gains and "
+    "bits per spike are relative to the drift-only model"
+)
+
 LABEL_STATEMENT = (
     "A label (column 'variables') is a statistical statement about this session's recorded "
     "behaviour: adding each listed variable improved held-out prediction of the spike counts "
@@ -146,11 +153,18 @@ class _Fits(Mapping):
 
             env_name, unit = key
             env = self._envs[env_name]
-            design = environment_design(env).subset(parse_label(self._labels[key]))
+            from encodex.design import DRIFT_TERM
+
+            nuisance = (DRIFT_TERM,) if env.clock is not None else ()
+            full = environment_design(env)
             y = _env_counts(self._session, env_name, unit, env)
+            offset = np.full(env.n_rows, np.log(env.bin_size))
             with threadpool_limits(limits=1):
-                self._known[key] = fit_poisson(design, y, np.full(env.n_rows,
-                                                                  np.log(env.bin_size)))
+                # Started like the run's own fit: from the drift-only fit when there is one.
+                start = fit_poisson(full.subset(nuisance), y, offset) if nuisance else None
+                self._known[key] = fit_poisson(
+                    full.subset(parse_label(self._labels[key]) + nuisance), y, offset,
+                    start=start)
         return self._known[key]
 
     def __iter__(self):
@@ -226,9 +240,27 @@ def _environment_work(session, env_name: str, settings: RunSettings,
     token = stable_hash([fingerprint, env_name, settings.to_dict()])
     all_kinds = dict(getattr(session, "kinds", {}) or {})
     kinds = tuple(sorted((v, all_kinds[v]) for v in variables if v in all_kinds))
+    clock = _drift_clock(session, k, rows, settings, variables, info)
     work = EnvironmentWork(env_name, token, cov, variables, float(session.bin_size), fold,
-                           settings.folds, settings.basis_sizes, kinds, ex, ey, note)
+                           settings.folds, settings.basis_sizes, kinds, ex, ey, note, clock)
     return work, info
+
+
+def _drift_clock(session, k: int, rows: np.ndarray, settings: RunSettings, variables,
+                 info: dict) -> np.ndarray | None:
+    """Environment clock of the usable bins for the drift term (None when it is off)."""
+    from encodex.design import DRIFT_TERM, drift_basis_size
+
+    if not settings.drift or rows.size < 2:
+        return None
+    if DRIFT_TERM in variables:
+        raise SettingsError(f"the name '{DRIFT_TERM}' is reserved for the slow-drift term; "
+                            "rename that variable (or switch drift off with --no-drift)")
+    time = np.asarray(session.time, dtype=float)
+    start = time[np.flatnonzero(np.asarray(session.environment) == k)[0]]
+    clock = np.ascontiguousarray(time[rows] - start)
+    info["drift_basis_functions"] = drift_basis_size(clock[-1] - clock[0])
+    return clock
 
 
 def _env_counts(session, env_name: str, unit: str, env: EnvironmentWork) -> np.ndarray:
@@ -486,7 +518,10 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
             "cpu_seconds_cells": round(float(np.sum(seconds)), 3),
         },
         "methods": {"folds": FOLD_STATEMENT, "smoothness": SMOOTHNESS_STATEMENTS[rs.fold_fits],
-                    "selection": ("forward selection from the mean-rate model; a variable is "
+                    "drift": DRIFT_STATEMENT if rs.drift else "no drift term",
+                    "selection": ("forward selection from the "
+                                  + ("drift-only" if rs.drift else "mean-rate")
+                                  + " model; a variable is "
                                   "kept if it improves held-out bits per spike across folds by "
                                   "an " + describe_test(rs.correction, rs.alpha)
                                   + ("; every subset scored (exhaustive)"
@@ -545,12 +580,16 @@ cells.csv   one row per unit and environment:
           "error") and reason,
   variables (the label: variables carried, in canonical order joined by "+", "none" when
              none; empty when the cell was not labelled),
-  bits_per_spike (held-out log-likelihood gain of the chosen model over the mean-rate
-                  model, all held-out bins pooled, per held-out spike),
+  bits_per_spike (held-out log-likelihood gain of the chosen model over the baseline model,
+                  all held-out bins pooled, per held-out spike; the baseline is the
+                  drift-only model - a smooth of time on the environment's clock - unless
+                  the run was made with drift off (run.json settings.drift), then the
+                  mean-rate model),
   p_value (one-sided p of the chosen model against the baseline model across folds, by the
            run's step test; for "none", the first step's p-value),
   gain_<variable> (held-out bits per spike that the variable adds to the chosen model, or
-                   that removing it costs when it is in the model; NaN if not analysed),
+                   that removing it costs when it is in the model; every model holds the
+                   drift term when it is on; NaN if not analysed),
   shuffle_p (empirical p of the held-out gain against circular shifts; NaN when off),
   ambiguous_with (variables that a chosen variable cannot be told apart from in this
                   environment because their smooth terms overlap - concurvity of the
@@ -562,7 +601,9 @@ cells.csv   one row per unit and environment:
              significantly across folds, ";"-separated labels).
 models.csv  one row per unit, environment, model (label) and fold, with held-out scores.
 run.json    settings, package versions, timings, masked bins and dropped spikes.
-units/<environment>/<unit>.npz   response curves of the chosen model and the occupancy map.
+units/<environment>/<unit>.npz   response curves of the chosen model and the occupancy map;
+  with drift on also drift__grid (s on the environment's clock), drift__log_gain, drift__se
+  (of the chosen model, or of the drift-only model for "none").
 
 What a label means
 ------------------

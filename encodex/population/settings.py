@@ -68,6 +68,11 @@ class RunSettings:
         "refit": each fold's models are fitted to its training bins with their own
         smoothness selection (strict, about four times slower). See
         :func:`encodex.compare.cell.cross_validate`.
+    drift : bool
+        True (default): every model, the baseline included, holds a smooth of time on the
+        environment's clock (:mod:`encodex.design.drift`), so the baseline is the drift-only
+        model and gains and bits per spike are relative to it; False: the baseline is the
+        mean-rate model.
     """
 
     variables: tuple[str, ...] | None = None
@@ -84,6 +89,7 @@ class RunSettings:
     basis_sizes: tuple[tuple[str, int], ...] = ()
     ratemap_bin_m: float = 0.05
     fold_fits: str = "one-step"
+    drift: bool = True
 
     def __post_init__(self):
         if self.variables is not None:
@@ -114,6 +120,8 @@ class RunSettings:
         if self.fold_fits not in ("refit", "one-step"):
             raise SettingsError(f"fold_fits must be 'refit' or 'one-step' (got "
                                 f"{self.fold_fits!r}); use --fold-fits refit")
+        if not isinstance(self.drift, bool):
+            raise SettingsError(f"drift must be True or False (got {self.drift!r})")
         if not (math.isfinite(self.min_shift_s) and self.min_shift_s >= 0):
             raise SettingsError(f"min_shift_s must be >= 0 seconds (got {self.min_shift_s})")
         if self.bin_size is not None and not (

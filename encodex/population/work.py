@@ -67,6 +67,9 @@ class EnvironmentWork:
         Spatial bins of the occupancy map (metres), None without position.
     note : str
         Why the environment cannot be analysed ("" when it can).
+    clock : ndarray or None
+        Seconds since the environment's first bin, per usable bin: the covariate of the slow
+        drift term (:mod:`encodex.design.drift`); None when the drift term is off.
     """
 
     name: str
@@ -81,6 +84,7 @@ class EnvironmentWork:
     edges_x: np.ndarray | None
     edges_y: np.ndarray | None
     note: str = ""
+    clock: np.ndarray | None = None
 
     @property
     def n_rows(self) -> int:
@@ -95,11 +99,14 @@ def environment_design(env: EnvironmentWork):
     if env.token in _DESIGNS:
         _DESIGNS.move_to_end(env.token)
         return _DESIGNS[env.token]
-    from encodex.design import build_design, default_bases
+    from encodex.design import DRIFT_TERM, build_design, default_bases, drift_basis
 
     cov = {v: env.covariates[v] for v in env.variables}
     bases = default_bases(cov, env.variables, sizes=dict(env.basis_sizes),
                           kinds=dict(env.kinds))
+    if env.clock is not None:
+        cov[DRIFT_TERM] = env.clock
+        bases[DRIFT_TERM] = drift_basis(env.clock)
     design = build_design(cov, bases)
     _DESIGNS[env.token] = design
     while len(_DESIGNS) > 2:
@@ -175,6 +182,8 @@ def _analyse_cell(env, unit, y, settings, n_spikes, rate, arrays):
     from encodex.compare.cell import analyse_cell, model_rows
     from encodex.compare.folds import Folds
 
+    from encodex.design import DRIFT_TERM
+
     design = environment_design(env)
     offset = np.full(env.n_rows, np.log(env.bin_size))
     folds = Folds(env.fold, env.k)
@@ -185,6 +194,7 @@ def _analyse_cell(env, unit, y, settings, n_spikes, rate, arrays):
         shuffles=settings.shuffles, min_shift_bins=min_shift,
         rng=stream(settings.seed, env.name, unit, PURPOSE_SHUFFLES),
         fold_fits=settings.fold_fits,
+        nuisance=(DRIFT_TERM,) if env.clock is not None else (),
     )
     sel = a.selection
     chosen_cv = a.models[sel.chosen]
@@ -214,8 +224,10 @@ def _analyse_cell(env, unit, y, settings, n_spikes, rate, arrays):
         ),
         tied_with=";".join(sel.ambiguous_with),
     )
-    if a.final_fit is not None:
-        arrays.update(_responses(a.final_fit))
+    # The drift response comes with the chosen model's curves, or from the drift-only fit.
+    for fit in (a.final_fit, a.baseline_fit):
+        if fit is not None:
+            arrays.update(_responses(fit))
     if settings.shuffles:
         arrays["shuffle__null_bits_per_spike"] = a.shuffle_null
     return {"cell": row, "models": model_rows(a.models)}, arrays, a.final_fit
