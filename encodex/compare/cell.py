@@ -214,6 +214,57 @@ class CellAnalysis:
         return self.selection.label
 
 
+class ModelScorer:
+    """Cross-validated per-fold scores of the models of one cell, each model fitted once.
+
+    Calling the scorer with a model (tuple of variables) returns its per-fold held-out bits
+    per spike against the cell's baseline model (the mean-rate model, or the nuisance-only
+    model when ``nuisance`` is given); it is the ``score`` function of
+    :func:`encodex.compare.selection.select_variables`. Several selection rules can share one
+    scorer: a model scored for one rule is not fitted again for the next.
+
+    Attributes
+    ----------
+    cvs : dict
+        :class:`ModelCV` of every model scored so far.
+    full_fits : dict
+        All-bins fits by model ("one-step"), used as warm starts; ``()`` is the
+        nuisance-only fit.
+    baselines : list of ndarray
+        Held-out expected counts of the baseline model per fold.
+    """
+
+    def __init__(self, design, y: np.ndarray, offset: np.ndarray, folds: Folds,
+                 fit_options=None, fold_fits: str = "one-step",
+                 nuisance: tuple[str, ...] = ()):
+        self.design, self.y, self.offset, self.folds = design, np.asarray(y), offset, folds
+        self.fit_options, self.fold_fits, self.nuisance = fit_options, fold_fits, tuple(nuisance)
+        self.cvs: dict[Model, ModelCV] = {}
+        self.full_fits: dict = {}
+        if self.nuisance:
+            self.baselines = nuisance_baselines(design, self.nuisance, self.y, offset, folds,
+                                                fit_options, fold_fits, self.full_fits)
+        else:
+            self.baselines = mean_rate_baselines(self.y, offset, folds)
+
+    def __call__(self, model: Model) -> np.ndarray:
+        model = tuple(model)
+        if model not in self.cvs:
+            self.cvs[model] = self._cross_validate(model)
+        return self.cvs[model].bits_per_spike
+
+    def _cross_validate(self, model: Model) -> ModelCV:
+        if not model:
+            return _baseline_cv(self.y, self.folds, self.baselines)
+        # Warm start from the largest already-fitted sub-model (the forward path's parent).
+        parents = [m for m in self.full_fits if set(m) < set(model)]
+        start = self.full_fits[max(parents, key=len)] if parents else None
+        return cross_validate(self.design, model, self.y, self.offset, self.folds,
+                              self.fit_options, self.fold_fits, start=start,
+                              full_fits=self.full_fits, baselines=self.baselines,
+                              nuisance=self.nuisance)
+
+
 def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
                  variables, alpha: float = 0.05, exhaustive: bool = False,
                  shuffles: int = 0, min_shift_bins: int = 0,
@@ -263,26 +314,8 @@ def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
     """
     y = np.asarray(y)
     nuisance = tuple(nuisance)
-    cvs: dict[Model, ModelCV] = {}
-    full_fits: dict = {}
-    if nuisance:
-        baselines = nuisance_baselines(design, nuisance, y, offset, folds, fit_options,
-                                       fold_fits, full_fits)
-    else:
-        baselines = mean_rate_baselines(y, offset, folds)
-
-    def score(model: Model) -> np.ndarray:
-        if not model:
-            cvs[model] = _baseline_cv(y, folds, baselines)
-            return cvs[model].bits_per_spike
-        # Warm start from the largest already-fitted sub-model (the forward path's parent).
-        parents = [m for m in full_fits if set(m) < set(model)]
-        start = full_fits[max(parents, key=len)] if parents else None
-        cvs[model] = cross_validate(design, model, y, offset, folds, fit_options, fold_fits,
-                                    start=start, full_fits=full_fits, baselines=baselines,
-                                    nuisance=nuisance)
-        return cvs[model].bits_per_spike
-
+    score = ModelScorer(design, y, offset, folds, fit_options, fold_fits, nuisance)
+    cvs, full_fits = score.cvs, score.full_fits
     selection = select_variables(variables, score, alpha=alpha, exhaustive=exhaustive,
                                  correction=correction)
     notes = []
