@@ -216,6 +216,7 @@ def build_parser() -> argparse.ArgumentParser:
     from encodex.report.commands import register_report_commands
 
     register_report_commands(sub)
+    __import__("encodex.planning").planning.register_planning_command(sub)
     return parser
 
 
