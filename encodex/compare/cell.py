@@ -69,7 +69,7 @@ def cross_validate(design, model: Model, y: np.ndarray, offset: np.ndarray, fold
     design : encodex.design.Design
         Design holding (at least) the model's terms, on the environment's bins.
     model : tuple of str
-        Variables of the model (empty: the mean-rate model).
+        Variables of the model (empty: the baseline: mean-rate, or nuisance-only).
     y : ndarray of int, shape (n_rows,)
         Spike counts.
     offset : ndarray, shape (n_rows,)
@@ -286,7 +286,7 @@ def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
     variables : sequence of str
         Variables to consider.
     alpha : float
-        Level of each one-sided Wilcoxon signed-rank test.
+        Level of the test of each added variable (see ``correction``).
     exhaustive : bool
         Score every subset (same decision rule).
     correction : {"signflip", "bonferroni", "none"}
