@@ -593,7 +593,9 @@ cells.csv   one row per unit and environment:
   shuffle_p (empirical p of the held-out gain against circular shifts; NaN when off),
   ambiguous_with (variables that a chosen variable cannot be told apart from in this
                   environment because their smooth terms overlap - concurvity of the
-                  design >= 0.8, see encodex.compare.concurvity - ";"-separated),
+                  design >= 0.8, see encodex.compare.concurvity - ";"-separated; "drift"
+                  when the variable follows the environment's clock, as when the animal
+                  slows down over the session),
   pseudo_r2 (McFadden, held-out), deviance_explained (held-out),
   selection_path (each forward step: +added or xrefused variable, its p-value and the level
                   it was tested at),
