@@ -128,10 +128,12 @@ def add_fit_command(subparsers) -> None:
     p.add_argument("--min-shift", type=_seconds, default=20.0, metavar="SECONDS",
                    help="smallest circular shift in seconds (default 20)")
     p.add_argument("--alpha", type=float, default=0.05, metavar="A",
-                   help="level of the one-sided Wilcoxon test of each variable (default 0.05)")
-    p.add_argument("--correction", choices=("bonferroni", "none"), default="bonferroni",
-                   help="test the best of m candidates of a step at alpha/m (bonferroni, "
-                        "default: untuned cells labelled at most at rate alpha) or at alpha")
+                   help="level of the test of each added variable (default 0.05)")
+    p.add_argument("--correction", choices=("signflip", "bonferroni", "none"),
+                   default="signflip",
+                   help="step test: signflip (default; exact sign-flip test of the largest "
+                        "candidate statistic over the folds, at alpha), bonferroni (Wilcoxon at "
+                        "alpha/m for m candidates) or none (Wilcoxon at alpha)")
     p.add_argument("--fold-fits", choices=("one-step", "refit"), default="one-step",
                    help="one-step (default): one fit per model to all bins, smoothness by "
                         "LAML, then one Newton step per fold without its bins; refit: each "
@@ -141,6 +143,10 @@ def add_fit_command(subparsers) -> None:
     p.add_argument("--gram-precision", choices=("single", "double"), default="single",
                    help="arithmetic of the Hessian pieces X'WX: single (default; float32 "
                         "chunks summed in float64, 1.5x faster, same optima) or double")
+    p.add_argument("--no-drift", dest="drift", action="store_false",
+                   help="leave out the slow-drift term (a smooth of time on the environment's "
+                        "clock in every model, on by default); the baseline is then the "
+                        "mean-rate model")
     p.add_argument("--min-spikes", type=_positive_int, default=100, metavar="N",
                    help="cells with fewer spikes in an environment are not labelled "
                         "(default 100)")
@@ -233,7 +239,8 @@ def _run_fit(args) -> int:
     settings = dict(folds=args.folds, seed=args.seed, exhaustive=args.exhaustive,
                     shuffles=args.shuffles, min_shift_s=args.min_shift, alpha=args.alpha,
                     correction=args.correction, fold_fits=args.fold_fits,
-                    min_spikes=args.min_spikes, gram_precision=args.gram_precision)
+                    min_spikes=args.min_spikes, gram_precision=args.gram_precision,
+                    drift=args.drift)
     if args.bin_size is not None:
         settings["bin_size"] = args.bin_size
     if args.variables is not None:
@@ -278,6 +285,7 @@ def build_parser() -> argparse.ArgumentParser:
     from encodex.report.commands import register_report_commands
 
     register_report_commands(sub)
+    __import__("encodex.planning").planning.register_planning_command(sub)
     return parser
 
 

@@ -89,7 +89,7 @@ def _ou(rng, n, tau_s, sd):
 
 
 def _simulate_behaviour(rng, duration_s, environments, box, break_s, trial_range,
-                        steady_speed=None):
+                        steady_speed=None, slowdown=None):
     n_env = len(environments)
     total = n_env * duration_s + (n_env - 1) * break_s
     n = int(round(total / _DT)) + 1  # include the end point so tracking covers every epoch
@@ -130,6 +130,13 @@ def _simulate_behaviour(rng, duration_s, environments, box, break_s, trial_range
         # A steady runner (after the default draws, so that the other options keep their
         # random streams): no stops, no vigour changes, 3% fluctuations.
         raw = steady_speed * np.exp(_ou(rng, n, 1.0, 0.03))
+    if slowdown is not None:
+        # Behaviour that changes over the session: running speed falls linearly from its
+        # usual level at the start of each environment to ``slowdown`` times it at the end
+        # (deterministic, so the random streams of the other options are unchanged).
+        for a, b, _ in epochs:
+            inside = (t >= a) & (t < b)
+            raw[inside] *= 1.0 - (1.0 - slowdown) * (t[inside] - a) / (b - a)
     speed = gaussian_filter1d(raw, 0.25 / _DT, mode="nearest")  # finite accelerations
     speed = np.clip(speed, 0.0, None)
 
@@ -280,6 +287,7 @@ def simulate_recording(
     lfp_rate_hz: float | None = None,
     theta_hz: float = 8.0,
     n_phase_cells: int = 0,
+    slowdown: float | None = None,
 ) -> tuple[Recording, pd.DataFrame]:
     """Simulate a recording with known ground truth (see the module docstring).
 
@@ -324,6 +332,10 @@ def simulate_recording(
         (``Recording.lfp``, volts). Default: no LFP.
     theta_hz : float
         Mean theta frequency, Hz (default 8).
+    slowdown : float, optional
+        The animal slows down over each environment: running speed falls linearly to this
+        fraction (0-1) of its usual level at the environment's end (e.g. 0.5). Default: no
+        change over the session.
     n_phase_cells : int
         Extra cells (ids after the others) locked to the theta phase, von Mises with
         kappa 0.8-1.5 and a uniform preferred phase, in every environment (needs
@@ -360,12 +372,14 @@ def simulate_recording(
         raise SettingsError(
             f"lfp_rate_hz {lfp_rate_hz} must be at least 4 times theta_hz {theta_hz}; use 250"
         )
+    if slowdown is not None and not (0 < slowdown <= 1.0):
+        raise SettingsError(f"slowdown must lie in (0, 1] (got {slowdown}); e.g. 0.5")
     if steady_speed_m_s is not None and not (0 < steady_speed_m_s < 2.0):
         raise SettingsError(f"steady_speed_m_s must lie in (0, 2) m/s, got {steady_speed_m_s}")
     rng = np.random.default_rng(seed)
     beh = _simulate_behaviour(
         rng, duration_s, tuple(environments), box_size_m, break_s, trial_duration_s,
-        steady_speed=steady_speed_m_s,
+        steady_speed=steady_speed_m_s, slowdown=slowdown,
     )
     types = _assign_types(rng, n_cells)
     pool = [v for v, _ in CELL_TYPES]
@@ -533,3 +547,117 @@ def simulate_to_files(
     }
     truth.to_csv(paths["truth"], index=False)
     return paths
+
+
+# --- cells on a binned trajectory ------------------------------------------------------------
+#: Kinds of rate modulation that carry no behavioural information (see :func:`binned_counts`).
+NULL_KINDS: tuple[str, ...] = ("poisson", "bursty", "drift")
+#: Rate drift of the "drift" kind: a factor of two per this many seconds (log-linear).
+DRIFT_DOUBLING_S = 1200.0
+
+
+def draw_cell_params(rng: np.random.Generator, covariates) -> dict:
+    """Tuning parameters of one cell, placed within the range of the given behaviour.
+
+    Same shapes as :func:`simulate_recording` (Gaussian place field, von Mises heading,
+    log-linear speed, Gaussian bumps in distance and time since trial start), but the place
+    field centre is drawn among the visited positions, and the distance and time peaks
+    between the 20th and 70th percentiles of the visited values, so that the parameters fit
+    any trajectory (an arena of any size, a user's own recording).
+
+    Parameters
+    ----------
+    rng : numpy Generator
+    covariates : mapping
+        Binned covariates (``position`` (n, 2) m, ``distance`` m, ``time`` s since trial
+        start); missing ones are left at the simulator's defaults.
+    """
+    pos = covariates.get("position")
+    side = 1.0
+    if pos is not None:
+        pos = np.asarray(pos, dtype=float)
+        ok = np.isfinite(pos).all(axis=1)
+        side = float(np.ptp(pos[ok], axis=0).mean()) if ok.any() else 1.0
+    p = _draw_params(rng, side)
+    if pos is not None and ok.any():
+        p["field_x"], p["field_y"] = pos[ok][rng.integers(ok.sum())]
+    for var, peak, width in (("distance", "distance_peak_m", "distance_width_m"),
+                             ("time", "time_peak_s", "time_width_s")):
+        v = covariates.get(var)
+        if v is None:
+            continue
+        v = np.asarray(v, dtype=float)
+        v = v[np.isfinite(v)]
+        if v.size:
+            lo, hi = np.percentile(v, [20, 70])
+            p[peak] = rng.uniform(lo, hi)
+            # Widths in proportion to the visited range, as in the built-in arena.
+            p[width] = p[width] * max(np.percentile(v, 90), 1e-9) / (2.0 if var == "distance"
+                                                                     else 20.0)
+    return p
+
+
+def binned_counts(covariates, clock_s: np.ndarray, bin_size: float, variables,
+                  rng: np.random.Generator, strength: float = 1.0, mean_rate_hz: float = 2.0,
+                  modulation: str = "poisson", params: dict | None = None) -> np.ndarray:
+    """Spike counts of one simulated cell on a binned trajectory.
+
+    Parameters
+    ----------
+    covariates : mapping
+        Binned covariates of the usable bins (``position`` (n, 2) m, ``heading`` rad,
+        ``speed`` m/s, ``distance`` m and ``time`` s since trial start).
+    clock_s : ndarray, shape (n,)
+        Time of each bin on the environment's clock, seconds.
+    bin_size : float
+        Seconds.
+    variables : iterable of str
+        Variables the cell carries (empty: untuned).
+    rng : numpy Generator
+    strength : float
+        Tuning strength: the log gain of :func:`simulate_recording`'s tuning curves is
+        multiplied by it (1: the built-in cells; 0.5: half the modulation depth in log rate).
+    mean_rate_hz : float
+        Mean rate over the bins, Hz.
+    modulation : {"poisson", "bursty", "drift"}
+        What else moves the rate (:data:`NULL_KINDS`): nothing ("poisson"); a doubly
+        stochastic log rate, an Ornstein-Uhlenbeck process with time constant 2 s and sd 0.7
+        ("bursty": spikes clump in episodes of a few seconds, unrelated to behaviour); or a
+        slow drift, the rate doubling (or halving, sign drawn) every
+        :data:`DRIFT_DOUBLING_S` s on the environment's clock ("drift").
+    params : dict, optional
+        Tuning parameters (default :func:`draw_cell_params`).
+
+    Returns
+    -------
+    ndarray of int64, shape (n,)
+        Poisson counts of the binned rate.
+    """
+    if modulation not in NULL_KINDS:
+        raise SettingsError(f"modulation must be one of {NULL_KINDS} (got {modulation!r})")
+    if not (mean_rate_hz > 0 and bin_size > 0 and strength >= 0):
+        raise SettingsError("mean_rate_hz and bin_size must be > 0 and strength >= 0")
+    clock = np.asarray(clock_s, dtype=float)
+    n = clock.size
+    variables = tuple(variables)
+    p = draw_cell_params(rng, covariates) if params is None else params
+    log_rate = np.zeros(n)
+    if variables:
+        beh = _Behaviour(clock, _cov(covariates, "position", (n, 2)),
+                         _cov(covariates, "heading", n), _cov(covariates, "speed", n),
+                         _cov(covariates, "distance", n), _cov(covariates, "time", n),
+                         np.zeros(n, dtype=np.int64), np.zeros((0, 2)), ())
+        log_rate += strength * _log_gain(variables, p, beh, np.arange(n))
+    if modulation == "bursty":
+        log_rate += _ou_dt(rng, n, bin_size, 2.0, 0.7)
+    elif modulation == "drift":
+        sign = 1.0 if rng.random() < 0.5 else -1.0
+        log_rate += sign * np.log(2.0) * (clock - clock[0]) / DRIFT_DOUBLING_S
+    rate = np.exp(log_rate - log_rate.max())
+    rate *= mean_rate_hz / rate.mean()
+    return rng.poisson(rate * bin_size).astype(np.int64)
+
+
+def _cov(covariates, name, shape):
+    v = covariates.get(name)
+    return np.full(shape, np.nan) if v is None else np.asarray(v, dtype=float)

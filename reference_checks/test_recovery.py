@@ -10,7 +10,7 @@ CI size (documented departure from the full-size benchmark, benchmarks/recovery_
 which uses 30 min per environment, 1-4 Hz, 20 ms bins and default bases): one environment
 of 10 min, 200 ms bins, smaller bases (position 8 x 8, others 6-8 functions) and mean rates
 of 2-5 Hz so that each cell has about as many spikes as a 1-4 Hz cell over a longer
-session. The folds (10) and the test (one-sided Wilcoxon, alpha 0.05) are the defaults, so
+session. The folds (10), the drift term and the step test (sign-flip, alpha 0.05) are the defaults, so
 the decision rule checked is the one users run. A wrong rule fails: labelling by in-sample
 fit or a two-sided/reversed test labels most untuned cells; a missing significance test
 over-labels tuned cells; a test that never rejects labels nothing.

@@ -174,7 +174,7 @@ def test_bonferroni_over_the_candidates_of_a_step():
     s_none, _ = _scorer(table)
     s_bonf, _ = _scorer(table)
     assert select_variables(vars_, s_none, correction="none").chosen[:1] == ("position",)
-    sel = select_variables(vars_, s_bonf)  # default: alpha / 5 per step
+    sel = select_variables(vars_, s_bonf, correction="bonferroni")  # alpha / 5 per step
     assert sel.chosen == () and sel.p_value == pytest.approx(p)
     with pytest.raises(SettingsError, match="correction"):
         select_variables(vars_, s_bonf, correction="holm")

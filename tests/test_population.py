@@ -102,7 +102,7 @@ def test_python_result_matches_files(first_run):
         fit = first_run.fits[key]
         env, unit = key
         lab = first_run.label(unit, env)
-        assert set(fit.names) == set(lab.split("+"))
+        assert set(fit.names) == set(lab.split("+")) | {"drift"}  # drift is on by default
 
 
 def test_results_identical_whatever_jobs(first_run, session, tmp_path):
@@ -173,7 +173,10 @@ def test_bad_settings_are_one_line_errors(session):
         run_population(session, None, fold=3)
     # 5 folds cannot give p < 0.05 / 2: refused instead of labelling every cell "none"
     with pytest.raises(SettingsError, match="use --folds 6 or more"):
-        run_population(session, None, **{**SETTINGS, "folds": 5})
+        run_population(session, None, **{**SETTINGS, "folds": 5, "correction": "bonferroni"})
+    # the sign-flip test reaches 2^-5 <= 0.05 with 5 folds, not 2^-4 with 4
+    with pytest.raises(SettingsError, match="use --folds 5 or more"):
+        run_population(session, None, **{**SETTINGS, "folds": 4, "correction": "signflip"})
 
 
 def test_dask_local_cluster_gives_same_results(first_run, session):
@@ -199,7 +202,7 @@ def test_user_defined_circular_variable_is_analysed_and_labelled(session):
     assert set(r.cells["variables"]) == {"cue"}
     assert "gain_cue" in r.cells.columns and (r.cells["gain_cue"] > 0.05).all()
     fit = r.fits[("arena", "cue_cell")]
-    assert fit.names == ("cue",)
+    assert fit.names == ("cue", "drift")
     with pytest.raises(SettingsError, match="unknown variable"):
         run_population(s2, None, variables=("cue", "tone"))
 

@@ -19,7 +19,9 @@ Two ways of fitting a model on the training folds are offered (``fold_fits``):
   slower.
 
 The mean-rate model needs no fit: its rate is the training spike count over the training
-exposure. The model reported for plotting (response curves) is the chosen model fitted on all
+exposure. With nuisance terms (the slow drift, :mod:`encodex.design.drift`) every model holds
+them and the baseline is the nuisance-only model, cross-validated like the others; scores are
+then held-out gains over that baseline. The model reported for plotting (response curves) is the chosen model fitted on all
 bins of the environment with LAML (with "one-step", the all-bins fit already made).
 """
 
@@ -62,7 +64,8 @@ FOLD_FITS = ("refit", "one-step")
 
 def cross_validate(design, model: Model, y: np.ndarray, offset: np.ndarray, folds: Folds,
                    fit_options=None, fold_fits: str = "one-step", start=None,
-                   full_fits: dict | None = None, baselines: list | None = None) -> ModelCV:
+                   full_fits: dict | None = None, baselines: list | None = None,
+                   nuisance: tuple[str, ...] = (), predictions: list | None = None) -> ModelCV:
     """Score one model by k-fold cross-validation.
 
     Parameters
@@ -70,7 +73,7 @@ def cross_validate(design, model: Model, y: np.ndarray, offset: np.ndarray, fold
     design : encodex.design.Design
         Design holding (at least) the model's terms, on the environment's bins.
     model : tuple of str
-        Variables of the model (empty: the mean-rate model).
+        Variables of the model (empty: the baseline: mean-rate, or nuisance-only).
     y : ndarray of int, shape (n_rows,)
         Spike counts.
     offset : ndarray, shape (n_rows,)
@@ -89,8 +92,15 @@ def cross_validate(design, model: Model, y: np.ndarray, offset: np.ndarray, fold
         Where "one-step" stores the all-bins fit of the model (keyed by model), for warm starts
         and as the final fit.
     baselines : list of ndarray, optional
-        Held-out expected counts of the mean-rate model for each fold
-        (:func:`mean_rate_baselines`), when already worked out for another model of the cell.
+        Held-out expected counts of the baseline model for each fold, against which the
+        model is scored: the mean-rate model (:func:`mean_rate_baselines`, the default), or
+        the nuisance-only model (:func:`nuisance_baselines`).
+    nuisance : tuple of str
+        Terms of the design added to the model (e.g. the slow drift,
+        :data:`encodex.design.DRIFT_TERM`); with ``model=()`` the nuisance-only model is
+        fitted. They are not part of the model's name.
+    predictions : list, optional
+        Filled with the held-out expected counts of each fold.
 
     Returns
     -------
@@ -100,7 +110,8 @@ def cross_validate(design, model: Model, y: np.ndarray, offset: np.ndarray, fold
 
     if fold_fits not in FOLD_FITS:
         raise SettingsError(f"fold_fits must be one of {FOLD_FITS} (got {fold_fits!r})")
-    sub = design.subset(model) if model else None
+    terms = tuple(model) + tuple(nuisance)
+    sub = design.subset(terms) if terms else None
     per_fold: list[HeldOutScore] = []
     pooled_parts = []
     previous = None
@@ -117,7 +128,9 @@ def cross_validate(design, model: Model, y: np.ndarray, offset: np.ndarray, fold
             bad += 1
             reasons.append(full.reason)
     if baselines is None:
-        baselines = mean_rate_baselines(y, offset, folds)
+        baselines = (nuisance_baselines(design, nuisance, y, offset, folds, fit_options,
+                                        fold_fits) if nuisance and model
+                     else mean_rate_baselines(y, offset, folds))
     heldout = np.full(len(y), np.nan)
     for k, (train, test) in enumerate(folds.splits()):
         mu0 = baselines[k]
@@ -135,6 +148,8 @@ def cross_validate(design, model: Model, y: np.ndarray, offset: np.ndarray, fold
                 reasons.append(fit.reason)
             mu = (fold_predictions[k] if fold_models is not None
                   else fit.predict(sub, rows=test, offset=offset))
+        if predictions is not None:
+            predictions.append(mu)
         per_fold.append(heldout_score(y[test], mu, mu0))
         pooled_parts.append((y[test], mu, mu0))
         heldout[test] = mu
@@ -146,6 +161,31 @@ def mean_rate_baselines(y: np.ndarray, offset: np.ndarray, folds: Folds) -> list
     """Held-out expected counts of the mean-rate model (rate from the training bins), per fold."""
     return [mean_rate_counts(y[train], offset[train], offset[test])
             for train, test in folds.splits()]
+
+
+def nuisance_baselines(design, nuisance: tuple[str, ...], y: np.ndarray, offset: np.ndarray,
+                       folds: Folds, fit_options=None, fold_fits: str = "one-step",
+                       full_fits: dict | None = None) -> list[np.ndarray]:
+    """Held-out expected counts of the nuisance-only model (e.g. drift only), per fold.
+
+    The model is cross-validated like any other (same folds, same ``fold_fits``); its
+    all-bins fit is stored in ``full_fits[()]`` with "one-step".
+    """
+    preds: list[np.ndarray] = []
+    cross_validate(design, (), y, offset, folds, fit_options, fold_fits, full_fits=full_fits,
+                   baselines=mean_rate_baselines(y, offset, folds), nuisance=nuisance,
+                   predictions=preds)
+    return preds
+
+
+def _baseline_cv(y: np.ndarray, folds: Folds, baselines: list[np.ndarray]) -> ModelCV:
+    """Scores of the baseline model against itself (all zero), without another fit."""
+    parts = [(y[test], mu, mu) for (_, test), mu in zip(folds.splits(), baselines)]
+    heldout = np.full(len(y), np.nan)
+    for (_, test), mu in zip(folds.splits(), baselines):
+        heldout[test] = mu
+    return ModelCV((), tuple(heldout_score(*p) for p in parts), pool_scores(parts),
+                   heldout=heldout)
 
 
 @dataclass(frozen=True)
@@ -169,6 +209,9 @@ class CellAnalysis:
     goodness : GoodnessOfFit or None
         Goodness of fit of the chosen model (the mean-rate model for "none") on its held-out
         predictions (:mod:`encodex.compare.goodness`); None when not computed.
+    baseline_fit : PoissonFit or None
+        The nuisance-only model (e.g. drift only) fitted on all bins, when there are
+        nuisance terms ("one-step"; refitted for plotting with "refit").
     """
 
     selection: Selection
@@ -178,10 +221,62 @@ class CellAnalysis:
     shuffle_null: np.ndarray = field(default_factory=lambda: np.empty(0))
     notes: tuple[str, ...] = ()
     goodness: object | None = None
+    baseline_fit: object | None = None
 
     @property
     def label(self) -> str:
         return self.selection.label
+
+
+class ModelScorer:
+    """Cross-validated per-fold scores of the models of one cell, each model fitted once.
+
+    Calling the scorer with a model (tuple of variables) returns its per-fold held-out bits
+    per spike against the cell's baseline model (the mean-rate model, or the nuisance-only
+    model when ``nuisance`` is given); it is the ``score`` function of
+    :func:`encodex.compare.selection.select_variables`. Several selection rules can share one
+    scorer: a model scored for one rule is not fitted again for the next.
+
+    Attributes
+    ----------
+    cvs : dict
+        :class:`ModelCV` of every model scored so far.
+    full_fits : dict
+        All-bins fits by model ("one-step"), used as warm starts; ``()`` is the
+        nuisance-only fit.
+    baselines : list of ndarray
+        Held-out expected counts of the baseline model per fold.
+    """
+
+    def __init__(self, design, y: np.ndarray, offset: np.ndarray, folds: Folds,
+                 fit_options=None, fold_fits: str = "one-step",
+                 nuisance: tuple[str, ...] = ()):
+        self.design, self.y, self.offset, self.folds = design, np.asarray(y), offset, folds
+        self.fit_options, self.fold_fits, self.nuisance = fit_options, fold_fits, tuple(nuisance)
+        self.cvs: dict[Model, ModelCV] = {}
+        self.full_fits: dict = {}
+        if self.nuisance:
+            self.baselines = nuisance_baselines(design, self.nuisance, self.y, offset, folds,
+                                                fit_options, fold_fits, self.full_fits)
+        else:
+            self.baselines = mean_rate_baselines(self.y, offset, folds)
+
+    def __call__(self, model: Model) -> np.ndarray:
+        model = tuple(model)
+        if model not in self.cvs:
+            self.cvs[model] = self._cross_validate(model)
+        return self.cvs[model].bits_per_spike
+
+    def _cross_validate(self, model: Model) -> ModelCV:
+        if not model:
+            return _baseline_cv(self.y, self.folds, self.baselines)
+        # Warm start from the largest already-fitted sub-model (the forward path's parent).
+        parents = [m for m in self.full_fits if set(m) < set(model)]
+        start = self.full_fits[max(parents, key=len)] if parents else None
+        return cross_validate(self.design, model, self.y, self.offset, self.folds,
+                              self.fit_options, self.fold_fits, start=start,
+                              full_fits=self.full_fits, baselines=self.baselines,
+                              nuisance=self.nuisance)
 
 
 @single_threaded
@@ -189,8 +284,9 @@ def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
                  variables, alpha: float = 0.05, exhaustive: bool = False,
                  shuffles: int = 0, min_shift_bins: int = 0,
                  rng: np.random.Generator | None = None, fit_options=None,
-                 refit: bool = True, correction: str = "bonferroni",
-                 fold_fits: str = "one-step", goodness: bool = True,
+                 refit: bool = True, correction: str = "signflip",
+                 fold_fits: str = "one-step", nuisance: tuple[str, ...] = (),
+                 goodness: bool = True,
                  goodness_rng: np.random.Generator | None = None) -> CellAnalysis:
     """Choose the variables one cell carries and score every model tried.
 
@@ -207,11 +303,11 @@ def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
     variables : sequence of str
         Variables to consider.
     alpha : float
-        Level of each one-sided Wilcoxon signed-rank test.
+        Level of the test of each added variable (see ``correction``).
     exhaustive : bool
         Score every subset (same decision rule).
-    correction : {"bonferroni", "none"}
-        Multiple-candidate correction of each forward step (see
+    correction : {"signflip", "bonferroni", "none"}
+        Step test of forward selection (see
         :func:`encodex.compare.selection.select_variables`).
     shuffles : int
         Circular shifts of the spike train for the empirical null of the held-out gain of
@@ -224,6 +320,10 @@ def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
         How each fold's model is fitted; see :func:`cross_validate`.
     refit : bool
         Refit the chosen model on all bins for plotting.
+    nuisance : tuple of str
+        Terms of the design in every model, the baseline included (e.g. the slow drift,
+        :data:`encodex.design.DRIFT_TERM`): the baseline is then the nuisance-only model and
+        every score, gain and p-value is relative to it.
     goodness : bool
         Check the fit of the chosen model on its held-out predictions (time-rescaling KS
         test, dispersion, short-lag history; :func:`encodex.compare.goodness.goodness_of_fit`,
@@ -237,18 +337,9 @@ def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
     CellAnalysis
     """
     y = np.asarray(y)
-    cvs: dict[Model, ModelCV] = {}
-    full_fits: dict = {}
-    baselines = mean_rate_baselines(y, offset, folds)
-
-    def score(model: Model) -> np.ndarray:
-        # Warm start from the largest already-fitted sub-model (the forward path's parent).
-        parents = [m for m in full_fits if set(m) < set(model)]
-        start = full_fits[max(parents, key=len)] if parents else None
-        cvs[model] = cross_validate(design, model, y, offset, folds, fit_options, fold_fits,
-                                    start=start, full_fits=full_fits, baselines=baselines)
-        return cvs[model].bits_per_spike
-
+    nuisance = tuple(nuisance)
+    score = ModelScorer(design, y, offset, folds, fit_options, fold_fits, nuisance)
+    cvs, full_fits = score.cvs, score.full_fits
     selection = select_variables(variables, score, alpha=alpha, exhaustive=exhaustive,
                                  correction=correction)
     notes = []
@@ -264,10 +355,18 @@ def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
 
         final = full_fits.get(tuple(selection.chosen))
         if final is None:
-            final = fit_poisson(design.subset(selection.chosen), y, offset, lambdas=None,
-                                options=fit_options)
+            final = fit_poisson(design.subset(tuple(selection.chosen) + nuisance), y, offset,
+                                lambdas=None, options=fit_options)
         if not final.converged:
             notes.append(f"final fit did not converge ({final.reason})")
+    baseline_fit = None
+    if refit and nuisance and not selection.chosen:
+        from encodex.fit import fit_poisson
+
+        baseline_fit = full_fits.get(())
+        if baseline_fit is None:
+            baseline_fit = fit_poisson(design.subset(nuisance), y, offset, lambdas=None,
+                                       options=fit_options)
 
     shuffle_p = float("nan")
     null = np.empty(0)
@@ -276,7 +375,7 @@ def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
         if tested:
             null = shuffle_null(design, tested, y, offset, folds, shuffles, min_shift_bins,
                                 rng if rng is not None else np.random.default_rng(0),
-                                fit_options, fold_fits)
+                                fit_options, fold_fits, nuisance)
             observed = float(np.mean(cvs[tested].bits_per_spike))
             shuffle_p = float((1 + np.count_nonzero(null >= observed)) / (1 + shuffles))
     fit_check = None
@@ -289,18 +388,20 @@ def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
             fit_check = goodness_of_fit(
                 y, mu, float(np.exp(np.median(offset))),
                 goodness_rng if goodness_rng is not None else np.random.default_rng(0))
-    return CellAnalysis(selection, dict(cvs), final, shuffle_p, null, tuple(notes), fit_check)
+    return CellAnalysis(selection, dict(cvs), final, shuffle_p, null, tuple(notes),
+                        goodness=fit_check, baseline_fit=baseline_fit)
 
 
 def shuffle_null(design, model: Model, y, offset, folds: Folds, n: int, min_shift_bins: int,
                  rng: np.random.Generator, fit_options=None,
-                 fold_fits: str = "one-step") -> np.ndarray:
+                 fold_fits: str = "one-step", nuisance: tuple[str, ...] = ()) -> np.ndarray:
     """Mean held-out bits per spike of ``model`` on ``n`` circularly shifted spike trains.
 
     Each shift moves the spike train against behaviour by a uniform random number of bins in
     ``[min_shift_bins, n_rows - min_shift_bins]`` (wrapping around), which keeps the spike
     train's own temporal structure and destroys its relation to behaviour. The same folds and
-    the same fitting procedure as for the real data are used.
+    the same fitting procedure as for the real data are used (nuisance terms included, so the
+    score is against the nuisance-only model of the shifted train).
     """
     n_rows = len(y)
     if n_rows <= 2 * min_shift_bins:
@@ -312,7 +413,7 @@ def shuffle_null(design, model: Model, y, offset, folds: Folds, n: int, min_shif
     out = np.empty(n)
     for i, s in enumerate(shifts):
         cv = cross_validate(design, model, np.roll(y, int(s)), offset, folds, fit_options,
-                            fold_fits)
+                            fold_fits, nuisance=nuisance)
         out[i] = float(np.mean(cv.bits_per_spike))
     return out
 

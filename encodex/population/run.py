@@ -19,6 +19,7 @@ import pandas as pd
 
 from encodex.compare.folds import chunked_folds
 from encodex.compare.goodness import GOODNESS_COLUMNS, GOODNESS_STATEMENT
+from encodex.compare.selection import describe_test
 from encodex.errors import EncodexError, InputError, SettingsError
 from encodex.fit.smoothing import CRITERION_STATEMENT
 from encodex.population.checkpoint import (
@@ -45,10 +46,18 @@ MODEL_COLUMNS = (
     "pseudo_r2", "deviance_explained",
 )
 
+DRIFT_STATEMENT = (
+    "every model, the baseline included, holds a smooth of time on the environment's clock "
+    "(cubic P-spline, one basis function per 300 s of environment plus three, 4 to 12, "
+    "second-order difference penalty, smoothness selected with the other terms); gains and "
+    "bits per spike are relative to the drift-only model"
+)
+
 LABEL_STATEMENT = (
     "A label (column 'variables') is a statistical statement about this session's recorded "
     "behaviour: adding each listed variable improved held-out prediction of the spike counts "
-    "across cross-validation folds (one-sided Wilcoxon signed-rank test at the stated alpha). "
+    "across cross-validation folds (the step test of run.json, methods.selection, at the "
+    "stated alpha). "
     "It is not proof that the cell encodes the variable mechanistically: correlated "
     "behaviour, unmodelled variables or limited sampling can produce or hide a label."
 )
@@ -149,11 +158,18 @@ class _Fits(Mapping):
 
             env_name, unit = key
             env = self._envs[env_name]
-            design = environment_design(env).subset(parse_label(self._labels[key]))
+            from encodex.design import DRIFT_TERM
+
+            nuisance = (DRIFT_TERM,) if env.clock is not None else ()
+            full = environment_design(env)
             y = _env_counts(self._session, env_name, unit, env)
+            offset = np.full(env.n_rows, np.log(env.bin_size))
             with threadpool_limits(limits=1):
-                self._known[key] = fit_poisson(design, y, np.full(env.n_rows,
-                                                                  np.log(env.bin_size)))
+                # Started like the run's own fit: from the drift-only fit when there is one.
+                start = fit_poisson(full.subset(nuisance), y, offset) if nuisance else None
+                self._known[key] = fit_poisson(
+                    full.subset(parse_label(self._labels[key]) + nuisance), y, offset,
+                    start=start)
         return self._known[key]
 
     def __iter__(self):
@@ -230,10 +246,28 @@ def _environment_work(session, env_name: str, settings: RunSettings,
     token = stable_hash([fingerprint, env_name, settings.to_dict()])
     all_kinds = dict(getattr(session, "kinds", {}) or {})
     kinds = tuple(sorted((v, all_kinds[v]) for v in variables if v in all_kinds))
+    clock = _drift_clock(session, k, rows, settings, variables, info)
     work = EnvironmentWork(env_name, token, cov, variables, float(session.bin_size), fold,
                            settings.folds, settings.basis_sizes, kinds, ex, ey, note,
-                           settings.gram_precision)
+                           gram_precision=settings.gram_precision, clock=clock)
     return work, info
+
+
+def _drift_clock(session, k: int, rows: np.ndarray, settings: RunSettings, variables,
+                 info: dict) -> np.ndarray | None:
+    """Environment clock of the usable bins for the drift term (None when it is off)."""
+    from encodex.design import DRIFT_TERM, drift_basis_size
+
+    if not settings.drift or rows.size < 2:
+        return None
+    if DRIFT_TERM in variables:
+        raise SettingsError(f"the name '{DRIFT_TERM}' is reserved for the slow-drift term; "
+                            "rename that variable (or switch drift off with --no-drift)")
+    time = np.asarray(session.time, dtype=float)
+    start = time[np.flatnonzero(np.asarray(session.environment) == k)[0]]
+    clock = np.ascontiguousarray(time[rows] - start)
+    info["drift_basis_functions"] = drift_basis_size(clock[-1] - clock[0])
+    return clock
 
 
 def _env_counts(session, env_name: str, unit: str, env: EnvironmentWork) -> np.ndarray:
@@ -406,7 +440,9 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
     m = max((len(e.variables) for e in envs.values()), default=0)
     if m:
         level = rs.alpha / m if rs.correction == "bonferroni" else rs.alpha
-        if 2.0 ** -rs.folds >= level:
+        reachable = (2.0 ** -rs.folds <= level if rs.correction == "signflip"
+                     else 2.0 ** -rs.folds < level)
+        if not reachable:
             need = int(np.floor(-np.log2(level))) + 1
             raise SettingsError(
                 f"with {rs.folds} folds the smallest possible p-value is 2^-{rs.folds} = "
@@ -511,11 +547,12 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
         },
         "methods": {"folds": FOLD_STATEMENT, "smoothness": SMOOTHNESS_STATEMENTS[rs.fold_fits],
                     "smoothness_criterion": CRITERION_STATEMENT,
-                    "selection": ("forward selection from the mean-rate model; a variable is "
+                    "drift": DRIFT_STATEMENT if rs.drift else "no drift term",
+                    "selection": ("forward selection from the "
+                                  + ("drift-only" if rs.drift else "mean-rate")
+                                  + " model; a variable is "
                                   "kept if it improves held-out bits per spike across folds by "
-                                  f"a one-sided Wilcoxon signed-rank test at alpha={rs.alpha}"
-                                  + (" divided by the number of candidates of the step "
-                                     "(Bonferroni)" if rs.correction == "bonferroni" else "")
+                                  "an " + describe_test(rs.correction, rs.alpha)
                                   + ("; every subset scored (exhaustive)"
                                      if rs.exhaustive else "")),
                     "goodness_of_fit": GOODNESS_STATEMENT},
@@ -574,27 +611,36 @@ cells.csv   one row per unit and environment:
   variables (the label: variables carried, in canonical order joined by "+"; "none" when
              the cell was labelled and carries no variable; empty when not labelled),
   bits_per_spike (held-out information: log-likelihood gain of the chosen model over the
-                  mean-rate model, base-2, all held-out bins of all folds pooled, per
-                  held-out spike; 0 for "none", whose chosen model is the mean rate),
-  p_value (one-sided Wilcoxon signed-rank p of the chosen model against the mean-rate model
-           across folds; for "none", that of the best single-variable model),
+                  baseline model, base-2, all held-out bins of all folds pooled, per
+                  held-out spike; 0 for "none", whose chosen model is the baseline). The
+                  baseline is the drift-only model - a smooth of time on the environment's
+                  clock, in every model - unless the run was made with drift off
+                  (run.json settings.drift false, --no-drift), then the mean-rate model,
+  p_value (one-sided p of the chosen model against the baseline model across folds, by the
+           run's step test; for "none", the first step's p-value),
   gain_<variable> (held-out bits per spike that the variable adds to the chosen model, or
                    that removing it costs when it is in the model, averaged over folds -
                    the average the test works on, which weights folds equally and so can
-                   differ from the pooled bits_per_spike; empty if not analysed),
+                   differ from the pooled bits_per_spike; every model holds the drift term
+                   when it is on; empty if not analysed),
   shuffle_p (empirical p of the held-out gain against circular shifts; empty when off),
   ambiguous_with (variables that a chosen variable cannot be told apart from in this
                   environment because their smooth terms overlap - concurvity of the
-                  design >= 0.8, see encodex.compare.concurvity - ";"-separated),
+                  design >= 0.8, see encodex.compare.concurvity - ";"-separated; "drift"
+                  when the variable follows the environment's clock, as when the animal
+                  slows down over the session),
   pseudo_r2 (McFadden, 1 - LL_model / LL_mean, held-out, pooled),
   deviance_explained (1 - D_model / D_mean, held-out, pooled),
   selection_path (the forward steps, e.g. "+position(p=0.002<0.0167) > xspeed(p=0.0244>=0.025)":
-                  "+" the step's best candidate was added, "x" it was rejected; p is its
-                  one-sided Wilcoxon signed-rank p-value across folds, shown against the
-                  step's level - alpha, divided by the step's number of candidates under the
-                  Bonferroni correction; a variable is added when p < level. With k folds
-                  the smallest attainable p is 2^-k (0.000977 for 10 folds), so a level below
-                  it can never be passed),
+                  "+" the step's best candidate was added, "x" it was rejected; p is the
+                  step test's p-value across folds (run.json settings.correction:
+                  "signflip", the default, an exact sign-flip test of the largest
+                  candidate's mean fold difference, candidates flipped together, adjusted
+                  for the step's candidates, added when p <= level = alpha; "bonferroni",
+                  one-sided Wilcoxon signed-rank p against alpha / number of candidates,
+                  added when p < level; "none", Wilcoxon against alpha). With k folds the
+                  smallest attainable p is 2^-k (0.000977 for 10 folds), so a level below it
+                  can never be passed),
   tied_with (other models with as many variables that the chosen one does not beat
              significantly across folds, ";"-separated labels),
   goodness of fit of the chosen model (the mean-rate model for "none") on its held-out
@@ -608,14 +654,17 @@ cells.csv   one row per unit and environment:
   but its response curves and gains are approximate.
 models.csv  one row per unit, environment, model (label) and fold: n_spikes_test (spikes in
   the held-out fold), loglik_test (Poisson log-likelihood of the held-out bins, natural log,
-  nats, including the log y! term), bits_per_spike (held-out gain over the mean-rate model
-  fitted on the training folds, bits per held-out spike), pseudo_r2, deviance_explained.
+  nats, including the log y! term), bits_per_spike (held-out gain over the baseline model -
+  drift-only, or mean-rate with drift off - fitted on the training folds, bits per held-out
+  spike), pseudo_r2, deviance_explained.
 run.json    settings, reading options, package versions, timings, masked bins, dropped
   spikes, and per environment the variables analysed and the reason each other was not.
 units/<environment>/<unit>.npz   arrays (no pickles) of one cell:
   ratemap__occupancy_s, ratemap__spikes (seconds and spikes per spatial bin, rows y,
     columns x), ratemap__edges_x, ratemap__edges_y (bin edges, m);
-  for each term <t> of the chosen model (any name: built-in, phase, user or nuisance term):
+  for each term <t> of the chosen model (any name: built-in, phase, user or nuisance term;
+  with drift on the term "drift", grid in seconds on the environment's clock, is saved for
+  every cell, from the drift-only model for "none"):
     <t>__grid (planar: <t>__grid_x, <t>__grid_y), in the variable's unit;
     <t>__log_modulation: natural log of the factor by which the term multiplies the rate;
       each term sums to zero over the environment's bins, so factor 1 is NOT the mean rate;

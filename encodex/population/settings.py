@@ -38,12 +38,14 @@ class RunSettings:
         Seed of every random stream (folds, shuffles); streams are derived from
         (seed, environment[, unit]) so results do not depend on the order of the work.
     alpha : float
-        Level of the one-sided Wilcoxon signed-rank test of each added variable.
+        Level of the test of each added variable (false-label rate of untuned cells).
     exhaustive : bool
         Score every subset of the variables (same decision rule as forward selection).
     correction : str
-        "bonferroni" (default): the best of m candidates of a forward step is tested at
-        alpha / m, so that untuned cells are labelled at most at rate alpha; "none": at alpha.
+        Step test of forward selection (:mod:`encodex.compare.selection`): "signflip"
+        (default), an exact sign-flip max-statistic test over the candidates of the step at
+        alpha; "bonferroni": one-sided Wilcoxon test of the best of m candidates at alpha / m;
+        "none": Wilcoxon at alpha.
     shuffles : int
         Number of circular shifts of each spike train for the empirical null (0: off).
     min_shift_s : float
@@ -72,6 +74,11 @@ class RunSettings:
         float64, so every fit converges to the same optimum.
         ``reference_checks/test_single_precision_gram.py`` bounds the effect on
         coefficients, scores and labels. "double": float64 throughout.
+    drift : bool
+        True (default): every model, the baseline included, holds a smooth of time on the
+        environment's clock (:mod:`encodex.design.drift`), so the baseline is the drift-only
+        model and gains and bits per spike are relative to it; False: the baseline is the
+        mean-rate model.
     """
 
     variables: tuple[str, ...] | None = None
@@ -80,7 +87,7 @@ class RunSettings:
     seed: int = 0
     alpha: float = 0.05
     exhaustive: bool = False
-    correction: str = "bonferroni"
+    correction: str = "signflip"
     shuffles: int = 0
     min_shift_s: float = 20.0
     min_spikes: int = 100
@@ -89,6 +96,7 @@ class RunSettings:
     ratemap_bin_m: float = 0.05
     fold_fits: str = "one-step"
     gram_precision: str = "single"
+    drift: bool = True
 
     def __post_init__(self):
         if self.variables is not None:
@@ -113,15 +121,17 @@ class RunSettings:
         _int_at_least("min_spikes", self.min_spikes, 1, "100")
         if not (isinstance(self.alpha, (int, float)) and 0 < self.alpha < 1):
             raise SettingsError(f"alpha must be between 0 and 1 (got {self.alpha}); use 0.05")
-        if self.correction not in ("bonferroni", "none"):
-            raise SettingsError(f"correction must be 'bonferroni' or 'none' (got "
-                                f"{self.correction!r})")
+        if self.correction not in ("signflip", "bonferroni", "none"):
+            raise SettingsError(f"correction must be 'signflip', 'bonferroni' or 'none' (got "
+                                f"{self.correction!r}); use --correction signflip")
         if self.fold_fits not in ("refit", "one-step"):
             raise SettingsError(f"fold_fits must be 'refit' or 'one-step' (got "
                                 f"{self.fold_fits!r}); use --fold-fits refit")
         if self.gram_precision not in ("single", "double"):
             raise SettingsError(f"gram_precision must be 'single' or 'double' (got "
                                 f"{self.gram_precision!r}); use --gram-precision double")
+        if not isinstance(self.drift, bool):
+            raise SettingsError(f"drift must be True or False (got {self.drift!r})")
         if not (math.isfinite(self.min_shift_s) and self.min_shift_s >= 0):
             raise SettingsError(f"min_shift_s must be >= 0 seconds (got {self.min_shift_s})")
         if self.bin_size is not None and not (

@@ -70,6 +70,9 @@ class EnvironmentWork:
         Why the environment cannot be analysed ("" when it can).
     gram_precision : str
         Arithmetic of the design's X'WX (:func:`encodex.design.build_design`).
+    clock : ndarray or None
+        Seconds since the environment's first bin, per usable bin: the covariate of the slow
+        drift term (:mod:`encodex.design.drift`); None when the drift term is off.
     """
 
     name: str
@@ -85,6 +88,7 @@ class EnvironmentWork:
     edges_y: np.ndarray | None
     note: str = ""
     gram_precision: str = "double"
+    clock: np.ndarray | None = None
 
     @property
     def n_rows(self) -> int:
@@ -145,11 +149,14 @@ def environment_design(env: EnvironmentWork):
     if env.token in _DESIGNS:
         _DESIGNS.move_to_end(env.token)
         return _DESIGNS[env.token]
-    from encodex.design import build_design, default_bases
+    from encodex.design import DRIFT_TERM, build_design, default_bases, drift_basis
 
     cov = {v: env.covariates[v] for v in env.variables}
     bases = default_bases(cov, env.variables, sizes=dict(env.basis_sizes),
                           kinds=dict(env.kinds))
+    if env.clock is not None:
+        cov[DRIFT_TERM] = env.clock
+        bases[DRIFT_TERM] = drift_basis(env.clock)
     design = build_design(cov, bases, gram_precision=env.gram_precision)
     _DESIGNS[env.token] = design
     while len(_DESIGNS) > 2:
@@ -229,6 +236,8 @@ def _analyse_cell(env, unit, y, settings, n_spikes, rate, arrays):
     from encodex.compare.cell import analyse_cell, model_rows
     from encodex.compare.folds import Folds
 
+    from encodex.design import DRIFT_TERM
+
     design = environment_design(env)
     offset = np.full(env.n_rows, np.log(env.bin_size))
     folds = Folds(env.fold, env.k)
@@ -240,6 +249,7 @@ def _analyse_cell(env, unit, y, settings, n_spikes, rate, arrays):
         rng=stream(settings.seed, env.name, unit, PURPOSE_SHUFFLES),
         fold_fits=settings.fold_fits,
         goodness_rng=stream(settings.seed, env.name, unit, PURPOSE_GOODNESS),
+        nuisance=(DRIFT_TERM,) if env.clock is not None else (),
     )
     sel = a.selection
     chosen_cv = a.models[sel.chosen]
@@ -268,12 +278,17 @@ def _analyse_cell(env, unit, y, settings, n_spikes, rate, arrays):
     if a.goodness is not None:
         row.update(a.goodness.row())
         arrays.update(a.goodness.arrays())
-    if a.final_fit is not None:
-        # the chosen model's terms, keys in one place (encodex.population.curves)
+    # the chosen model's terms (the drift-only model's for "none"), keys in one place
+    # (encodex.population.curves)
+    fit = a.final_fit if a.final_fit is not None else a.baseline_fit
+    if fit is not None:
         from encodex.population.curves import response_arrays
 
+        cov = dict(env.covariates)
+        if env.clock is not None:
+            cov[DRIFT_TERM] = env.clock
         arrays.update(response_arrays(
-            a.final_fit, design, y, env.bin_size, env.covariates,
+            fit, design, y, env.bin_size, cov,
             None if env.edges_x is None else (env.edges_x, env.edges_y)))
     if settings.shuffles:
         arrays["shuffle__null_bits_per_spike"] = a.shuffle_null
@@ -281,17 +296,23 @@ def _analyse_cell(env, unit, y, settings, n_spikes, rate, arrays):
 
 
 def selection_path(steps, alpha: float, correction: str) -> str:
-    """The forward steps as text: ``+position(p=0.002<0.0125) > xspeed(p=0.0244>=0.0167)``.
+    """The forward steps as text: ``+position(p=0.002<=0.05) > xspeed(p=0.0244>0.0167)``.
 
     ``+`` a variable was added, ``x`` the step's best candidate was rejected; each p-value is
-    shown against the level of its step (alpha, divided by the step's number of candidates
-    under the Bonferroni correction).
+    shown against the level its step was tested at (the step's own record; for steps written
+    before steps recorded it: alpha, divided by the step's number of candidates under the
+    Bonferroni correction). The sign says how the p-value compared with the level under the
+    step test's own rule (``<=`` for the sign-flip test, ``<`` for the Wilcoxon rules).
     """
     out = []
     for s in steps:
-        m = max(1, len(s.candidates))
-        level = alpha / m if correction == "bonferroni" else alpha
-        sign = "<" if s.p_value < level else ">="
+        level = getattr(s, "level", float("nan"))
+        if not np.isfinite(level):
+            level = alpha / max(1, len(s.candidates)) if correction == "bonferroni" else alpha
+        if correction == "signflip":
+            sign = "<=" if s.p_value <= level else ">"
+        else:
+            sign = "<" if s.p_value < level else ">="
         out.append(f"{'+' if s.accepted else 'x'}{label(set(s.best) - set(s.base))}"
                    f"(p={s.p_value:.3g}{sign}{level:.3g})")
     return " > ".join(out)

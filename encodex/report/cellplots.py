@@ -32,7 +32,7 @@ __all__ = ["response_terms", "term_rate", "parse_selection_path", "draw_cell",
 Z95 = 1.959963984540054
 #: Bins (spatial or along a variable) visited for less than this are not given a rate.
 MIN_BIN_OCCUPANCY_S = MIN_OCCUPANCY_S
-_PATH_STEP = re.compile(r"([+x])([^(]+)\(p=([^<>=)]+)(?:(<|>=)([^)]+))?\)")
+_PATH_STEP = re.compile(r"([+x])([^(]+)\(p=([^<>=)]+)(?:(<=|<|>=|>)([^)]+))?\)")
 _NAMES = {"distance": "distance since trial start", "time": "time since trial start"}
 
 

@@ -65,6 +65,9 @@ REFERENCES: dict[str, str] = {
                              "rescaling theorem: determining goodness of fit for discrete time "
                              "statistical models of neural spiking. Neural Computation "
                              "22:2477-2506.",
+    "Westfall & Young 1993": "Westfall, P. H. & Young, S. S. (1993). Resampling-Based "
+                             "Multiple Testing: Examples and Methods for p-Value Adjustment. "
+                             "Wiley.",
     "Wilson 1927": "Wilson, E. B. (1927). Probable inference, the law of succession, and "
                    "statistical inference. J. Am. Stat. Assoc. 22:209-212.",
     "Newcombe 1998a": "Newcombe, R. G. (1998a). Two-sided confidence intervals for the single "
@@ -372,6 +375,20 @@ def _bases(m: MethodsInput):
         "5.4).", ("Eilers & Marx 1996", "Wood 2017"))
 
 
+@register_sentence("drift")
+def _drift(m: MethodsInput):
+    if not m.get("drift", False):
+        return None
+    return Sentence(
+        "To keep slow changes of the firing rate over the session from being read as tuning "
+        "to behaviour that also changed over the session, every model, the baseline "
+        "included, held a smooth term of time on the environment's own clock (cubic "
+        "P-spline with one basis function per 5 minutes of environment plus three, 4 to 12, "
+        "second-order difference penalty, smoothness selected with the other terms); "
+        "held-out scores, gains and p-values are therefore relative to the drift-only "
+        "model.", ("Eilers & Marx 1996",))
+
+
 @register_sentence("fold_fits")
 def _smoothness(m: MethodsInput):
     text = ("Smoothing parameters were chosen by maximising the Laplace-approximate "
@@ -433,9 +450,11 @@ def _folds(m: MethodsInput):
 
 @register_sentence("score")
 def _score(m: MethodsInput):
+    base = ("the drift-only model (the slow-drift term alone) fitted on the training folds"
+            if m.get("drift", False) else "a mean-rate model fitted on the training folds")
     return Sentence(
-        "The score of a model on a held-out fold was its log-likelihood minus that of a "
-        "mean-rate model fitted on the training folds, in bits per held-out spike. The "
+        "The score of a model on a held-out fold was its log-likelihood minus that of "
+        f"{base}, in bits per held-out spike. The "
         "information of the chosen model (cells.csv bits_per_spike) pools all held-out bins "
         "(summed gain over summed spikes), whereas the contribution of a variable "
         "(gain_<variable>) is the fold-averaged difference in score between the chosen model "
@@ -453,19 +472,32 @@ def _selection(m: MethodsInput):
     head = ("Every subset of the candidate variables was scored, and the label was chosen by "
             "the forward rule" if exhaustive else
             "Variables were selected by forward search (Hardcastle et al. 2017)")
-    text = (f"{head}: starting from the mean-rate model, the candidate that most improved the "
+    start = "drift-only" if m.get("drift", False) else "mean-rate"
+    text = (f"{head}: starting from the {start} model, the candidate that most improved the "
             f"mean held-out score was added only if its improvement over the current model "
-            f"across folds was significant by a one-sided Wilcoxon signed-rank test (Wilcoxon "
-            f"1945) at level ")
-    if corr == "bonferroni":
-        text += (f"alpha / m with alpha = {_num(alpha)} and m the number of candidates of the "
-                 f"step (Bonferroni)")
+            f"across folds was significant ")
+    cites = ("Hardcastle et al. 2017",)
+    if corr == "signflip":
+        text += (f"by an exact sign-flip randomisation test at alpha = {_num(alpha)}: the "
+                 f"statistic was the largest studentised mean fold-wise improvement among the "
+                 f"step's candidates, and its null distribution was enumerated by flipping the "
+                 f"signs of the folds' differences for all candidates together, so that the "
+                 f"p-value is adjusted for the number of candidates while keeping their "
+                 f"correlation (max-statistic; Westfall & Young 1993)")
+        cites += ("Westfall & Young 1993",)
+    elif corr == "bonferroni":
+        text += (f"by a one-sided Wilcoxon signed-rank test (Wilcoxon 1945) at level alpha / m "
+                 f"with alpha = {_num(alpha)} and m the number of candidates of the step "
+                 f"(Bonferroni)")
+        cites += ("Wilcoxon 1945",)
     else:
-        text += f"alpha = {_num(alpha)} without correction for the number of candidates"
+        text += (f"by a one-sided Wilcoxon signed-rank test (Wilcoxon 1945) at level alpha = "
+                 f"{_num(alpha)} without correction for the number of candidates")
+        cites += ("Wilcoxon 1945",)
     text += (". A cell whose first step failed was labelled \"none\"; with "
              f"{k} folds the smallest attainable p-value is 2^-{k} = {2.0 ** -k:.3g}."
              if k else ". A cell whose first step failed was labelled \"none\".")
-    return Sentence(text, ("Hardcastle et al. 2017", "Wilcoxon 1945"))
+    return Sentence(text, cites)
 
 
 @register_sentence("min_spikes")
