@@ -610,6 +610,36 @@ def _unavailability(cov, valid, environment, environments, has_trials):
     return out
 
 
+def _phase_and_user_variables(recording, centres, t0, bin_size, max_gap_s, phase_band,
+                              phase_order, masks):
+    """Rhythm phase and user variables on the bins; adds their masks to ``masks``."""
+    n_bins = centres.size
+    extra_cov: dict[str, np.ndarray] = {}
+    phase_info = None
+    if recording.lfp is not None:
+        from encodex import rhythm
+
+        rhythm.check_bin_size(bin_size, phase_band)
+        pt, pp = rhythm.lfp_phase(recording.lfp.times, recording.lfp.values, phase_band,
+                                  phase_order)
+        phase = rhythm.phase_on_bins(pt, pp, t0, bin_size, n_bins)
+        extra_cov["phase"] = phase
+        masks["phase_unknown"] = ~np.isfinite(phase)
+        phase_info = {"band_hz": [float(b) for b in phase_band], "order": int(phase_order),
+                      "lfp_rate_hz": recording.lfp.rate_hz,
+                      "source": recording.lfp.source}
+    user_kinds = {}
+    if recording.extra:
+        unknown = np.zeros(n_bins, dtype=bool)
+        for name, sig in recording.extra.items():
+            v = _resample(centres, sig.times, sig.values, sig.kind, max_gap_s)
+            extra_cov[name] = v
+            user_kinds[name] = sig.kind
+            unknown |= ~np.isfinite(v)
+        masks["extra_unknown"] = unknown
+    return extra_cov, phase_info, user_kinds
+
+
 def build_session(
     recording: Recording,
     bin_size: float = DEFAULT_BIN_SIZE,
@@ -619,6 +649,7 @@ def build_session(
     heading_speed_threshold: float = DEFAULT_HEADING_SPEED_THRESHOLD,
     phase_band: tuple[float, float] = DEFAULT_PHASE_BAND,
     phase_order: int = 3,
+    **track_options,
 ) -> Session:
     """Bin a recording on a regular grid and compute the behavioural covariates.
 
@@ -644,6 +675,11 @@ def build_session(
         Bins must not span more than half a cycle of ``high``.
     phase_order : int
         Butterworth order of the band-pass filter (default 3).
+    **track_options
+        For a recording on a track (``recording.track`` set, or a ``track=TrackLayout``
+        here to project 2-D tracking onto it): options of
+        :func:`encodex.track_session.build_track_session` (``direction_speed``,
+        ``lap_trials``, ``jump_speed``, ``track``).
 
     Returns
     -------
@@ -659,6 +695,13 @@ def build_session(
         When the recording is shorter than one bin.
     """
     _check_settings(bin_size, speed_smoothing_s, max_gap_s, min_speed, heading_speed_threshold)
+    if recording.track is not None or track_options:
+        from encodex.track_session import build_track_session
+
+        return build_track_session(
+            recording, bin_size=bin_size, speed_smoothing_s=speed_smoothing_s,
+            max_gap_s=max_gap_s, min_speed=min_speed, phase_band=phase_band,
+            phase_order=phase_order, **track_options)
     ts = recording.timestamps
     t0 = float(ts[0])
     n_bins = int(np.floor((float(ts[-1]) - t0) / bin_size + 1e-9))
@@ -749,29 +792,8 @@ def build_session(
         valid &= np.isfinite(v)
 
     # --- rhythm phase and user variables: each masks the bins where it is unknown
-    extra_cov: dict[str, np.ndarray] = {}
-    phase_info = None
-    if recording.lfp is not None:
-        from encodex import rhythm
-
-        rhythm.check_bin_size(bin_size, phase_band)
-        pt, pp = rhythm.lfp_phase(recording.lfp.times, recording.lfp.values, phase_band,
-                                  phase_order)
-        phase = rhythm.phase_on_bins(pt, pp, t0, bin_size, n_bins)
-        extra_cov["phase"] = phase
-        masks["phase_unknown"] = ~np.isfinite(phase)
-        phase_info = {"band_hz": [float(b) for b in phase_band], "order": int(phase_order),
-                      "lfp_rate_hz": recording.lfp.rate_hz,
-                      "source": recording.lfp.source}
-    user_kinds = {}
-    if recording.extra:
-        unknown = np.zeros(n_bins, dtype=bool)
-        for name, sig in recording.extra.items():
-            v = _resample(centres, sig.times, sig.values, sig.kind, max_gap_s)
-            extra_cov[name] = v
-            user_kinds[name] = sig.kind
-            unknown |= ~np.isfinite(v)
-        masks["extra_unknown"] = unknown
+    extra_cov, phase_info, user_kinds = _phase_and_user_variables(
+        recording, centres, t0, bin_size, max_gap_s, phase_band, phase_order, masks)
     for m in ("phase_unknown", "extra_unknown"):
         if m in masks:
             valid &= ~masks[m]

@@ -32,7 +32,7 @@ import numpy as np
 from scipy.stats import wilcoxon
 
 from encodex.errors import SettingsError
-from encodex.variables import canonical_order, label
+from encodex.variables import canonical_order, is_complete, label, with_requirements, without
 
 Model = tuple[str, ...]
 ScoreFn = Callable[[Model], np.ndarray]
@@ -161,7 +161,8 @@ def select_variables(
     if exhaustive:
         for r in range(1, len(available) + 1):
             for sub in itertools.combinations(available, r):
-                get(sub)
+                if is_complete(sub):
+                    get(sub)
 
     current: Model = ()
     steps: list[Step] = []
@@ -169,7 +170,8 @@ def select_variables(
         remaining = [v for v in available if v not in current]
         if not remaining:
             break
-        cands = tuple(_key(current + (v,)) for v in remaining)
+        # a variable that needs another (direction needs position) brings it along
+        cands = tuple(dict.fromkeys(with_requirements(current + (v,)) for v in remaining))
         means = [float(np.nanmean(get(c))) for c in cands]
         # Ties are broken by canonical order (first candidate wins): deterministic.
         best = cands[int(np.argmax(means))]
@@ -193,10 +195,9 @@ def select_variables(
     gains: dict[str, float] = {}
     for v in available:
         if v in current:
-            other = tuple(x for x in current if x != v)
-            gains[v] = m_current - float(np.nanmean(get(other)))
+            gains[v] = m_current - float(np.nanmean(get(without(current, v))))
         else:
-            gains[v] = float(np.nanmean(get(current + (v,)))) - m_current
+            gains[v] = float(np.nanmean(get(with_requirements(current + (v,))))) - m_current
 
     ambiguous: list[str] = []
     if current:

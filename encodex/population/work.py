@@ -97,7 +97,8 @@ def environment_design(env: EnvironmentWork):
         return _DESIGNS[env.token]
     from encodex.design import build_design, default_bases
 
-    cov = {v: env.covariates[v] for v in env.variables}
+    # a direction term is evaluated on the track position too (its factor-by-curve input)
+    cov = {v: env.covariates[v] for v in set(env.variables) | ({"position"} & set(env.covariates))}
     bases = default_bases(cov, env.variables, sizes=dict(env.basis_sizes),
                           kinds=dict(env.kinds))
     design = build_design(cov, bases)

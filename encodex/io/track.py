@@ -1,0 +1,128 @@
+"""Track geometry: linear and circular tracks, and projection of 2-D tracking onto a track.
+
+A track is one-dimensional: the position along it is a distance in metres from its start
+(a linear track or corridor, from one end to the other) or round it (a circular track, from a
+chosen origin, in [0, length)). :class:`TrackLayout` states which, and optionally the path of
+the track in the room as a polyline, so that 2-D tracking can be projected onto it
+(:func:`project_onto_path`).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from encodex.errors import InputError, SettingsError
+
+#: Shapes of a track.
+TRACK_SHAPES = ("linear", "circular")
+
+
+@dataclass(frozen=True)
+class TrackLayout:
+    """What kind of track the position lies on.
+
+    Parameters
+    ----------
+    shape : {"linear", "circular"}
+        A linear track (or virtual corridor) has two ends; a circular track closes on itself,
+        so position wraps at ``length_m`` and its basis is periodic.
+    length_m : float, optional
+        Length of the track, metres. Required for a circular track (its period); for a
+        linear track it is taken from the path, or else from the data.
+    path : tuple of (float, float), optional
+        Points (x, y) in metres of the track's centre line in the room, in order from its
+        start; a circular track's path is closed from the last point back to the first.
+        Needed only to project 2-D tracking onto the track.
+    """
+
+    shape: str = "linear"
+    length_m: float | None = None
+    path: tuple[tuple[float, float], ...] | None = None
+
+    def __post_init__(self):
+        if self.shape not in TRACK_SHAPES:
+            raise SettingsError(f"track shape {self.shape!r} is unknown; use 'linear' or "
+                                "'circular'")
+        path = None
+        if self.path is not None:
+            pts = np.asarray(self.path, dtype=float)
+            if pts.ndim != 2 or pts.shape[1] != 2 or pts.shape[0] < 2 \
+                    or not np.all(np.isfinite(pts)):
+                raise SettingsError(
+                    "a track path needs at least two finite (x, y) points in metres, e.g. "
+                    "((0, 0), (1.5, 0))")
+            seg = np.hypot(*np.diff(_closed(pts, self.shape), axis=0).T)
+            if np.any(seg <= 0):
+                raise SettingsError("the track path repeats a point; give distinct points")
+            path = tuple((float(x), float(y)) for x, y in pts)
+            if self.length_m is None:
+                object.__setattr__(self, "length_m", float(seg.sum()))
+        object.__setattr__(self, "path", path)
+        if self.length_m is not None:
+            if not (np.isfinite(self.length_m) and self.length_m > 0):
+                raise SettingsError(f"track length must be a positive number of metres, got "
+                                    f"{self.length_m}")
+            object.__setattr__(self, "length_m", float(self.length_m))
+        if self.shape == "circular" and self.length_m is None:
+            raise SettingsError("a circular track needs its length in metres (length_m) or "
+                                "its path; give one")
+
+    @property
+    def circular(self) -> bool:
+        return self.shape == "circular"
+
+    def to_dict(self) -> dict:
+        return {"shape": self.shape, "length_m": self.length_m,
+                "path": None if self.path is None else [list(p) for p in self.path]}
+
+
+def _closed(pts: np.ndarray, shape: str) -> np.ndarray:
+    return np.vstack([pts, pts[:1]]) if shape == "circular" else pts
+
+
+def project_onto_path(xy, layout: TrackLayout) -> tuple[np.ndarray, np.ndarray]:
+    """Position along a track of 2-D tracking samples, by nearest point on its path.
+
+    Parameters
+    ----------
+    xy : ndarray, shape (n, 2)
+        Tracked (x, y), metres; NaN rows stay NaN.
+    layout : TrackLayout
+        With ``path`` set.
+
+    Returns
+    -------
+    along : ndarray, shape (n,)
+        Distance along the path from its first point to the nearest point on it, metres
+        (circular: in [0, length)).
+    off : ndarray, shape (n,)
+        Distance from the sample to that nearest point, metres.
+    """
+    if layout.path is None:
+        raise SettingsError("projecting onto a track needs its path: TrackLayout(path=...)")
+    xy = np.asarray(xy, dtype=float)
+    if xy.ndim != 2 or xy.shape[1] != 2:
+        raise InputError(f"tracking to project must have shape (n, 2), got {xy.shape}")
+    pts = _closed(np.asarray(layout.path, dtype=float), layout.shape)
+    a, b = pts[:-1], pts[1:]
+    d = b - a
+    seg_len = np.hypot(d[:, 0], d[:, 1])
+    start = np.concatenate([[0.0], np.cumsum(seg_len)[:-1]])
+    best = np.full(xy.shape[0], np.inf)
+    along = np.full(xy.shape[0], np.nan)
+    for k in range(a.shape[0]):
+        t = ((xy - a[k]) @ d[k]) / seg_len[k] ** 2
+        t = np.clip(t, 0.0, 1.0)
+        near = a[k] + t[:, None] * d[k]
+        dist = np.hypot(xy[:, 0] - near[:, 0], xy[:, 1] - near[:, 1])
+        better = dist < best
+        best[better] = dist[better]
+        along[better] = start[k] + t[better] * seg_len[k]
+    bad = ~np.all(np.isfinite(xy), axis=1)
+    along[bad] = np.nan
+    best[bad] = np.nan
+    if layout.circular:
+        along = np.mod(along, seg_len.sum())
+    return along, best
