@@ -199,10 +199,9 @@ def _analyse_cell(env, unit, y, settings, n_spikes, rate, arrays):
         row[f"gain_{v}"] = sel.gains.get(v, np.nan)
     # Concurvity flags (encodex.compare.concurvity): variables the chosen ones cannot be told
     # apart from on this environment's bins, whatever the spikes.
-    from encodex.compare.concurvity import ambiguous_pairs
+    from encodex.compare.concurvity import ambiguity_flags
 
-    flags = ambiguous_pairs(design, sel.chosen) if sel.chosen else {}
-    flagged = canonical_order({v for vs in flags.values() for v in vs})
+    flagged = ambiguity_flags(design, sel.chosen)
     row.update(
         shuffle_p=a.shuffle_p,
         ambiguous_with=";".join(flagged),
