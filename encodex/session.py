@@ -871,7 +871,8 @@ def build_session(
 def load_session(
     path, object_paths: Mapping[str, str] | None = None, drop_empty_units: bool = False,
     lfp: str | None = None, lfp_channel: int = 0, extra: Mapping[str, str] | None = None,
-    extra_kinds: Mapping[str, str] | None = None, **kw
+    extra_kinds: Mapping[str, str] | None = None, track=None, run_distance: str | None = None,
+    **kw
 ) -> Session:
     """Read a recording (``.nwb`` or ``.npz``) and bin it: ``build_session(read_recording(path))``.
 
@@ -894,13 +895,18 @@ def load_session(
     extra_kinds : mapping of str to str, optional
         ``"interval"`` or ``"circular"`` per user variable (default: circular when the
         series' unit is an angle).
+    track : {"linear", "circular"} or encodex.io.track.TrackLayout, optional
+        The position is along a track (see :func:`encodex.io.read_recording`).
+    run_distance : str, optional
+        NWB path of the cumulative distance physically run, metres (default: looked for at
+        ``processing/behavior/run_distance``).
     **kw
         Options of :func:`build_session` (``bin_size``, ``speed_smoothing_s``,
-        ``phase_band``, ...).
+        ``phase_band``, ...; on a track ``direction_speed``, ``lap_trials``, ``jump_speed``).
     """
     from encodex.io import read_recording
 
     rec = read_recording(path, drop_empty_units=drop_empty_units, lfp=lfp,
                          lfp_channel=lfp_channel, extra=extra, extra_kinds=extra_kinds,
-                         **dict(object_paths or {}))
+                         track=track, run_distance=run_distance, **dict(object_paths or {}))
     return build_session(rec, **kw)

@@ -97,7 +97,9 @@ def _continuous(ts, x, track, jump_speed):
     step = np.abs(np.diff(xg)) / np.diff(tg)
     jump = step > jump_speed
     seg = np.concatenate([[0], np.cumsum(jump)])
-    jump_times = 0.5 * (tg[:-1][jump] + tg[1:][jump])
+    # A jump happens at the first sample after it; bin centres sit between samples when the
+    # tracking is regular, so a lap boundary never falls on a bin centre by rounding.
+    jump_times = tg[1:][jump]
     return tg, xg, seg, jump_times
 
 
@@ -106,7 +108,9 @@ def _on_bins(centres, tg, xg, seg):
     k = np.clip(np.searchsorted(tg, centres, side="right") - 1, 0, tg.size - 2)
     same = seg[k] == seg[k + 1]
     frac = np.clip((centres - tg[k]) / (tg[k + 1] - tg[k]), 0.0, 1.0)
-    near = np.where(frac < 0.5, k, k + 1)
+    # a centre halfway between two samples takes the earlier one, whatever the rounding of
+    # the clock (timestamps written as start + rate differ by ~1e-14 s)
+    near = np.where(frac <= 0.5 + 1e-6, k, k + 1)
     pos = np.where(same, xg[k] + frac * (xg[k + 1] - xg[k]), xg[near])
     bin_seg = np.where(same, seg[k], seg[near])
     return pos, bin_seg

@@ -126,3 +126,37 @@ def project_onto_path(xy, layout: TrackLayout) -> tuple[np.ndarray, np.ndarray]:
     if layout.circular:
         along = np.mod(along, seg_len.sum())
     return along, best
+
+
+def layout_text(layout: TrackLayout) -> str:
+    """The text encodex writes as the ``reference_frame`` of a track position series.
+
+    ``"linear track, 1.5 m long; position from its start"`` or ``"circular track, 2 m round;
+    position from its origin"``; :func:`layout_from_text` reads it back.
+    """
+    if layout.circular:
+        return f"circular track, {layout.length_m:g} m round; position from its origin"
+    if layout.length_m is None:
+        return "linear track; position from its start"
+    return f"linear track, {layout.length_m:g} m long; position from its start"
+
+
+def layout_from_text(text: str) -> TrackLayout | None:
+    """A TrackLayout stated by a series' reference frame text, or None when it states none.
+
+    The text states a circular track when it holds the word ``circular`` (or ``loop``), and
+    its length as the first number followed by ``m`` (``"circular track, 2 m round"``).
+    """
+    import re
+
+    t = str(text or "").lower()
+    m = re.search(r"(\d+(?:\.\d*)?)\s*m\b", t)
+    length = float(m.group(1)) if m else None
+    if "circular" in t or "loop" in t:
+        if length is None:
+            raise InputError(f"the track position series says {text!r}: a circular track, but "
+                             "not its length; write e.g. 'circular track, 2.0 m round'")
+        return TrackLayout("circular", length_m=length)
+    if "track" in t or "corridor" in t:
+        return TrackLayout("linear", length_m=length)
+    return None
