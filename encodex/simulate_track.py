@@ -21,8 +21,8 @@ Four scenarios, one environment each (named after the scenario):
 Cells: position (Gaussian field, sigma 8-15 cm, 6-10x peak gain, the same in both
 directions), position+direction (a field in one running direction only, or at different
 places in the two directions; tracks where the animal runs both ways), speed (log-linear up to
-0.5 m/s), distance (Gaussian bump 0.4-1.6 m after the trial start), time (Gaussian bump 2-6 s
-after the trial start) and untuned cells, scaled to a mean rate of 1-4 Hz. Spikes by thinning
+0.5 m/s), distance (Gaussian bump 0.4-1.6 m after the trial start, sigma 0.2-0.3 m as in the
+arena simulator), time (Gaussian bump 2-6 s after the trial start, sigma 1-1.5 s) and untuned cells, scaled to a mean rate of 1-4 Hz. Spikes by thinning
 (Lewis and Shedler 1979, Naval Research Logistics Quarterly 26:403-413) as in
 :mod:`encodex.simulate`.
 """
@@ -143,9 +143,9 @@ def _draw(rng, variables, length):
     p = {"field_x": rng.uniform(0.15, 0.85) * length, "field_sigma_m": rng.uniform(0.08, 0.15),
          "field_gain": np.log(rng.uniform(6, 10)), "field_x_back": np.nan, "one_way": np.nan,
          "speed_slope": rng.uniform(1.1, 1.6) * (1 if rng.random() < 0.75 else -1),
-         "distance_peak_m": rng.uniform(0.4, 1.6), "distance_width_m": rng.uniform(0.12, 0.2),
+         "distance_peak_m": rng.uniform(0.4, 1.6), "distance_width_m": rng.uniform(0.2, 0.3),
          "distance_gain": np.log(rng.uniform(4, 7)), "time_peak_s": rng.uniform(2.0, 6.0),
-         "time_width_s": rng.uniform(0.6, 1.0), "time_gain": np.log(rng.uniform(4, 7))}
+         "time_width_s": rng.uniform(1.0, 1.5), "time_gain": np.log(rng.uniform(4, 7))}
     if "direction" in variables:
         p["one_way"] = float(rng.random() < 0.5)
         if not p["one_way"]:

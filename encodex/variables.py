@@ -46,8 +46,7 @@ DIRECTION = "direction"
 
 #: Variables that enter a model only together with others: the direction term is a
 #: difference between the position curves of the two running directions, so a model holds
-#: it only beside ``position`` (forward selection adds both at once when position is not in
-#: the model yet).
+#: it only beside ``position`` (forward selection offers it once position is in the model).
 REQUIRES: dict[str, tuple[str, ...]] = {"direction": ("position",)}
 
 #: Label of a cell that carries none of the variables.

@@ -149,7 +149,7 @@ def test_direction_term_is_the_signed_track_curve_and_not_centred():
         default_bases({"position": np.c_[x, x], "direction": s}, ["direction"])
 
 
-def test_forward_selection_adds_position_with_direction():
+def test_forward_selection_offers_direction_after_position():
     scores = {(): 0.0, ("position",): 0.05, ("speed",): 0.01,
               ("position", "direction"): 0.2, ("position", "speed"): 0.06,
               ("position", "speed", "direction"): 0.2}
@@ -163,7 +163,8 @@ def test_forward_selection_adds_position_with_direction():
     sel = select_variables(["position", "speed", "direction"], score)
     assert sel.chosen == ("position", "direction")
     assert ("direction",) not in seen and ("speed", "direction") not in seen
-    assert sel.steps[0].best == ("position", "direction")
+    assert sel.steps[0].best == ("position",) and sel.steps[1].best == ("position", "direction")
+    assert ("position", "direction") not in sel.steps[0].candidates
     ex = select_variables(["position", "speed", "direction"], score, exhaustive=True)
     assert ex.chosen == ("position", "direction")
 

@@ -170,8 +170,11 @@ def select_variables(
         remaining = [v for v in available if v not in current]
         if not remaining:
             break
-        # a variable that needs another (direction needs position) brings it along
-        cands = tuple(dict.fromkeys(with_requirements(current + (v,)) for v in remaining))
+        # a variable that needs another (direction needs position) is a candidate only once
+        # that one is in the model, as an interaction after its main effect
+        cands = tuple(_key(current + (v,)) for v in remaining if is_complete(current + (v,)))
+        if not cands:
+            break
         means = [float(np.nanmean(get(c))) for c in cands]
         # Ties are broken by canonical order (first candidate wins): deterministic.
         best = cands[int(np.argmax(means))]

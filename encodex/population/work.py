@@ -215,6 +215,9 @@ def _analyse_cell(env, unit, y, settings, n_spikes, rate, arrays):
     )
     if a.final_fit is not None:
         arrays.update(_responses(a.final_fit))
+        from encodex.fit.direction import direction_curves
+
+        arrays.update(direction_curves(a.final_fit))
     if settings.shuffles:
         arrays["shuffle__null_bits_per_spike"] = a.shuffle_null
     return {"cell": row, "models": model_rows(a.models)}, arrays, a.final_fit
@@ -234,6 +237,10 @@ def _responses(fit) -> dict:
 
 
 def _ratemap(env: EnvironmentWork, y: np.ndarray) -> dict:
+    if "position" in env.covariates and np.ndim(env.covariates["position"]) == 1:
+        from encodex.track_maps import track_arrays  # position along a track
+
+        return track_arrays(env.covariates, y, env.bin_size, dict(env.kinds))
     if env.edges_x is None or "position" not in env.covariates:
         return {}
     from encodex.classic import occupancy_map
