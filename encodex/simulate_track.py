@@ -139,7 +139,7 @@ def _trial_clocks(trial, phys):
     return dist, elapsed
 
 
-def _draw(rng, variables, length):
+def _draw(rng, variables, length, circular=False):
     p = {"field_x": rng.uniform(0.15, 0.85) * length, "field_sigma_m": rng.uniform(0.08, 0.15),
          "field_gain": np.log(rng.uniform(6, 10)), "field_x_back": np.nan, "one_way": np.nan,
          "speed_slope": rng.uniform(1.1, 1.6) * (1 if rng.random() < 0.75 else -1),
@@ -149,9 +149,15 @@ def _draw(rng, variables, length):
     if "direction" in variables:
         p["one_way"] = float(rng.random() < 0.5)
         if not p["one_way"]:
-            p["field_x_back"] = np.mod(p["field_x"] + rng.uniform(0.35, 0.65) * length, length)
-            if p["field_x_back"] < 0.15 * length or p["field_x_back"] > 0.85 * length:
-                p["field_x_back"] = 0.5 * length
+            # the field of the other direction lies 0.3-0.7 of the track length away (on a
+            # linear track within its inner 70%, on the far side of the first field)
+            shift = rng.uniform(0.3, 0.7) * length
+            if circular:
+                p["field_x_back"] = np.mod(p["field_x"] + shift, length)
+            else:
+                up = p["field_x"] + shift * 0.7
+                down = p["field_x"] - shift * 0.7
+                p["field_x_back"] = up if up <= 0.85 * length else max(down, 0.15 * length)
     return p
 
 
@@ -246,7 +252,7 @@ def simulate_track_recording(scenario: str = "shuttle", seed: int = 0, n_cells: 
     trains, rows = {}, []
     for i, variables in enumerate(kinds):
         uid = f"t{i:03d}"
-        p = _draw(rng, variables, length)
+        p = _draw(rng, variables, length, circular)
         g = np.exp(_track_log_gain(variables, p, pos, direction, speed, dist, elapsed, length,
                                    circular))
         target = rng.uniform(*mean_rate_hz)

@@ -248,6 +248,10 @@ def cell_figure(run: RunFolder, unit: str, environment: str):
         )
     row = row.iloc[0]
     arrays = run.unit_arrays(environment, unit) or {}
+    if "track__edges" in arrays:  # a cell on a track: its own layout
+        from encodex.report.track_figures import track_cell_figure
+
+        return track_cell_figure(run, unit, environment, row, arrays)
     vs = list(carried(row["variables"])) if row["status"] == "ok" else []
     n_top = max(1, len(vs)) + 1
     fig = plt.figure(figsize=(3.6 * max(n_top, 2), 6.6), layout="constrained")
