@@ -295,3 +295,37 @@ def simulate_track_recording(scenario: str = "shuttle", seed: int = 0, n_cells: 
                          provenance={"source": f"simulated {scenario} track"},
                          track=layout, run_distance=run_distance)
     return rec, pd.DataFrame(rows)
+
+
+def simulate_track_to_files(out_dir, scenario: str = "shuttle", seed: int = 0, **kw) -> dict:
+    """Simulate a track session and write ``track_<scenario>.nwb`` and its truth CSV.
+
+    Parameters
+    ----------
+    out_dir : str or Path
+        Folder (created when missing).
+    scenario, seed, **kw
+        As for :func:`simulate_track_recording`.
+
+    Returns
+    -------
+    dict
+        Paths under ``"nwb"`` and ``"truth"``.
+    """
+    from pathlib import Path
+
+    from encodex.errors import OutputError
+    from encodex.io import write_nwb
+
+    out = Path(out_dir)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(f"cannot create {out} ({exc.strerror}); choose a writable folder")
+    rec, truth = simulate_track_recording(scenario, seed=seed, **kw)
+    nwb = write_nwb(rec, out / f"track_{scenario}.nwb",
+                    session_description=f"Simulated {scenario} track session (encodex)",
+                    spike_time_resolution_s=1.0 / 30000.0)
+    path = out / f"track_{scenario}_truth.csv"
+    truth.to_csv(path, index=False)
+    return {"nwb": nwb, "truth": path}

@@ -191,3 +191,24 @@ def test_distance_on_a_shuttle_is_flagged_against_position_and_direction():
     assert ambiguity_flags(design, ("distance",)) == ("time", "position+direction")
     # a place cell with the same field both ways is not a distance cell
     assert ambiguity_flags(design, ("position",)) == ()
+
+
+def test_tables_count_flagged_cells_beside_the_cells():
+    import pandas as pd
+
+    from encodex.report.tables import label_counts, variable_counts
+
+    cells = pd.DataFrame({
+        "unit": ["a", "b", "c", "d"], "environment": "shuttle", "status": "ok",
+        "variables": ["distance", "distance", "position+direction", "none"],
+        "bits_per_spike": [0.2, 0.3, 0.5, 0.0],
+        "gain_distance": [0.2, 0.3, np.nan, np.nan],
+        "gain_position": [np.nan, np.nan, 0.3, np.nan],
+        "gain_direction": [np.nan, np.nan, 0.2, np.nan],
+        "ambiguous_with": ["position+direction", "", "distance", ""]})
+    lab = label_counts(cells).set_index("label")
+    assert lab.loc["distance", "n_cells"] == 2 and lab.loc["distance", "n_flagged"] == 1
+    assert lab.loc["none", "n_flagged"] == 0
+    var = variable_counts(cells, tested=("position", "distance", "direction")).set_index(
+        "variable")
+    assert var.loc["direction", "n_flagged"] == 1 and var.loc["distance", "n_flagged"] == 1

@@ -132,8 +132,15 @@ def run_demo(args) -> int:
     _headless()
     from encodex.report.demo import demo
 
-    result = demo(args.out, n_cells=args.cells, duration_s=args.duration, jobs=args.jobs,
-                  seed=args.seed, echo=_out)
+    if getattr(args, "track", None):
+        from encodex.report.track_demo import track_demo
+
+        result = track_demo(args.out, args.track, n_cells=args.cells,
+                            duration_s=args.duration, jobs=args.jobs, seed=args.seed,
+                            echo=_out)
+    else:
+        result = demo(args.out, n_cells=args.cells, duration_s=args.duration, jobs=args.jobs,
+                      seed=args.seed, echo=_out)
     _out(f"\nreport: {result['report'].resolve()}")
     return 0
 
@@ -198,5 +205,9 @@ def register_report_commands(subparsers) -> None:
                    help="seconds per environment (default 900)")
     p.add_argument("--jobs", type=int, default=2, help="parallel workers (default 2)")
     p.add_argument("--seed", type=int, default=1, help="seed of the simulation and folds")
+    p.add_argument("--track", choices=("shuttle", "circular", "gain_corridor", "corridor"),
+                   help="a simulated track session instead: shuttle runs on a linear track, "
+                        "a circular track, or a virtual corridor with two gains "
+                        "(gain_corridor) or one (corridor)")
     p.set_defaults(func=run_demo)
 

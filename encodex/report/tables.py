@@ -23,7 +23,7 @@ from statsmodels.stats.proportion import proportion_confint
 
 from encodex.errors import OutputError, SettingsError
 from encodex.report.load import RunFolder, carried, classified, variables_in
-from encodex.report.wording import label_caveat
+from encodex.report.wording import AMBIGUITY_SENTENCE, label_caveat
 from encodex.variables import VARIABLES, NONE_LABEL
 
 __all__ = [
@@ -84,11 +84,21 @@ def _gain_summary(values: pd.Series) -> tuple[float, float, float]:
     return (float(med), float(q1), float(q3))
 
 
-def _count_rows(env: str, key: str, name: str, k: int, n: int, gains, level) -> dict:
+def _n_flagged(sel: pd.DataFrame) -> int:
+    """Cells carrying an ``ambiguous_with`` flag (a variable or combination they cannot be
+    told apart from in this session); counted beside, not instead of, the cells."""
+    if "ambiguous_with" not in sel:
+        return 0
+    return int((sel["ambiguous_with"].fillna("").astype(str).str.strip() != "").sum())
+
+
+def _count_rows(env: str, key: str, name: str, k: int, n: int, gains, level,
+                n_flagged: int = 0) -> dict:
     lo, hi = wilson_interval(k, n, level)
     med, q1, q3 = gains
     return {
-        "environment": env, key: name, "n_cells": k, "n_classified": n,
+        "environment": env, key: name, "n_cells": k, "n_flagged": int(n_flagged),
+        "n_classified": n,
         "percent": 100.0 * k / n if n else np.nan,
         "ci_low_percent": 100.0 * lo, "ci_high_percent": 100.0 * hi,
         "gain_median_bits_per_spike": med, "gain_q1_bits_per_spike": q1,
@@ -109,7 +119,8 @@ def label_counts(cells: pd.DataFrame, level: float = 0.95) -> pd.DataFrame:
     Returns
     -------
     DataFrame
-        Columns ``environment, label, n_cells, n_classified, percent, ci_low_percent,
+        Columns ``environment, label, n_cells, n_flagged, n_classified, percent,
+        ci_low_percent,
         ci_high_percent, gain_median_bits_per_spike, gain_q1_bits_per_spike,
         gain_q3_bits_per_spike``. Gains are the held-out gains (bits per spike) of the chosen
         models of the cells with that label.
@@ -121,7 +132,8 @@ def label_counts(cells: pd.DataFrame, level: float = 0.95) -> pd.DataFrame:
         for lab in sorted(set(ok["variables"]) | {NONE_LABEL}, key=_label_sort_key):
             sel = ok[ok["variables"] == lab]
             rows.append(_count_rows(env, "label", lab, len(sel), n,
-                                    _gain_summary(sel["bits_per_spike"]), level))
+                                    _gain_summary(sel["bits_per_spike"]), level,
+                                    _n_flagged(sel)))
     return pd.DataFrame(rows, columns=_columns("label"))
 
 
@@ -150,12 +162,14 @@ def variable_counts(cells: pd.DataFrame, level: float = 0.95, tested=None) -> pd
                 continue
             col = f"gain_{v}"
             gains = _gain_summary(ok.loc[has, col]) if col in ok else (np.nan,) * 3
-            rows.append(_count_rows(env, "variable", v, int(has.sum()), n, gains, level))
+            rows.append(_count_rows(env, "variable", v, int(has.sum()), n, gains, level,
+                                    _n_flagged(ok.loc[has])))
     return pd.DataFrame(rows, columns=_columns("variable"))
 
 
 def _columns(key: str) -> list[str]:
-    return ["environment", key, "n_cells", "n_classified", "percent", "ci_low_percent",
+    return ["environment", key, "n_cells", "n_flagged", "n_classified", "percent",
+            "ci_low_percent",
             "ci_high_percent", "gain_median_bits_per_spike", "gain_q1_bits_per_spike",
             "gain_q3_bits_per_spike"]
 
@@ -263,6 +277,7 @@ def display_frame(df: pd.DataFrame, level: float = 0.95) -> pd.DataFrame:
             "Environment": d["environment"],
             key.capitalize(): d[key],
             "Cells": f"{d['n_cells']} / {d['n_classified']}",
+            "Flagged": str(d.get("n_flagged", 0)),
             "Percent": _fmt_num(d["percent"], 1),
             f"{pct}% CI (Wilson)": (
                 f"[{_fmt_num(d['ci_low_percent'], 1)}, {_fmt_num(d['ci_high_percent'], 1)}]"
@@ -320,10 +335,12 @@ def _captions(t: PaperTables) -> dict[str, str]:
     return {
         "labels": (f"Cells per label (set of carried variables) per environment, among "
                    f"classified cells, with {pct}% Wilson score intervals and the held-out "
-                   f"gain of the chosen model. {t.caveat}"),
+                   f"gain of the chosen model; Flagged: of these, cells with an ambiguity "
+                   f"flag. {t.caveat} {AMBIGUITY_SENTENCE}"),
         "variables": (f"Cells carrying each variable (alone or with others; a cell can carry "
                       f"several) per environment, with {pct}% Wilson score intervals and the "
-                      f"held-out gain attributed to that variable. {t.caveat}"),
+                      f"held-out gain attributed to that variable; Flagged: of these, cells "
+                      f"with an ambiguity flag. {t.caveat} {AMBIGUITY_SENTENCE}"),
         "excluded": "Cells not classified, by environment and reason; they are in no count.",
         "cells": (f"Per cell: label and held-out gain of the chosen model (bits/spike) beside "
                   f"the classic measures, Skaggs spatial information (bits/spike) and peak "
