@@ -872,7 +872,7 @@ def load_session(
     path, object_paths: Mapping[str, str] | None = None, drop_empty_units: bool = False,
     lfp: str | None = None, lfp_channel: int = 0, extra: Mapping[str, str] | None = None,
     extra_kinds: Mapping[str, str] | None = None, track=None, run_distance: str | None = None,
-    **kw
+    track_length_m: float | None = None, track_path=None, **kw
 ) -> Session:
     """Read a recording (``.nwb`` or ``.npz``) and bin it: ``build_session(read_recording(path))``.
 
@@ -900,12 +900,22 @@ def load_session(
     run_distance : str, optional
         NWB path of the cumulative distance physically run, metres (default: looked for at
         ``processing/behavior/run_distance``).
+    track_length_m : float, optional
+        Length of the track, metres (a circular track's period), overriding the file.
+    track_path : sequence of (x, y), optional
+        Polyline of the track in the room, metres: 2-D tracking is projected onto it.
     **kw
         Options of :func:`build_session` (``bin_size``, ``speed_smoothing_s``,
         ``phase_band``, ...; on a track ``direction_speed``, ``lap_trials``, ``jump_speed``).
     """
     from encodex.io import read_recording
 
+    if track_length_m is not None or track_path is not None:
+        from encodex.io.track import TrackLayout
+
+        shape = track if isinstance(track, str) else "linear"
+        track = TrackLayout(shape, length_m=track_length_m,
+                            path=None if track_path is None else tuple(map(tuple, track_path)))
     rec = read_recording(path, drop_empty_units=drop_empty_units, lfp=lfp,
                          lfp_channel=lfp_channel, extra=extra, extra_kinds=extra_kinds,
                          track=track, run_distance=run_distance, **dict(object_paths or {}))

@@ -101,7 +101,8 @@ def project_onto_path(xy, layout: TrackLayout) -> tuple[np.ndarray, np.ndarray]:
         Distance from the sample to that nearest point, metres.
     """
     if layout.path is None:
-        raise SettingsError("projecting onto a track needs its path: TrackLayout(path=...)")
+        raise SettingsError("2-D tracking on a track needs the track's path to project onto: "
+                            "--track-path X,Y X,Y ... or TrackLayout(path=...)")
     xy = np.asarray(xy, dtype=float)
     if xy.ndim != 2 or xy.shape[1] != 2:
         raise InputError(f"tracking to project must have shape (n, 2), got {xy.shape}")
