@@ -212,3 +212,23 @@ def test_tables_count_flagged_cells_beside_the_cells():
     var = variable_counts(cells, tested=("position", "distance", "direction")).set_index(
         "variable")
     assert var.loc["direction", "n_flagged"] == 1 and var.loc["distance", "n_flagged"] == 1
+
+
+def test_track_occupancy_by_direction_and_lap():
+    from encodex.track_maps import lap_index, track_edges, track_occupancy
+
+    x = np.array([0.0, 0.07, 0.12, 0.12, 0.07, 0.0])
+    d = np.array([1.0, 1.0, 1.0, -1.0, -1.0, -1.0])
+    y = np.array([0, 1, 2, 0, 0, 1])
+    laps = lap_index({"time": np.array([0.0, 0.02, 0.04, 0.0, 0.02, 0.04])})
+    np.testing.assert_array_equal(laps, [0, 0, 0, 1, 1, 1])
+    edges = track_edges(x, 0.05)
+    np.testing.assert_allclose(edges, [0.0, 0.05, 0.10, 0.15])
+    out = track_occupancy(x, d, y, 0.02, edges, laps)
+    np.testing.assert_allclose(out["track__occupancy_s"], [[0.04, 0.04, 0.04],
+                                                           [0.02, 0.02, 0.02],
+                                                           [0.02, 0.02, 0.02]])
+    np.testing.assert_allclose(out["track__spikes"], [[1, 1, 2], [0, 1, 2], [1, 0, 0]])
+    np.testing.assert_allclose(out["track__lap_spikes"], [[0, 1, 2], [1, 0, 0]])
+    np.testing.assert_allclose(out["track__lap_direction"], [1.0, -1.0])
+    np.testing.assert_allclose(track_edges(x, 0.3, length_m=2.0), np.linspace(0, 2, 8))

@@ -245,7 +245,7 @@ class Recording:
         elif pos.ndim != 2 or pos.shape[1] != 2:
             raise InputError(
                 f"position must have shape (n, 2) in metres, got {pos.shape}; pass x and y "
-                "columns"
+                "columns, or for a position along a track pass track=TrackLayout(...)"
             )
         if pos.shape[0] != t.size:
             raise InputError(

@@ -20,7 +20,7 @@ from encodex.report import figures as F
 from encodex.report.load import carried
 
 #: Direction names shown on track figures: +1 runs towards larger positions.
-DIRECTION_NAMES = {1: "outbound (+1)", -1: "return (-1)"}
+DIRECTION_NAMES = {1: "running +1 (position rising)", -1: "running -1 (position falling)"}
 _DIR_COLOURS = {1: "#1f5f8b", -1: "#d9822b", 0: "0.3"}
 
 
@@ -155,7 +155,8 @@ def track_cell_figure(run, unit: str, environment: str, row, arrays: dict):
                 transform=ax.transAxes, color="0.4")
         ax.set_axis_off()
     gain = row["bits_per_spike"]
-    flags = str(row.get("ambiguous_with", "") or "")
+    flags = row.get("ambiguous_with", "")
+    flags = flags if isinstance(flags, str) else ""  # empty cells read back as NaN
     fig.suptitle(
         f"unit {unit}, {environment} (track): label '{row['variables']}' (status "
         f"{row['status']}), {int(row['n_spikes'])} spikes"
