@@ -584,6 +584,11 @@ def _is_constant(values: np.ndarray) -> bool:
     return span <= 1e-9 * max(1.0, float(np.abs(values).max()))
 
 
+#: Said when the 2-D position of an environment varies along one axis only: a track.
+_TRACK_HINT = ("; if this is a linear track, read the position along it (--track linear, "
+               "or track='linear' in Python; see docs/data_conventions.md)")
+
+
 def _unavailability(cov, valid, environment, environments, has_trials):
     """Unavailable variables per environment (built-ins, phase, user variables), with reasons."""
     out: dict[str, dict[str, str]] = {}
@@ -603,7 +608,8 @@ def _unavailability(cov, valid, environment, environments, has_trials):
             if var == "position":
                 flat = [axis for axis, c in zip("xy", v.T) if _is_constant(c)]
                 if flat:
-                    reasons[var] = f"position constant along {'/'.join(flat)} in {name}"
+                    reasons[var] = (f"position constant along {'/'.join(flat)} in {name}"
+                                    + (_TRACK_HINT if len(flat) == 1 else ""))
             elif _is_constant(v):
                 reasons[var] = f"{var} constant in {name}"
         out[name] = reasons

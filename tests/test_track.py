@@ -124,10 +124,14 @@ def test_bundle_track_and_refusals(tmp_path):
     with pytest.raises(InputError, match="shape"):
         make_recording(t, np.column_stack([x, x, x]), {"a": [1.0]},
                        track=TrackLayout("linear"))
-    xy = np.column_stack([x, np.zeros_like(x)])
+    xy = np.column_stack([x, 0.02 + 0.01 * x])
     with pytest.raises(EncodexError, match="path"):
         read_recording(write_bundle(make_recording(t, xy, {"a": [1.0]}), tmp_path / "xy.npz"),
                        track="linear")
+    flat = np.column_stack([x, np.full_like(x, 0.02)])  # y constant: the track is along x
+    got = read_recording(write_bundle(make_recording(t, flat, {"a": [1.0]}),
+                                      tmp_path / "flat.npz"), track="linear")
+    np.testing.assert_allclose(got.position[:, 0], x)
     proj = read_recording(tmp_path / "xy.npz", track=TrackLayout(path=((0, 0), (1, 0))))
     np.testing.assert_allclose(proj.position[:, 0], x, atol=1e-12)
 

@@ -244,7 +244,7 @@ def read_bundle(path, drop_empty_units: bool = False, track=None) -> Recording:
 
 def _bundle_track(path, data, track):
     """Track layout, position and heading of a bundle (2-D tracking projected if asked)."""
-    from encodex.io.track import TrackLayout, project_onto_path
+    from encodex.io.track import TrackLayout, along_track
 
     position = np.asarray(data["position"], dtype=float)
     heading = data.get("heading")
@@ -261,9 +261,6 @@ def _bundle_track(path, data, track):
     else:
         return None, position, heading
     if not one_column:
-        if layout.path is None:
-            raise InputError(f"{path.name}: position has two columns but a track was asked "
-                             "for; give its path (TrackLayout(path=...)) to project onto it")
-        position, _ = project_onto_path(position, layout)
+        position, _ = along_track(position, layout)
         heading = None
     return layout, position, heading

@@ -643,11 +643,10 @@ def read_nwb(path, drop_empty_units: bool = False, lfp: str | None = None,
         raise InputError("unit ids in the file are repeated; give each unit a unique id")
     layout = _track_layout(track, provenance.pop("track_frame", ""), xy.shape[1] == 1)
     if layout is not None and xy.shape[1] == 2:
-        from encodex.io.track import project_onto_path
+        from encodex.io.track import along_track
 
-        along, _ = project_onto_path(xy, layout)
+        along, provenance["position_note"] = along_track(xy, layout)
         xy, heading = along[:, None], None
-        provenance["position_note"] = "2-D tracking projected onto the track path"
     return make_recording(
         timestamps=ts,
         position=xy,

@@ -161,3 +161,39 @@ def layout_from_text(text: str) -> TrackLayout | None:
     if "track" in t or "corridor" in t:
         return TrackLayout("linear", length_m=length)
     return None
+
+
+def along_track(xy, layout: TrackLayout) -> tuple[np.ndarray, str]:
+    """Position along the track of 2-D tracking: projected on the path, or the one axis that moves.
+
+    Parameters
+    ----------
+    xy : ndarray, shape (n, 2)
+        Tracking, metres.
+    layout : TrackLayout
+
+    Returns
+    -------
+    along : ndarray, shape (n,)
+        Metres along the track.
+    note : str
+        How it was obtained (for the provenance).
+
+    Raises
+    ------
+    encodex.errors.SettingsError
+        Without a path, when both coordinates vary.
+    """
+    xy = np.asarray(xy, dtype=float)
+    if layout.path is not None:
+        along, off = project_onto_path(xy, layout)
+        fin = off[np.isfinite(off)]
+        med = float(np.median(fin)) if fin.size else float("nan")
+        return along, f"2-D tracking projected onto the track path (median {med:.3g} m off it)"
+    span = np.nanmax(xy, axis=0) - np.nanmin(xy, axis=0)
+    still = span <= 1e-9 * max(1.0, float(np.nanmax(np.abs(xy))))
+    if still.sum() == 1:
+        k = int(np.flatnonzero(~still)[0])
+        return xy[:, k], f"track position taken from {'xy'[k]} ({'xy'[1 - k]} is constant)"
+    raise SettingsError("2-D tracking on a track needs the track's path to project onto: "
+                        "--track-path X,Y X,Y ... or TrackLayout(path=...)")
