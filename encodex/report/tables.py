@@ -195,8 +195,9 @@ def cell_measures(run: RunFolder, min_occupancy_s: float = 0.1) -> pd.DataFrame:
 
     Skaggs spatial information (bits per spike; Skaggs et al. 1993) and the peak and mean
     occupancy-normalised rates are computed from the occupancy map saved by the fit
-    (``ratemap__occupancy_s``, ``ratemap__spikes``), over spatial bins visited for at least
-    ``min_occupancy_s`` seconds.
+    (``ratemap__occupancy_s``, ``ratemap__spikes``; on a track the 1-D occupancy along it,
+    both directions pooled), over spatial bins visited for at least ``min_occupancy_s``
+    seconds.
 
     Returns
     -------
@@ -213,6 +214,8 @@ def cell_measures(run: RunFolder, min_occupancy_s: float = 0.1) -> pd.DataFrame:
         arr = run.unit_arrays(d["environment"], d["unit"]) or {}
         info = peak = mean = np.nan
         occ, spk = arr.get("ratemap__occupancy_s"), arr.get("ratemap__spikes")
+        if "track__occupancy_s" in arr:  # on a track: the 1-D occupancy, all directions
+            occ, spk = arr["track__occupancy_s"][0], arr["track__spikes"][0]
         if occ is not None and spk is not None:
             rates = rate_map(occ, spk, min_occupancy_s=min_occupancy_s)
             used = np.isfinite(rates)
