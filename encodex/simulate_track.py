@@ -22,7 +22,8 @@ Cells: position (Gaussian field, sigma 8-15 cm, 6-10x peak gain, the same in bot
 directions), position+direction (a field in one running direction only, or at different
 places in the two directions; tracks where the animal runs both ways), speed (log-linear up to
 0.5 m/s), distance (Gaussian bump 0.4-1.6 m after the trial start, sigma 0.2-0.3 m as in the
-arena simulator), time (Gaussian bump 2-6 s after the trial start, sigma 1-1.5 s) and untuned cells, scaled to a mean rate of 1-4 Hz. Spikes by thinning
+arena simulator), time (Gaussian bump 2-6 s after the trial start, sigma 1-1.5 s) and
+untuned cells, scaled to a mean rate of 1-4 Hz. Spikes by thinning
 (Lewis and Shedler 1979, Naval Research Logistics Quarterly 26:403-413) as in
 :mod:`encodex.simulate`.
 """
