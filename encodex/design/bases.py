@@ -232,8 +232,11 @@ class DirectionCurveBasis:
     (+1 one way, -1 the other, 0 still) and ``d`` a spline in the basis ``track`` (interval
     for a linear track, periodic for a circular one) with its difference penalty. Beside a
     shared position curve ``f(x)`` the log rate is ``f + d`` in one direction and ``f - d``
-    in the other: the shared curve plus a penalised difference (Wood 2017, sec. 7.2.4 on
-    factor-by-curve smooths, from memory). Still bins carry the shared curve alone.
+    in the other: the shared curve plus a penalised difference. Still bins carry the shared
+    curve alone. The construction is a smooth multiplied row by row by a numeric covariate
+    (here ``s``), as the documentation of the R package mgcv describes its numeric ``by``
+    variables (help page ``gam.models``, read in mgcv 1.8-41; Hastie & Tibshirani 1993,
+    J. R. Stat. Soc. B 55:757, varying-coefficient models, cited from memory).
 
     The term is not constrained to sum to zero (``centred = False``): ``s * d(x)`` is not a
     constant for any ``d`` when both directions occur, so it cannot be confounded with the
