@@ -15,7 +15,7 @@ shuttle track with traversal trials and a one-gain corridor: confounded designs.
 Usage::
 
     python benchmarks/track_recovery.py [--quick] [--cells 40] [--duration 900] [--seeds 1 2]
-        [--jobs 2]
+        [--jobs 2] [--scenarios circular gain_corridor arena shuttle corridor]
 
 ``--quick``: 16 cells, 300 s, one seed (about a minute per scenario on a busy 2-core machine).
 """
@@ -96,7 +96,7 @@ def run(args) -> dict:
 
     rows, t0 = [], time.time()
     for seed in args.seeds:
-        for scenario in (*SEPARABLE, *CONFOUNDED):
+        for scenario in args.scenarios:
             session, truth = simulate(scenario, seed, args.cells, args.duration)
             t = time.time()
             res = encodex.run_population(session, jobs=args.jobs)
@@ -121,7 +121,8 @@ def run(args) -> dict:
             s["wrong_member_unflagged"] = int(g["wrong_member_unflagged"].sum())
         summary[scenario] = s
     return {"benchmark": "track_recovery", "settings": {"cells": args.cells,
-            "duration_s": args.duration, "seeds": list(args.seeds), "jobs": args.jobs},
+            "duration_s": args.duration, "seeds": list(args.seeds), "jobs": args.jobs,
+            "scenarios": list(args.scenarios)},
             "machine": machine(), "seconds": round(time.time() - t0, 1),
             "per_run": rows, "summary": summary}
 
@@ -148,6 +149,8 @@ def main(argv=None) -> int:
     p.add_argument("--duration", type=float, default=900.0)
     p.add_argument("--seeds", type=int, nargs="+", default=[1, 2])
     p.add_argument("--jobs", type=int, default=2)
+    p.add_argument("--scenarios", nargs="+", default=[*SEPARABLE, *CONFOUNDED],
+                   choices=[*SEPARABLE, *CONFOUNDED])
     p.add_argument("--quick", action="store_true")
     args = p.parse_args(argv)
     if args.quick:

@@ -46,7 +46,8 @@ DIRECTION = "direction"
 
 #: Variables that enter a model only together with others: the direction term is a
 #: difference between the position curves of the two running directions, so a model holds
-#: it only beside ``position`` (forward selection offers it once position is in the model).
+#: it only beside ``position`` (forward selection offers both at once while position is not
+#: in the model, and keeps the pair only if direction improves on position alone).
 REQUIRES: dict[str, tuple[str, ...]] = {"direction": ("position",)}
 
 #: Label of a cell that carries none of the variables.

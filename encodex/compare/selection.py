@@ -170,14 +170,13 @@ def select_variables(
         remaining = [v for v in available if v not in current]
         if not remaining:
             break
-        # a variable that needs another (direction needs position) is a candidate only once
-        # that one is in the model, as an interaction after its main effect
-        cands = tuple(_key(current + (v,)) for v in remaining if is_complete(current + (v,)))
-        if not cands:
-            break
+        # A variable that needs another (direction needs position) is offered together with
+        # it while that one is not in the model yet.
+        cands = tuple(dict.fromkeys(with_requirements(current + (v,)) for v in remaining))
         means = [float(np.nanmean(get(c))) for c in cands]
         # Ties are broken by canonical order (first candidate wins): deterministic.
-        best = cands[int(np.argmax(means))]
+        best = _nested_best(cands[int(np.argmax(means))], current, cands, get, alpha,
+                            correction)
         p = improvement_p(get(best), get(current))
         gain = float(np.nanmean(get(best)) - np.nanmean(get(current)))
         level = alpha / len(cands) if correction == "bonferroni" else alpha
@@ -220,6 +219,28 @@ def select_variables(
         ambiguous_with=ambiguous_labels,
         scores=dict(sorted(cache.items(), key=lambda kv: _order_key(kv[0]))),
     )
+
+
+def _nested_best(best: Model, current: Model, cands, get, alpha, correction) -> Model:
+    """The best candidate, or its main effect when the variable it depends on carries it all.
+
+    A candidate that adds a variable together with the one it requires (position+direction
+    from a model without position) is kept only if the dependent variable improves on the
+    requirement alone fold by fold (same test and level as a step); otherwise the step goes
+    on with the requirement alone (position), so that direction never rides in on the
+    strength of position.
+    """
+    from encodex.variables import REQUIRES
+
+    added = [v for v in best if v not in current]
+    dependent = [v for v in added if set(REQUIRES.get(v, ())) & set(added)]
+    if not dependent:
+        return best
+    main = _key(v for v in best if v not in dependent)
+    if main not in cands:
+        return best
+    level = alpha / len(cands) if correction == "bonferroni" else alpha
+    return best if improvement_p(get(best), get(main)) < level else main
 
 
 def _order_key(model: Model):
