@@ -10,7 +10,9 @@ The public API is re-exported here lazily (importing :mod:`encodex` stays cheap)
 - :class:`SpikeGLM` - scikit-learn-compatible single-cell model;
 - :func:`select_variables`, :func:`analyse_cell` - the model comparison of one cell;
 - :func:`load_session`, :func:`build_session`, :class:`Session` - sessions;
-- :func:`simulate_recording` - ground-truth simulator;
+- :func:`simulate_recording`, :func:`simulate_track_recording` - ground-truth simulators
+  (open arena; linear and circular tracks and virtual corridors);
+- :class:`TrackLayout` - a linear or circular track (and its path in the room);
 - :func:`build_design`, :func:`default_bases`, :func:`fit_poisson` - the engine;
 - :func:`goodness_of_fit` - time-rescaling, dispersion and history checks of held-out
   predictions; :func:`compare_recordings` - two fit folders, cells matched by a table.
@@ -33,6 +35,8 @@ _EXPORTS = {
     "build_session": "encodex.session",
     "Session": "encodex.session",
     "simulate_recording": "encodex.simulate",
+    "simulate_track_recording": "encodex.simulate_track",
+    "TrackLayout": "encodex.io.track",
     "build_design": "encodex.design",
     "default_bases": "encodex.design",
     "fit_poisson": "encodex.fit",

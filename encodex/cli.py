@@ -80,6 +80,32 @@ def _load_options(args) -> dict:
         opts["extra"] = extra
         if kinds:
             opts["extra_kinds"] = kinds
+    opts.update(_track_options(args))
+    return opts
+
+
+def _track_options(args) -> dict:
+    """Reading options of a track session (JSON-ready: recorded in run.json)."""
+    opts: dict = {}
+    if args.track is not None:
+        opts["track"] = args.track
+    if args.track_length is not None:
+        opts["track_length_m"] = args.track_length
+    if args.track_path is not None:
+        try:
+            pts = [[float(v) for v in p.split(",")] for p in args.track_path]
+        except ValueError:
+            pts = [[]]
+        if len(pts) < 2 or any(len(p) != 2 for p in pts):
+            raise SettingsError("--track-path needs two or more X,Y points in metres, e.g. "
+                                "--track-path 0,0 1.5,0")
+        opts["track_path"] = pts
+    if args.run_distance is not None:
+        opts["run_distance"] = args.run_distance
+    if args.direction_speed is not None:
+        opts["direction_speed"] = args.direction_speed
+    if args.laps:
+        opts["lap_trials"] = True
     return opts
 
 
@@ -163,6 +189,22 @@ def add_fit_command(subparsers) -> None:
     p.add_argument("--variable", action="append", default=[], metavar="NAME=OBJECT_PATH[:KIND]",
                    help="user-defined variable from a TimeSeries in the NWB file, KIND interval "
                         "or circular (radians); repeatable")
+    p.add_argument("--track", choices=("linear", "circular"), default=None,
+                   help="the position is along a track (a one-column position series is read "
+                        "as a linear track unless its reference frame or this says circular)")
+    p.add_argument("--track-length", type=_positive_number("metres"), default=None,
+                   metavar="METRES", help="length of the track (a circular track's period)")
+    p.add_argument("--track-path", nargs="+", default=None, metavar="X,Y",
+                   help="project 2-D tracking onto this polyline of the track (metres)")
+    p.add_argument("--run-distance", default=None, metavar="OBJECT_PATH",
+                   help="cumulative distance run on the ball or treadmill (metres) in a "
+                        "virtual environment (default: processing/behavior/run_distance "
+                        "when the file has it)")
+    p.add_argument("--direction-speed", type=_positive_number("m/s"), default=None,
+                   metavar="M_PER_S", help="track speed below which the running direction "
+                   "is none (default 0.05)")
+    p.add_argument("--laps", action="store_true",
+                   help="on a track, laps are the trials even when the file has trials")
     p.add_argument("--cluster", default=None, metavar="ADDRESS",
                    help="run on a dask.distributed scheduler (tcp://host:8786), or 'local' "
                         "for a LocalCluster of --jobs workers")

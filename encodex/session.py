@@ -584,6 +584,11 @@ def _is_constant(values: np.ndarray) -> bool:
     return span <= 1e-9 * max(1.0, float(np.abs(values).max()))
 
 
+#: Said when the 2-D position of an environment varies along one axis only: a track.
+_TRACK_HINT = ("; if this is a linear track, read the position along it (--track linear, "
+               "or track='linear' in Python; see docs/data_conventions.md)")
+
+
 def _unavailability(cov, valid, environment, environments, has_trials):
     """Unavailable variables per environment (built-ins, phase, user variables), with reasons."""
     out: dict[str, dict[str, str]] = {}
@@ -603,11 +608,42 @@ def _unavailability(cov, valid, environment, environments, has_trials):
             if var == "position":
                 flat = [axis for axis, c in zip("xy", v.T) if _is_constant(c)]
                 if flat:
-                    reasons[var] = f"position constant along {'/'.join(flat)} in {name}"
+                    reasons[var] = (f"position constant along {'/'.join(flat)} in {name}"
+                                    + (_TRACK_HINT if len(flat) == 1 else ""))
             elif _is_constant(v):
                 reasons[var] = f"{var} constant in {name}"
         out[name] = reasons
     return out
+
+
+def _phase_and_user_variables(recording, centres, t0, bin_size, max_gap_s, phase_band,
+                              phase_order, masks):
+    """Rhythm phase and user variables on the bins; adds their masks to ``masks``."""
+    n_bins = centres.size
+    extra_cov: dict[str, np.ndarray] = {}
+    phase_info = None
+    if recording.lfp is not None:
+        from encodex import rhythm
+
+        rhythm.check_bin_size(bin_size, phase_band)
+        pt, pp = rhythm.lfp_phase(recording.lfp.times, recording.lfp.values, phase_band,
+                                  phase_order)
+        phase = rhythm.phase_on_bins(pt, pp, t0, bin_size, n_bins)
+        extra_cov["phase"] = phase
+        masks["phase_unknown"] = ~np.isfinite(phase)
+        phase_info = {"band_hz": [float(b) for b in phase_band], "order": int(phase_order),
+                      "lfp_rate_hz": recording.lfp.rate_hz,
+                      "source": recording.lfp.source}
+    user_kinds = {}
+    if recording.extra:
+        unknown = np.zeros(n_bins, dtype=bool)
+        for name, sig in recording.extra.items():
+            v = _resample(centres, sig.times, sig.values, sig.kind, max_gap_s)
+            extra_cov[name] = v
+            user_kinds[name] = sig.kind
+            unknown |= ~np.isfinite(v)
+        masks["extra_unknown"] = unknown
+    return extra_cov, phase_info, user_kinds
 
 
 def build_session(
@@ -619,6 +655,7 @@ def build_session(
     heading_speed_threshold: float = DEFAULT_HEADING_SPEED_THRESHOLD,
     phase_band: tuple[float, float] = DEFAULT_PHASE_BAND,
     phase_order: int = 3,
+    **track_options,
 ) -> Session:
     """Bin a recording on a regular grid and compute the behavioural covariates.
 
@@ -644,6 +681,11 @@ def build_session(
         Bins must not span more than half a cycle of ``high``.
     phase_order : int
         Butterworth order of the band-pass filter (default 3).
+    **track_options
+        For a recording on a track (``recording.track`` set, or a ``track=TrackLayout``
+        here to project 2-D tracking onto it): options of
+        :func:`encodex.track_session.build_track_session` (``direction_speed``,
+        ``lap_trials``, ``jump_speed``, ``track``).
 
     Returns
     -------
@@ -659,6 +701,13 @@ def build_session(
         When the recording is shorter than one bin.
     """
     _check_settings(bin_size, speed_smoothing_s, max_gap_s, min_speed, heading_speed_threshold)
+    if recording.track is not None or track_options:
+        from encodex.track_session import build_track_session
+
+        return build_track_session(
+            recording, bin_size=bin_size, speed_smoothing_s=speed_smoothing_s,
+            max_gap_s=max_gap_s, min_speed=min_speed, phase_band=phase_band,
+            phase_order=phase_order, **track_options)
     ts = recording.timestamps
     t0 = float(ts[0])
     n_bins = int(np.floor((float(ts[-1]) - t0) / bin_size + 1e-9))
@@ -749,29 +798,8 @@ def build_session(
         valid &= np.isfinite(v)
 
     # --- rhythm phase and user variables: each masks the bins where it is unknown
-    extra_cov: dict[str, np.ndarray] = {}
-    phase_info = None
-    if recording.lfp is not None:
-        from encodex import rhythm
-
-        rhythm.check_bin_size(bin_size, phase_band)
-        pt, pp = rhythm.lfp_phase(recording.lfp.times, recording.lfp.values, phase_band,
-                                  phase_order)
-        phase = rhythm.phase_on_bins(pt, pp, t0, bin_size, n_bins)
-        extra_cov["phase"] = phase
-        masks["phase_unknown"] = ~np.isfinite(phase)
-        phase_info = {"band_hz": [float(b) for b in phase_band], "order": int(phase_order),
-                      "lfp_rate_hz": recording.lfp.rate_hz,
-                      "source": recording.lfp.source}
-    user_kinds = {}
-    if recording.extra:
-        unknown = np.zeros(n_bins, dtype=bool)
-        for name, sig in recording.extra.items():
-            v = _resample(centres, sig.times, sig.values, sig.kind, max_gap_s)
-            extra_cov[name] = v
-            user_kinds[name] = sig.kind
-            unknown |= ~np.isfinite(v)
-        masks["extra_unknown"] = unknown
+    extra_cov, phase_info, user_kinds = _phase_and_user_variables(
+        recording, centres, t0, bin_size, max_gap_s, phase_band, phase_order, masks)
     for m in ("phase_unknown", "extra_unknown"):
         if m in masks:
             valid &= ~masks[m]
@@ -849,7 +877,8 @@ def build_session(
 def load_session(
     path, object_paths: Mapping[str, str] | None = None, drop_empty_units: bool = False,
     lfp: str | None = None, lfp_channel: int = 0, extra: Mapping[str, str] | None = None,
-    extra_kinds: Mapping[str, str] | None = None, **kw
+    extra_kinds: Mapping[str, str] | None = None, track=None, run_distance: str | None = None,
+    track_length_m: float | None = None, track_path=None, **kw
 ) -> Session:
     """Read a recording (``.nwb`` or ``.npz``) and bin it: ``build_session(read_recording(path))``.
 
@@ -872,13 +901,28 @@ def load_session(
     extra_kinds : mapping of str to str, optional
         ``"interval"`` or ``"circular"`` per user variable (default: circular when the
         series' unit is an angle).
+    track : {"linear", "circular"} or encodex.io.track.TrackLayout, optional
+        The position is along a track (see :func:`encodex.io.read_recording`).
+    run_distance : str, optional
+        NWB path of the cumulative distance physically run, metres (default: looked for at
+        ``processing/behavior/run_distance``).
+    track_length_m : float, optional
+        Length of the track, metres (a circular track's period), overriding the file.
+    track_path : sequence of (x, y), optional
+        Polyline of the track in the room, metres: 2-D tracking is projected onto it.
     **kw
         Options of :func:`build_session` (``bin_size``, ``speed_smoothing_s``,
-        ``phase_band``, ...).
+        ``phase_band``, ...; on a track ``direction_speed``, ``lap_trials``, ``jump_speed``).
     """
     from encodex.io import read_recording
 
+    if track_length_m is not None or track_path is not None:
+        from encodex.io.track import TrackLayout
+
+        shape = track if isinstance(track, str) else "linear"
+        track = TrackLayout(shape, length_m=track_length_m,
+                            path=None if track_path is None else tuple(map(tuple, track_path)))
     rec = read_recording(path, drop_empty_units=drop_empty_units, lfp=lfp,
                          lfp_channel=lfp_channel, extra=extra, extra_kinds=extra_kinds,
-                         **dict(object_paths or {}))
+                         track=track, run_distance=run_distance, **dict(object_paths or {}))
     return build_session(rec, **kw)

@@ -49,19 +49,19 @@ def test_measures_match_dense_principal_angles_and_least_squares():
                         for i in range(sl[o].start, sl[o].stop)]
         xo = xz[:, others]
         cosines = np.cos(subspace_angles(xj, xo))
-        worst = float(np.max(cosines) ** 2)
-        mean = float(np.sum(cosines**2) / xj.shape[1])
+        largest = float(np.max(cosines) ** 2)
+        average = float(np.sum(cosines**2) / xj.shape[1])
         f = xj @ coef[sl[name]]
         proj = xo @ np.linalg.lstsq(xo, f, rcond=None)[0]
-        observed = float(proj @ proj / (f @ f))
-        assert got[name].worst == pytest.approx(worst, abs=1e-8)
-        assert got[name].mean == pytest.approx(mean, abs=1e-8)
-        assert got[name].observed == pytest.approx(observed, abs=1e-8)
-    # a and b overlap far more than either overlaps the unrelated angle; the worst case is at
+        fitted = float(proj @ proj / (f @ f))
+        assert got[name].largest == pytest.approx(largest, abs=1e-8)
+        assert got[name].average == pytest.approx(average, abs=1e-8)
+        assert got[name].fitted == pytest.approx(fitted, abs=1e-8)
+    # a and b overlap far more than either overlaps the unrelated angle; the largest ratio is at
     # least the squared linear correlation of a and b (about 0.64 by construction)
     r2 = np.corrcoef(a, b)[0, 1] ** 2
-    assert got["a"].worst >= r2 - 1e-9 and r2 > 0.6 and got["c"].worst < 0.05
-    pw = pairwise_concurvity(d, measure="mean")
+    assert got["a"].largest >= r2 - 1e-9 and r2 > 0.6 and got["c"].largest < 0.05
+    pw = pairwise_concurvity(d, measure="average")
     xa, xb = xz[:, sl["a"]], xz[:, np.r_[0, sl["b"].start:sl["b"].stop]]
     ref = np.sum(np.cos(subspace_angles(xa, xb)) ** 2) / xa.shape[1]
     assert pw[("a", "b")] == pytest.approx(ref, abs=1e-8)
@@ -93,6 +93,6 @@ def test_constant_speed_makes_distance_and_time_inseparable(seed):
     assert mv[("distance", "time")] < 0.6 < DEFAULT_THRESHOLD
     others = [v for k, v in mv.items() if set(k) != {"distance", "time"}]
     assert max(others) < 0.45
-    # the worst case, by contrast, is high for distance and time in both sessions
-    wv = pairwise_concurvity(varied, measure="worst")
+    # the largest ratio, by contrast, is high for distance and time in both sessions
+    wv = pairwise_concurvity(varied, measure="largest")
     assert wv[("distance", "time")] > 0.85

@@ -178,3 +178,14 @@ def test_bonferroni_over_the_candidates_of_a_step():
     assert sel.chosen == () and sel.p_value == pytest.approx(p)
     with pytest.raises(SettingsError, match="correction"):
         select_variables(vars_, s_bonf, correction="holm")
+
+
+def test_signflip_equal_differences_reach_the_floor_not_zero():
+    # Equal positive differences in every fold give an infinite studentised statistic; the
+    # identity sign vector reaches it, so p is the floor 2^-k, never 0.
+    from encodex.compare.selection import max_signflip_p
+
+    k = 10
+    p = max_signflip_p(np.c_[np.full(k, 0.01), np.linspace(-1.0, 1.0, k)])
+    assert p[0] == pytest.approx(2.0 ** -k)
+    assert 0.5 < p[1] <= 1.0

@@ -35,28 +35,28 @@ def test_identical_spaces_have_concurvity_one_and_unrelated_terms_near_zero(desi
     assert pw[("twin", "speed")] == pytest.approx(1.0, abs=1e-8)
     assert pw[("speed", "angle")] < 0.02 and pw[("angle", "speed")] < 0.02
     assert 0.5 < pw[("speed", "near")] < 1.0  # close but not identical
-    worst = pairwise_concurvity(design, measure="worst")
-    for (a, b), v in worst.items():
-        assert v == pytest.approx(worst[(b, a)], abs=1e-9)  # the worst case is symmetric
-        assert pw[(a, b)] <= v + 1e-12  # the mean never exceeds the worst case
+    largest = pairwise_concurvity(design, measure="largest")
+    for (a, b), v in largest.items():
+        assert v == pytest.approx(largest[(b, a)], abs=1e-9)  # the largest ratio is symmetric
+        assert pw[(a, b)] <= v + 1e-12  # the average never exceeds the largest
         assert 0.0 <= pw[(a, b)] <= 1.0
 
 
-def test_concurvity_of_a_model_and_its_observed_measure(design):
+def test_concurvity_of_a_model_and_its_fitted_ratio(design):
     res = concurvity(design, ("speed", "angle"))
     assert set(res) == {"speed", "angle"}
     assert isinstance(res["speed"], TermConcurvity)
     assert res["speed"].others == ("angle",)
-    assert np.isnan(res["speed"].observed)
-    assert res["speed"].worst < 0.05
+    assert np.isnan(res["speed"].fitted)
+    assert res["speed"].largest < 0.05
     # a one-term model: only the intercept, to which every term is orthogonal
     single = concurvity(design, ("speed",))
-    assert single["speed"].worst == pytest.approx(0.0, abs=1e-10)
-    # observed: the fitted function of speed is exactly reproduced by twin
+    assert single["speed"].largest == pytest.approx(0.0, abs=1e-10)
+    # fitted: the fitted function of speed is exactly reproduced by twin
     sub = design.subset(("speed", "twin"))
     coef = np.random.default_rng(1).normal(size=sub.n_theta)
     obs = concurvity(design, ("speed", "twin"), coef=coef)
-    assert obs["speed"].observed == pytest.approx(1.0, abs=1e-8)
+    assert obs["speed"].fitted == pytest.approx(1.0, abs=1e-8)
     with pytest.raises(InputError, match="coef has"):
         concurvity(design, ("speed", "twin"), coef=coef[:-1])
 

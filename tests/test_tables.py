@@ -79,7 +79,7 @@ def test_written_formats(run, tmp_path):
     # a row per label, each with the same number of columns as the header
     body = tex.split(r"\midrule")[1].split(r"\bottomrule")[0].strip().splitlines()
     assert len(body) == len(t.labels)
-    assert {row.count(" & ") for row in body} == {5}
+    assert {row.count(" & ") for row in body} == {6}  # 7 columns: with Flagged
 
 
 def test_variables_never_analysed_are_not_zero_percent(tmp_path):

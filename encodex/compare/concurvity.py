@@ -5,19 +5,25 @@ running speed barely varies; speed and position near the walls) give smooth term
 function spaces nearly overlap. A held-out test cannot then tell which of the two a cell
 carries, and the label should say so instead of picking one.
 
-Measures (after the concurvity of Wood 2017, sec. 5.6.3 and the ``concurvity`` discussion
-of additive models there). Write a term as ``f_j = X_j b_j`` (its constrained columns) and
-split it into ``g_1``, its orthogonal projection on the column space of the other terms
-(intercept included), and the rest. Each measure is a ratio ``||g_1||^2 / ||f_j||^2`` in
-[0, 1] (0: the term is unrelated to the others; 1: it is exactly a combination of them):
+Measures. Write a term as ``f_j = X_j b_j`` (its constrained columns) and split it into
+``g_1``, its orthogonal projection on the column space of the other terms (intercept
+included), and the rest. Each measure is a ratio ``||g_1||^2 / ||f_j||^2`` in [0, 1] (0: the
+term is unrelated to the others; 1: it is exactly a combination of them):
 
-* ``worst``: the largest value the ratio takes over every coefficient vector ``b_j``; the
+* ``largest``: the largest value the ratio takes over every coefficient vector ``b_j``; the
   squared cosine of the smallest principal angle between the two column spaces (the largest
   squared canonical correlation). Between two single terms it is symmetric.
-* ``mean``: the ratio averaged over an orthonormal basis of the term's space (the mean
+* ``average``: the ratio averaged over an orthonormal basis of the term's space (the mean
   squared canonical correlation), a fit-free summary of the overall overlap; it is the
   measure :func:`ambiguous_pairs` flags with (see :data:`DEFAULT_MEASURE`).
-* ``observed``: the ratio for the fitted coefficients of one cell, when they are given.
+* ``fitted``: the ratio for the fitted coefficients of one cell, when they are given.
+
+A variable may also be a function of several others together without being close to any
+one of them: on a shuttle track with traversals as trials, the distance run since the
+traversal began is the position in one running direction and the track length minus the
+position in the other. :func:`ambiguous_combinations` measures a variable against the union
+of the terms of a combination (``distance`` against ``position+direction``, ``time`` against
+``distance+speed``) and :func:`ambiguity_flags` gathers both kinds of flag for a cell.
 
 Everything is computed from the p x p Gram matrix ``Z' X' W X Z`` of the design
 (:meth:`encodex.design.Design.weighted_gram`), never from the tall n x p design, so it costs
@@ -27,11 +33,16 @@ overlap where the cell actually fires).
 
 References
 ----------
-Wood, S. N. (2017). *Generalized Additive Models: An Introduction with R*, 2nd ed., CRC
-Press (concurvity of smooth terms: section 5.6.3 from memory; the three-way split into a
-worst case, an observed and an estimated measure follows the book's description).
 Hastie, T. and Tibshirani, R. (1990). *Generalized Additive Models*, Chapman and Hall,
 sec. 5.3 (concurvity as the non-linear analogue of collinearity).
+The decomposition of a term into its projection on the other terms and a remainder, with
+indices built on ``||g||^2 / ||f||^2``, is described in the documentation of the function
+``concurvity`` of the R package mgcv (S. N. Wood; read in version 1.8-41). The
+``largest`` and ``fitted`` ratios here are the same quantities under names of our own; the
+``average`` ratio (mean squared canonical correlation, on an orthonormal basis of the term)
+is ours and is not that package's third index, which divides Frobenius norms of the raw
+bases. A section of Wood (2017), *Generalized Additive Models*, 2nd ed., was cited here from
+memory before; it has not been checked and is no longer cited.
 """
 
 from __future__ import annotations
@@ -45,7 +56,7 @@ import numpy as np
 from encodex.errors import InputError, SettingsError
 from encodex.variables import canonical_order
 
-#: Default pairwise concurvity (``mean`` measure, the larger of the two directions) at or
+#: Default pairwise concurvity (``average`` measure, the larger of the two directions) at or
 #: above which two variables are called inseparable. 0.8 means that, averaged over the
 #: functions a term can represent, 80% of their energy is reproduced by a function of the
 #: other variable, leaving a fifth for a held-out comparison to tell them apart. Measured on
@@ -58,12 +69,15 @@ from encodex.variables import canonical_order
 #: few distinct paths: in 2-minute environments pairs with position reach 0.55-0.65.
 DEFAULT_THRESHOLD = 0.8
 
-#: Measure used to flag pairs. The worst case is not usable for flagging: a basis function
+#: Measure used to flag pairs. The largest ratio is not usable for flagging: a basis function
 #: at the top of both ranges is supported only by the last bins of the longest trial, where
-#: the largest distance and the largest time coincide, so the worst case reaches 0.92-0.998
-#: for distance and time even when speed varies (measured, same check); the mean over the
+#: the largest distance and the largest time coincide, so the largest ratio reaches 0.92-0.998
+#: for distance and time even when speed varies (measured, same check); the average over the
 #: term's space is not dominated by such thinly supported directions.
-DEFAULT_MEASURE = "mean"
+DEFAULT_MEASURE = "average"
+
+#: Names of the measures of :func:`pairwise_concurvity`.
+MEASURES = ("largest", "average")
 
 #: Eigenvalues of a Gram block below this fraction of its largest are treated as zero
 #: (basis functions with no data under them, or exact linear dependence).
@@ -80,19 +94,19 @@ class TermConcurvity:
         The term measured.
     others : tuple of str
         The terms it is compared against (the intercept is always included with them).
-    worst : float
+    largest : float
         Largest ``||projection||^2 / ||f||^2`` over every function of the term, in [0, 1].
-    mean : float
+    average : float
         The same ratio averaged over an orthonormal basis of the term's space, in [0, 1].
-    observed : float
+    fitted : float
         The ratio for the fitted coefficients, NaN when no coefficients were given.
     """
 
     term: str
     others: tuple[str, ...]
-    worst: float
-    mean: float
-    observed: float = float("nan")
+    largest: float
+    average: float
+    fitted: float = float("nan")
 
 
 def _whitener(g: np.ndarray) -> np.ndarray:
@@ -136,7 +150,7 @@ def _gram(design, weights) -> np.ndarray:
 
 
 def _measure(gram, idx_j, idx_o, b=None):
-    """worst, mean, observed from the Gram matrix and two index sets (theta layout)."""
+    """largest, average, fitted ratios from the Gram matrix and two index sets (theta layout)."""
     gjj = gram[np.ix_(idx_j, idx_j)]
     goo = gram[np.ix_(idx_o, idx_o)]
     gjo = gram[np.ix_(idx_j, idx_o)]
@@ -150,8 +164,8 @@ def _measure(gram, idx_j, idx_o, b=None):
     c = wj.T @ gjo @ wo  # cross-Gram of two orthonormal bases: singular values = cosines
     s = np.linalg.svd(c, compute_uv=False)
     s = np.clip(s, 0.0, 1.0)
-    worst = float(s[0] ** 2) if s.size else 0.0
-    mean = float(np.sum(s**2) / wj.shape[1])
+    largest = float(s[0] ** 2) if s.size else 0.0
+    average = float(np.sum(s**2) / wj.shape[1])
     obs = np.nan
     if b is not None:
         b = np.asarray(b, dtype=float)
@@ -159,7 +173,7 @@ def _measure(gram, idx_j, idx_o, b=None):
         if norm2 > 0:
             proj = wo.T @ (gjo.T @ b)  # coordinates of the projection in the others' basis
             obs = float(min(max(proj @ proj / norm2, 0.0), 1.0))
-    return worst, mean, obs
+    return largest, average, obs
 
 
 def _check_terms(design, names, what):
@@ -185,7 +199,7 @@ def concurvity(design, terms: Iterable[str] | None = None, coef: np.ndarray | No
         The model's terms (a selected model); all terms of the design by default.
     coef : ndarray, optional
         Fitted constrained coefficients (``PoissonFit.coef``, theta layout of ``design``
-        restricted to ``terms``, i.e. of ``design.subset(terms)``); gives ``observed``.
+        restricted to ``terms``, i.e. of ``design.subset(terms)``); gives ``fitted``.
     weights : ndarray, shape (n_rows,), optional
         Non-negative bin weights of the inner product (default: all ones).
 
@@ -220,14 +234,14 @@ def concurvity(design, terms: Iterable[str] | None = None, coef: np.ndarray | No
         others = tuple(o for o in terms if o != t)
         idx_o = np.concatenate([[0]] + [np.arange(sl[o].start, sl[o].stop) for o in others])
         b = None if coef is None else coef[sub.theta_slices[t]]
-        worst, mean, obs = _measure(gram, idx_j, idx_o.astype(int), b)
-        out[t] = TermConcurvity(t, others, worst, mean, obs)
+        largest, average, fitted = _measure(gram, idx_j, idx_o.astype(int), b)
+        out[t] = TermConcurvity(t, others, largest, average, fitted)
     return out
 
 
 def pairwise_concurvity(design, terms: Iterable[str] | None = None,
                         weights: np.ndarray | None = None,
-                        measure: str = "mean") -> dict[tuple[str, str], float]:
+                        measure: str = DEFAULT_MEASURE) -> dict[tuple[str, str], float]:
     """Concurvity of each term given one other term, for every ordered pair.
 
     Parameters
@@ -237,17 +251,18 @@ def pairwise_concurvity(design, terms: Iterable[str] | None = None,
         Terms to compare; all terms of the design by default.
     weights : ndarray, optional
         Bin weights of the inner product (default ones).
-    measure : {"mean", "worst"}
-        ``mean`` (default; the measure used for flags) or ``worst`` (symmetric in the pair;
-        ``mean`` is symmetric only between terms with as many columns).
+    measure : {"average", "largest"}
+        ``average`` (default; the measure used for flags) or ``largest`` (symmetric in the
+        pair; ``average`` is symmetric only between terms with as many columns).
 
     Returns
     -------
     dict
         ``(a, b) -> concurvity of a given b`` (and the intercept), for every a != b.
     """
-    if measure not in ("worst", "mean"):
-        raise SettingsError(f"unknown concurvity measure {measure!r}; use 'worst' or 'mean'")
+    if measure not in MEASURES:
+        raise SettingsError(f"unknown concurvity measure {measure!r}; use 'average' or "
+                            "'largest'")
     terms = canonical_order(design.names if terms is None else terms)
     _check_terms(design, terms, "terms")
     gram = _gram(design, weights)
@@ -259,8 +274,8 @@ def pairwise_concurvity(design, terms: Iterable[str] | None = None,
             if b == a:
                 continue
             ib = np.concatenate([[0], np.arange(sl[b].start, sl[b].stop)]).astype(int)
-            worst, mean, _ = _measure(gram, ia, ib)
-            out[(a, b)] = worst if measure == "worst" else mean
+            largest, average, _ = _measure(gram, ia, ib)
+            out[(a, b)] = largest if measure == "largest" else average
     return out
 
 
@@ -311,8 +326,8 @@ def ambiguous_pairs(design, chosen: Iterable[str], threshold: float = DEFAULT_TH
         Bin weights of the inner product (default ones).
     kinds : mapping, optional
         Basis kinds of user variables, used only when covariates are given.
-    measure : {"mean", "worst"}
-        Pairwise measure (default ``mean``; see :data:`DEFAULT_MEASURE`).
+    measure : {"average", "largest"}
+        Pairwise measure (default ``average``; see :data:`DEFAULT_MEASURE`).
 
     Returns
     -------
@@ -349,3 +364,155 @@ def ambiguous_pairs(design, chosen: Iterable[str], threshold: float = DEFAULT_TH
                 flagged.append(b)
         out[a] = canonical_order(flagged)
     return out
+
+
+#: Largest number of variables in a combination tested by :func:`ambiguous_combinations`
+#: (not counting the variables a member brings along: direction brings position).
+DEFAULT_COMBINATION_SIZE = 2
+
+
+def _combination_name(combo) -> str:
+    return "+".join(canonical_order(combo))
+
+
+def _overlap(gram, sl, term: str, others) -> float:
+    """Average ratio of one term against the union of other terms (intercept included)."""
+    idx_j = np.arange(sl[term].start, sl[term].stop)
+    idx_o = np.concatenate([[0]] + [np.arange(sl[o].start, sl[o].stop) for o in others])
+    return _measure(gram, idx_j, idx_o.astype(int))[1]
+
+
+def _combinations(names, exclude, size):
+    """Complete combinations (requirements included) of 2..size names, none in ``exclude``."""
+    import itertools
+
+    from encodex.variables import is_complete, with_requirements
+
+    pool = [v for v in names if v not in exclude]
+    out = []
+    for r in range(2, size + 1):
+        for combo in itertools.combinations(pool, r):
+            full = with_requirements(combo)
+            if set(full) & set(exclude) or not set(full) <= set(names):
+                continue
+            if is_complete(full) and full not in out:
+                out.append(full)
+    return out
+
+
+def ambiguous_combinations(design, chosen: Iterable[str], threshold: float = DEFAULT_THRESHOLD,
+                           weights: np.ndarray | None = None,
+                           size: int = DEFAULT_COMBINATION_SIZE) -> dict[str, tuple[str, ...]]:
+    """Combinations of variables that a cell's variables cannot be told apart from.
+
+    Two questions, with the ``average`` ratio (:func:`concurvity`) of a term against the union
+    of the terms of a combination (the intercept included):
+
+    * each chosen variable against every combination of 2..``size`` other variables of the
+      design (with the variables they require, e.g. position for direction): distance run
+      since a traversal began against ``position+direction`` on a shuttle track;
+    * each variable not chosen against every such combination of the chosen ones: a cell
+      labelled ``position+direction`` there may as well carry distance.
+
+    A combination is reported only when the ratio reaches ``threshold`` and no single member
+    of it (nor a smaller flagged combination) already reaches it alone: such pairs are
+    :func:`ambiguous_pairs`' to report.
+
+    Parameters
+    ----------
+    design : encodex.design.Design
+        Design with every candidate variable of the environment, on its bins.
+    chosen : iterable of str
+        Variables of the selected model.
+    threshold : float
+        Ratio in (0, 1] at or above which a combination is flagged (default 0.8, as for
+        pairs; see :data:`DEFAULT_THRESHOLD`).
+    weights : ndarray, optional
+        Bin weights of the inner product (default ones).
+    size : int
+        Largest number of variables in a combination (default 2).
+
+    Returns
+    -------
+    dict
+        A chosen variable -> names of the combinations it cannot be told apart from
+        (``"position+direction"``), and a chosen combination's name -> the variables it
+        cannot be told apart from; only keys with flags.
+
+    Examples
+    --------
+    >>> ambiguous_combinations(shuttle_design, ("distance",))
+    {'distance': ('position+direction',)}
+    """
+    if not (np.isfinite(threshold) and 0 < threshold <= 1):
+        raise SettingsError(f"threshold must lie in (0, 1], got {threshold}; default 0.8")
+    if int(size) < 2:
+        raise SettingsError(f"size must be at least 2 variables, got {size}")
+    chosen = canonical_order(chosen)
+    _check_terms(design, chosen, "chosen variables")
+    if not chosen:
+        return {}
+    names = design.names
+    gram = _gram(design, weights)
+    sl = design.theta_slices
+    single = {(a, b): _overlap(gram, sl, a, (b,)) for a in names for b in names if a != b}
+
+    def flagged_alone(a, combo):
+        return any(max(single[(a, b)], single[(b, a)]) >= threshold for b in combo if b != a)
+
+    out: dict[str, list[str]] = {}
+    for a in chosen:
+        hits: list[tuple[str, ...]] = []
+        for combo in _combinations(names, (a,), int(size)):
+            if flagged_alone(a, combo) or any(set(h) <= set(combo) for h in hits):
+                continue
+            if _overlap(gram, sl, a, combo) >= threshold:
+                hits.append(combo)
+        if hits:
+            out[a] = [_combination_name(h) for h in hits]
+    for combo in _combinations(chosen, (), int(size)):
+        for b in names:
+            if b in chosen or flagged_alone(b, combo):
+                continue
+            if _overlap(gram, sl, b, combo) >= threshold:
+                out.setdefault(_combination_name(combo), []).append(b)
+    return {k: tuple(v) for k, v in out.items()}
+
+
+def ambiguity_flags(design, chosen: Iterable[str], threshold: float = DEFAULT_THRESHOLD,
+                    weights: np.ndarray | None = None) -> tuple[str, ...]:
+    """Everything a cell's variables cannot be told apart from: the ``ambiguous_with`` column.
+
+    The union of :func:`ambiguous_pairs` (single variables, canonical order) and
+    :func:`ambiguous_combinations` (combinations named ``"a+b"``, and single variables a
+    chosen combination cannot be told apart from), without repeats.
+
+    Parameters
+    ----------
+    design : encodex.design.Design
+        Design with every candidate variable of the environment.
+    chosen : iterable of str
+        Variables of the selected model (empty: no flags).
+    threshold : float
+        See :data:`DEFAULT_THRESHOLD`.
+    weights : ndarray, optional
+        Bin weights of the inner product (default ones).
+
+    Returns
+    -------
+    tuple of str
+        E.g. ``("time",)`` or ``("position+direction",)``; joined with ``";"`` in cells.csv.
+    """
+    chosen = canonical_order(chosen)
+    if not chosen:
+        return ()
+    pairs = ambiguous_pairs(design, chosen, threshold, weights)
+    singles = set(v for vs in pairs.values() for v in vs)
+    combos: list[str] = []
+    for key, vs in ambiguous_combinations(design, chosen, threshold, weights).items():
+        for v in vs:
+            if "+" in v:
+                combos.append(v)
+            else:
+                singles.add(v)
+    return canonical_order(singles) + tuple(dict.fromkeys(combos))

@@ -49,7 +49,7 @@ import numpy as np
 from scipy.stats import wilcoxon
 
 from encodex.errors import SettingsError
-from encodex.variables import canonical_order, label
+from encodex.variables import canonical_order, is_complete, label, with_requirements, without
 
 Model = tuple[str, ...]
 ScoreFn = Callable[[Model], np.ndarray]
@@ -149,7 +149,9 @@ def max_signflip_p(differences: np.ndarray) -> np.ndarray:
     flipped = _studentised(signs @ d, sumsq, k)
     top = flipped.max(axis=1)
     # Equal statistics must count as reached despite rounding in the products.
-    tol = 1e-9 * np.maximum(1.0, np.abs(observed))
+    # (An infinite statistic - equal differences in every fold - is compared exactly: inf
+    # minus a relative tolerance would be NaN and count as never reached, giving p = 0.)
+    tol = np.where(np.isfinite(observed), 1e-9 * np.maximum(1.0, np.abs(observed)), 0.0)
     count = np.sum(top[:, None] >= (observed - tol)[None, :], axis=0)
     return count / signs.shape[0]
 
@@ -299,7 +301,8 @@ def select_variables(
     if exhaustive:
         for r in range(1, len(available) + 1):
             for sub in itertools.combinations(available, r):
-                get(sub)
+                if is_complete(sub):
+                    get(sub)
 
     current: Model = ()
     steps: list[Step] = []
@@ -307,11 +310,14 @@ def select_variables(
         remaining = [v for v in available if v not in current]
         if not remaining:
             break
-        cands = tuple(_key(current + (v,)) for v in remaining)
+        # A variable that needs another (direction needs position) is offered together with
+        # it while that one is not in the model yet.
+        cands = tuple(dict.fromkeys(with_requirements(current + (v,)) for v in remaining))
         means = [float(np.nanmean(get(c))) for c in cands]
         # Ties are broken by canonical order (first candidate wins): deterministic.
-        i_best = int(np.argmax(means))
-        best = cands[i_best]
+        best = _nested_best(cands[int(np.argmax(means))], current, cands, get, alpha,
+                            correction)
+        i_best = cands.index(best)
         p, level = _step_test(cands, i_best, get, current, alpha, correction)
         gain = float(np.nanmean(get(best)) - np.nanmean(get(current)))
         # An exact randomisation p-value is valid with <= (size at most alpha).
@@ -332,10 +338,9 @@ def select_variables(
     gains: dict[str, float] = {}
     for v in available:
         if v in current:
-            other = tuple(x for x in current if x != v)
-            gains[v] = m_current - float(np.nanmean(get(other)))
+            gains[v] = m_current - float(np.nanmean(get(without(current, v))))
         else:
-            gains[v] = float(np.nanmean(get(current + (v,)))) - m_current
+            gains[v] = float(np.nanmean(get(with_requirements(current + (v,))))) - m_current
 
     ambiguous: list[str] = []
     if current:
@@ -355,6 +360,31 @@ def select_variables(
         ambiguous_with=ambiguous_labels,
         scores=dict(sorted(cache.items(), key=lambda kv: _order_key(kv[0]))),
     )
+
+
+def _nested_best(best: Model, current: Model, cands, get, alpha, correction) -> Model:
+    """The best candidate, or its main effect when the variable it depends on carries it all.
+
+    A candidate that adds a variable together with the one it requires (position+direction
+    from a model without position) is kept only if the dependent variable improves on the
+    requirement alone fold by fold (same test and level as a step); otherwise the step goes
+    on with the requirement alone (position), so that direction never rides in on the
+    strength of position.
+    """
+    from encodex.variables import REQUIRES
+
+    added = [v for v in best if v not in current]
+    dependent = [v for v in added if set(REQUIRES.get(v, ())) & set(added)]
+    if not dependent:
+        return best
+    main = _key(v for v in best if v not in dependent)
+    if main not in cands:
+        return best
+    if correction == "signflip":  # one comparison: the exact sign-flip test of its own
+        p = float(max_signflip_p((get(best) - get(main))[:, None])[0])
+        return best if p <= alpha else main
+    level = alpha / len(cands) if correction == "bonferroni" else alpha
+    return best if improvement_p(get(best), get(main)) < level else main
 
 
 def _order_key(model: Model):

@@ -29,7 +29,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from encodex.errors import InputError, SettingsError
-from encodex.variables import KINDS
+from encodex.variables import KINDS, parse_kind
 
 from .bsplines import bspline_nonzeros, difference_penalty, uniform_knots
 
@@ -158,12 +158,15 @@ class CircularBasis:
 
     ``n_basis`` equally spaced B-splines of ``degree`` tile the circle; a function built from
     them and its first ``degree - 1`` derivatives are continuous across 0 = 2*pi. Angles are
-    wrapped into [0, 2*pi) before evaluation.
+    wrapped into [0, 2*pi) before evaluation. ``period`` (default 2*pi) sets another period
+    in the variable's unit, e.g. the length in metres of a circular track: values are then
+    wrapped into [0, period).
     """
 
     n_basis: int = 12
     degree: int = 3
     penalty_order: int = 2
+    period: float = TWO_PI
 
     def __post_init__(self):
         if self.n_basis < self.degree + 1:
@@ -173,9 +176,14 @@ class CircularBasis:
             )
         if not 0 <= self.penalty_order < self.n_basis:
             raise SettingsError(f"penalty_order must lie in [0, n_basis); got {self.penalty_order}")
+        if not (np.isfinite(self.period) and self.period > 0):
+            raise SettingsError(f"period must be a positive number, got {self.period}")
 
     kind = "circular"
-    range = (0.0, TWO_PI)
+
+    @property
+    def range(self) -> tuple[float, float]:
+        return (0.0, float(self.period))
 
     @property
     def n_columns(self) -> int:
@@ -187,9 +195,11 @@ class CircularBasis:
         return h * np.arange(-self.degree, self.n_basis + self.degree + 1, dtype=float)
 
     def evaluate(self, angle: np.ndarray) -> Block:
-        """Design rows at the angles (radians; any real value, wrapped to [0, 2*pi))."""
+        """Design rows at the values (radians, or units of ``period``; wrapped)."""
         a = np.asarray(angle, dtype=float).ravel()
         _check_finite(a, "a circular variable")
+        if self.period != TWO_PI:
+            a = a * (TWO_PI / self.period)
         a = np.mod(a, TWO_PI)
         # np.mod can return exactly 2*pi for tiny negative inputs; fold it back to 0.
         a[a >= TWO_PI] = 0.0
@@ -204,11 +214,80 @@ class CircularBasis:
         return [difference_penalty(self.n_basis, self.penalty_order, circular=True)]
 
     def grid(self, n: int = 120) -> np.ndarray:
-        return np.linspace(0.0, TWO_PI, n, endpoint=False)
+        return np.linspace(0.0, float(self.period), n, endpoint=False)
 
     def describe(self) -> dict:
-        return {"kind": self.kind, "n_basis": self.n_basis, "degree": self.degree,
-                "penalty_order": self.penalty_order}
+        out = {"kind": self.kind, "n_basis": self.n_basis, "degree": self.degree,
+               "penalty_order": self.penalty_order}
+        if self.period != TWO_PI:
+            out["period"] = float(self.period)
+        return out
+
+
+@dataclass(frozen=True)
+class DirectionCurveBasis:
+    """Factor-by-curve difference between running directions along a track.
+
+    The term is ``s * d(x)``: ``x`` the track position (metres), ``s`` the running direction
+    (+1 one way, -1 the other, 0 still) and ``d`` a spline in the basis ``track`` (interval
+    for a linear track, periodic for a circular one) with its difference penalty. Beside a
+    shared position curve ``f(x)`` the log rate is ``f + d`` in one direction and ``f - d``
+    in the other: the shared curve plus a penalised difference. Still bins carry the shared
+    curve alone. The construction is a smooth multiplied row by row by a numeric covariate
+    (here ``s``), as the documentation of the R package mgcv describes its numeric ``by``
+    variables (help page ``gam.models``, read in mgcv 1.8-41; Hastie & Tibshirani 1993,
+    J. R. Stat. Soc. B 55:757, varying-coefficient models, cited from memory).
+
+    The term is not constrained to sum to zero (``centred = False``): ``s * d(x)`` is not a
+    constant for any ``d`` when both directions occur, so it cannot be confounded with the
+    intercept, and a constant ``d`` (a rate that differs between directions everywhere) stays
+    representable.
+
+    Parameters
+    ----------
+    track : IntervalBasis or CircularBasis
+        Basis of the track position.
+    """
+
+    track: IntervalBasis | CircularBasis = field(default_factory=IntervalBasis)
+
+    kind = "direction"
+    #: Covariates the term is evaluated on, stacked as columns (see build_design).
+    inputs = ("position", "direction")
+    centred = False
+
+    @property
+    def range(self) -> tuple[float, float]:
+        return tuple(self.track.range)
+
+    @property
+    def n_columns(self) -> int:
+        return self.track.n_columns
+
+    def evaluate(self, values: np.ndarray) -> Block:
+        """Design rows at (position, direction) pairs of shape (n, 2).
+
+        A one-dimensional input is a grid of positions with direction +1 (the difference
+        curve ``d`` itself, as response functions show it).
+        """
+        v = np.asarray(values, dtype=float)
+        if v.ndim == 1:
+            v = np.column_stack([v, np.ones(v.size)])
+        if v.ndim != 2 or v.shape[1] != 2:
+            raise InputError(f"a direction term needs (position, direction) pairs; got {v.shape}")
+        _check_finite(v[:, 1], "running direction")
+        b = self.track.evaluate(v[:, 0])
+        return Block(b.values * v[:, 1:2], b.columns, b.n_columns, b.n_clipped)
+
+    def penalties(self) -> list[np.ndarray]:
+        """The track basis's difference penalty on the difference curve."""
+        return self.track.penalties()
+
+    def grid(self, n: int = 100) -> np.ndarray:
+        return self.track.grid(n)
+
+    def describe(self) -> dict:
+        return {"kind": self.kind, "track": self.track.describe()}
 
 
 @dataclass(frozen=True)
@@ -278,11 +357,11 @@ class PlanarBasis:
                 "degree": self.degree, "penalty_order": self.penalty_order}
 
 
-Basis = IntervalBasis | CircularBasis | PlanarBasis
+Basis = IntervalBasis | CircularBasis | PlanarBasis | DirectionCurveBasis
 
 #: Default number of basis functions per variable (planar: per axis).
 DEFAULT_SIZES: dict[str, int] = {"position": 10, "heading": 12, "speed": 8, "distance": 10,
-                                 "time": 10, "phase": 12}
+                                 "time": 10, "phase": 12, "direction": 10}
 
 
 def _data_range(values: np.ndarray, name: str) -> tuple[float, float]:
@@ -326,15 +405,30 @@ def default_bases(covariates: Mapping[str, np.ndarray], variables=None,
             raise InputError(f"variable '{name}' is not among the covariates {sorted(covariates)}")
         kind = kinds.get(name, "interval")
         n = int(sizes.get(name, 10))
-        v = np.asarray(covariates[name], dtype=float)
-        if kind == "planar":
-            out[name] = PlanarBasis(n, n, _data_range(v[:, 0], name + " x"),
-                                    _data_range(v[:, 1], name + " y"))
-        elif kind == "circular":
-            out[name] = CircularBasis(n)
-        elif kind == "interval":
-            out[name] = IntervalBasis(n, _data_range(v, name))
-        else:
-            raise SettingsError(f"unknown basis kind '{kind}' for '{name}'; use interval, "
-                                "circular or planar")
+        if kind == "direction":
+            if "position" not in covariates:
+                raise InputError("the direction term needs the track position among the "
+                                 "covariates; pass covariates['position'] too")
+            pos_kind = kinds.get("position", "planar")
+            if parse_kind(pos_kind)[0] == "planar":
+                raise InputError("direction applies to a track (1-D position); this session's "
+                                 "position is 2-D: use heading instead")
+            track = _single_basis("position", covariates["position"], pos_kind, n)
+            out[name] = DirectionCurveBasis(track)
+            continue
+        out[name] = _single_basis(name, covariates[name], kind, n)
     return out
+
+
+def _single_basis(name, values, kind, n) -> Basis:
+    v = np.asarray(values, dtype=float)
+    base, period = parse_kind(kind)
+    if base == "planar":
+        return PlanarBasis(n, n, _data_range(v[:, 0], name + " x"),
+                           _data_range(v[:, 1], name + " y"))
+    if base == "circular":
+        return CircularBasis(n) if period is None else CircularBasis(n, period=period)
+    if base == "interval":
+        return IntervalBasis(n, _data_range(v, name))
+    raise SettingsError(f"unknown basis kind '{kind}' for '{name}'; use interval, "
+                        "circular or planar")

@@ -400,7 +400,7 @@ def build_design(covariates: Mapping[str, np.ndarray], bases: Mapping[str, Basis
         if name not in covariates:
             raise InputError(f"no covariate named '{name}'; available: {sorted(covariates)}")
         basis = bases[name]
-        block = basis.evaluate(covariates[name])
+        block = basis.evaluate(_term_values(covariates, name, basis))
         n = block.values.shape[0]
         if n_rows is None:
             n_rows = n
@@ -408,7 +408,10 @@ def build_design(covariates: Mapping[str, np.ndarray], bases: Mapping[str, Basis
             raise InputError(f"covariate '{name}' has {n} rows but others have {n_rows}")
         col_sums = np.bincount(block.columns.ravel(), weights=block.values.ravel(),
                                minlength=block.n_columns)
-        z = sum_to_zero_null_space(col_sums)
+        # A term that cannot be confounded with the intercept (a direction difference curve)
+        # keeps every column.
+        z = (sum_to_zero_null_space(col_sums) if getattr(basis, "centred", True)
+             else np.eye(block.n_columns))
         pens = tuple(z.T @ s @ z for s in basis.penalties())
         terms.append(Term(name, basis, block, z, pens))
     if n_rows is None:
@@ -417,6 +420,18 @@ def build_design(covariates: Mapping[str, np.ndarray], bases: Mapping[str, Basis
             raise InputError("no covariates given: cannot tell the number of bins")
         n_rows = len(first)
     return Design(int(n_rows), tuple(terms), gram_precision=gram_precision)
+
+
+def _term_values(covariates, name, basis):
+    """The covariate a basis is evaluated on: its own, or the columns it names in ``inputs``."""
+    inputs = getattr(basis, "inputs", None)
+    if not inputs:
+        return covariates[name]
+    missing = [v for v in inputs if v not in covariates]
+    if missing:
+        raise InputError(f"the term '{name}' needs the covariates {', '.join(missing)}; pass "
+                         "them with the others")
+    return np.column_stack([np.asarray(covariates[v], dtype=float) for v in inputs])
 
 
 def _contiguous_spans(columns: np.ndarray) -> list[tuple[int, int, int]]:

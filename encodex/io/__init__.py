@@ -31,8 +31,8 @@ __all__ = [
 
 
 def read_recording(path, drop_empty_units: bool = False, lfp: str | None = None,
-                   lfp_channel: int = 0, extra=None, extra_kinds=None,
-                   **object_paths) -> Recording:
+                   lfp_channel: int = 0, extra=None, extra_kinds=None, track=None,
+                   run_distance: str | None = None, **object_paths) -> Recording:
     """Read a recording from an NWB file (``.nwb``) or an npz bundle (``.npz``).
 
     Parameters
@@ -53,6 +53,13 @@ def read_recording(path, drop_empty_units: bool = False, lfp: str | None = None,
     extra_kinds : mapping of str to str, optional
         NWB only: ``"interval"`` or ``"circular"`` per user variable (default: circular when
         the series' unit is an angle).
+    track : {"linear", "circular"} or encodex.io.track.TrackLayout, optional
+        The position is along a track (see ``docs/data_conventions.md``): a one-column
+        position is read as a linear track unless this or the file says circular; a
+        TrackLayout with a ``path`` projects 2-D tracking onto it.
+    run_distance : str, optional
+        NWB only: path of the cumulative distance physically run (metres); by default
+        ``processing/behavior/run_distance`` when the file has it.
 
     Returns
     -------
@@ -70,7 +77,7 @@ def read_recording(path, drop_empty_units: bool = False, lfp: str | None = None,
     if suffix == ".nwb":
         return read_nwb(path, drop_empty_units=drop_empty_units, lfp=lfp,
                         lfp_channel=lfp_channel, extra=extra, extra_kinds=extra_kinds,
-                        **object_paths)
+                        track=track, run_distance=run_distance, **object_paths)
     if suffix == ".npz":
         if lfp or extra or extra_kinds:
             raise SettingsError(
@@ -82,7 +89,10 @@ def read_recording(path, drop_empty_units: bool = False, lfp: str | None = None,
                 f"object paths ({', '.join(object_paths)}) apply to NWB files only; "
                 "drop them for an npz bundle"
             )
-        return read_bundle(path, drop_empty_units=drop_empty_units)
+        if run_distance:
+            raise SettingsError("run_distance names an object inside an NWB file; an npz "
+                                "bundle carries it in the keys run_distance_time/_values")
+        return read_bundle(path, drop_empty_units=drop_empty_units, track=track)
     raise FileFormatError(
         f"unknown file type {suffix!r} for {path.name}; give an .nwb file or an .npz bundle"
     )

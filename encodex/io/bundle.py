@@ -35,7 +35,7 @@ from pathlib import Path
 
 import numpy as np
 
-from encodex.errors import FileFormatError, OutputError
+from encodex.errors import FileFormatError, InputError, OutputError
 from encodex.io.recording import Recording, Signal, make_recording
 
 FORMAT_NAME = "encodex-bundle"
@@ -83,6 +83,13 @@ def write_bundle(recording: Recording, path) -> Path:
     if recording.lfp is not None:
         arrays["lfp_time"] = recording.lfp.times
         arrays["lfp_values"] = recording.lfp.values
+    if recording.track is not None:
+        arrays["track_shape"] = np.array(recording.track.shape)
+        if recording.track.length_m is not None:
+            arrays["track_length_m"] = np.array(recording.track.length_m)
+    if recording.run_distance is not None:
+        arrays["run_distance_time"] = recording.run_distance.times
+        arrays["run_distance_values"] = recording.run_distance.values
     if recording.extra:
         arrays["extra_names"] = np.array(list(recording.extra), dtype=str)
         arrays["extra_kinds"] = np.array([s.kind for s in recording.extra.values()], dtype=str)
@@ -97,7 +104,7 @@ def write_bundle(recording: Recording, path) -> Path:
     return path
 
 
-def read_bundle(path, drop_empty_units: bool = False) -> Recording:
+def read_bundle(path, drop_empty_units: bool = False, track=None) -> Recording:
     """Read an npz bundle written by :func:`write_bundle` or by hand (keys in module doc).
 
     Parameters
@@ -105,6 +112,10 @@ def read_bundle(path, drop_empty_units: bool = False) -> Recording:
     path : str or Path
     drop_empty_units : bool
         Drop units without spikes instead of raising InputError.
+    track : {"linear", "circular"} or encodex.io.track.TrackLayout, optional
+        The position is along a track: overrides the keys ``track_shape`` and
+        ``track_length_m``; a TrackLayout with a path projects 2-D tracking onto it. A
+        one-column ``position`` is a linear track unless said otherwise.
 
     Returns
     -------
@@ -200,6 +211,15 @@ def read_bundle(path, drop_empty_units: bool = False) -> Recording:
             if tk not in data or vk not in data:
                 raise FileFormatError(f"{path.name} lacks {tk} or {vk} for user variable {name}")
             extra[name] = Signal(np.ravel(data[tk]), np.ravel(data[vk]), kind, vk)
+    layout, position, heading = _bundle_track(path, data, track)
+    run_distance = None
+    if "run_distance_time" in data or "run_distance_values" in data:
+        if not ("run_distance_time" in data and "run_distance_values" in data):
+            raise FileFormatError(f"{path.name} has only one of run_distance_time/"
+                                  "run_distance_values; give both")
+        run_distance = Signal(np.ravel(data["run_distance_time"]),
+                              np.ravel(data["run_distance_values"]), "interval",
+                              "run_distance_values", "meters")
     provenance = {"source": f"npz bundle {path.name}"}
     if "provenance" in data:
         try:
@@ -208,13 +228,39 @@ def read_bundle(path, drop_empty_units: bool = False) -> Recording:
             pass  # notes only: an unreadable note is not worth refusing the file
     return make_recording(
         timestamps=data["tracking_time"],
-        position=data["position"],
+        position=position,
         spikes=dict(zip(ids, trains)),
-        heading=data.get("heading"),
+        heading=heading,
         trials=trials,
         epochs=epochs,
         provenance=provenance,
         drop_empty_units=drop_empty_units,
         lfp=lfp,
         extra=extra,
+        track=layout,
+        run_distance=run_distance,
     )
+
+
+def _bundle_track(path, data, track):
+    """Track layout, position and heading of a bundle (2-D tracking projected if asked)."""
+    from encodex.io.track import TrackLayout, along_track
+
+    position = np.asarray(data["position"], dtype=float)
+    heading = data.get("heading")
+    one_column = position.ndim == 1 or (position.ndim == 2 and position.shape[1] == 1)
+    if isinstance(track, TrackLayout):
+        layout = track
+    elif track is not None or "track_shape" in data or one_column:
+        shape = str(track or data.get("track_shape", "linear"))
+        if shape not in ("linear", "circular"):
+            raise InputError(f"{path.name}: track shape {shape!r} is unknown; use 'linear' or "
+                             "'circular'")
+        length = float(data["track_length_m"]) if "track_length_m" in data else None
+        layout = TrackLayout(shape, length_m=length)
+    else:
+        return None, position, heading
+    if not one_column:
+        position, _ = along_track(position, layout)
+        heading = None
+    return layout, position, heading

@@ -222,10 +222,14 @@ def _read_position(nwbfile, path, provenance):
     if not hasattr(obj, "data"):
         raise FileFormatError(f"{where} is not a time series; name a SpatialSeries")
     xy = _series_values(obj)
-    if xy.ndim == 1 or xy.shape[1] < 2:
-        raise InputError(
-            f"position series {where} has shape {xy.shape}; it needs (n, 2) x and y columns"
-        )
+    if xy.ndim == 1:
+        xy = xy[:, None]
+    if xy.shape[1] == 1:
+        # one column: a position along a track (metres)
+        xy = _in_si_unit(xy, obj, _LENGTH_TO_M, "metres", "position_unit_note", provenance)
+        provenance["position"] = where
+        provenance["track_frame"] = str(getattr(obj, "reference_frame", "") or "")
+        return _series_times(obj, f"position series {where}"), xy
     if xy.shape[1] > 2:
         provenance["position_note"] = f"used the first 2 of {xy.shape[1]} columns"
         xy = xy[:, :2]
@@ -489,8 +493,52 @@ def _read_extra(nwbfile, name, path, kind, provenance) -> Signal:
 # --------------------------------------------------------------------------- public
 
 
+#: Where a virtual environment's cumulative distance physically run is looked for.
+RUN_DISTANCE_PATH = "processing/behavior/run_distance"
+
+
+def _track_layout(track, frame: str, one_column: bool):
+    """The TrackLayout of a recording: from the option, else from the series' frame text."""
+    from encodex.io.track import TrackLayout, layout_from_text
+
+    if isinstance(track, TrackLayout):
+        return track
+    stated = layout_from_text(frame) if one_column else None
+    if track is None:
+        return stated if stated is not None else (TrackLayout() if one_column else None)
+    if track not in ("linear", "circular"):
+        raise SettingsError(f"track {track!r} is unknown; use 'linear', 'circular' or a "
+                            "TrackLayout")
+    length = stated.length_m if stated is not None else None
+    return TrackLayout(track, length_m=length)
+
+
+def _read_run_distance(nwbfile, path, provenance) -> Signal | None:
+    """Cumulative distance physically run (metres), at ``path`` or the conventional place."""
+    given = path is not None
+    where = str(path or RUN_DISTANCE_PATH).strip("/")
+    try:
+        obj = _resolve(nwbfile, where)
+    except (FileFormatError, InputError):
+        if given:
+            raise
+        return None
+    if not hasattr(obj, "data"):
+        raise FileFormatError(f"{where} is not a TimeSeries; name the series of distance run")
+    v = _series_values(obj)
+    if v.ndim == 2 and v.shape[1] == 1:
+        v = v[:, 0]
+    if v.ndim != 1:
+        raise InputError(f"distance run at {where} has shape {v.shape}; give one column of "
+                         "cumulative metres")
+    v = _in_si_unit(v, obj, _LENGTH_TO_M, "metres", "run_distance_unit_note", provenance)
+    provenance["run_distance"] = where
+    return Signal(_series_times(obj, f"series {where}"), v, "interval", where, "meters")
+
+
 def read_nwb(path, drop_empty_units: bool = False, lfp: str | None = None,
-             lfp_channel: int = 0, extra=None, extra_kinds=None,
+             lfp_channel: int = 0, extra=None, extra_kinds=None, track=None,
+             run_distance: str | None = None,
              **object_paths) -> Recording:
     """Read a recording from an NWB file following the encodex conventions.
 
@@ -515,6 +563,14 @@ def read_nwb(path, drop_empty_units: bool = False, lfp: str | None = None,
     extra_kinds : mapping of str to str, optional
         Basis kind of each user variable (``"interval"`` or ``"circular"``); by default
         circular when the series' unit is an angle (radians, degrees), interval otherwise.
+    track : {"linear", "circular"} or encodex.io.track.TrackLayout, optional
+        A one-column position series is a position along a track: linear unless this says
+        circular or the series' ``reference_frame`` does (e.g. ``"circular track, 2.0 m
+        round"``; the length is read from it). A TrackLayout with a ``path`` projects 2-D
+        tracking onto the track.
+    run_distance : str, optional
+        Path of a TimeSeries of the cumulative distance physically run (metres), read instead
+        of ``processing/behavior/run_distance``, where it is looked for by default.
 
     Returns
     -------
@@ -580,10 +636,17 @@ def read_nwb(path, drop_empty_units: bool = False, lfp: str | None = None,
             name: _read_extra(nwbfile, name, p, kinds.get(name), provenance)
             for name, p in dict(extra or {}).items()
         }
+        run_signal = _read_run_distance(nwbfile, run_distance, provenance)
     finally:
         io.close()
     if len(set(names)) != len(names):
         raise InputError("unit ids in the file are repeated; give each unit a unique id")
+    layout = _track_layout(track, provenance.pop("track_frame", ""), xy.shape[1] == 1)
+    if layout is not None and xy.shape[1] == 2:
+        from encodex.io.track import along_track
+
+        along, provenance["position_note"] = along_track(xy, layout)
+        xy, heading = along[:, None], None
     return make_recording(
         timestamps=ts,
         position=xy,
@@ -595,6 +658,8 @@ def read_nwb(path, drop_empty_units: bool = False, lfp: str | None = None,
         drop_empty_units=drop_empty_units,
         lfp=lfp_signal,
         extra=extra_signals,
+        track=layout,
+        run_distance=run_signal,
     )
 
 
@@ -667,14 +732,22 @@ def write_nwb(
     timing = (
         {"starting_time": float(ts[0]), "rate": rate} if rate is not None else {"timestamps": ts}
     )
-    behavior.add(
-        Position(
-            spatial_series=_spatial_series(
-                "position", recording.position, "meters", "(0, 0) is a corner of the arena; x, y",
-                "Tracked x, y position; NaN where tracking was lost", timing,
-            )
-        )
-    )
+    if recording.track is not None:
+        from encodex.io.track import layout_text
+
+        frame, what = layout_text(recording.track), "Position along the track, metres"
+    else:
+        frame, what = ("(0, 0) is a corner of the arena; x, y",
+                       "Tracked x, y position; NaN where tracking was lost")
+    behavior.add(Position(spatial_series=_spatial_series(
+        "position", recording.position, "meters", frame, what, timing)))
+    if recording.run_distance is not None:
+        from pynwb import TimeSeries
+
+        rd = recording.run_distance
+        behavior.add(TimeSeries(name="run_distance", data=np.asarray(rd.values), unit="meters",
+                                description="Cumulative distance physically run (ball or "
+                                "treadmill), metres", **_timing(rd.times)))
     if recording.heading is not None:
         behavior.add(
             CompassDirection(

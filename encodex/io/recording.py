@@ -190,6 +190,14 @@ class Recording:
         One LFP channel (volts) from which the rhythm phase is computed; None without.
     extra : Mapping[str, Signal]
         User-defined variables by name, each with its basis kind.
+    track : encodex.io.track.TrackLayout, optional
+        Set when the position is one-dimensional, along a linear or circular track: then
+        ``position`` has shape (n, 1), metres along the track (circular: wrapped to
+        [0, length)). None for 2-D tracking.
+    run_distance : Signal, optional
+        Cumulative distance physically run (ball or treadmill), metres, in a virtual
+        environment: speed and travelled distance are taken from it instead of from the
+        virtual position. None without.
 
     Raises
     ------
@@ -208,9 +216,13 @@ class Recording:
     provenance: Mapping[str, str] = field(default_factory=dict)
     lfp: Signal | None = None
     extra: Mapping[str, Signal] = field(default_factory=dict)
+    track: object | None = None
+    run_distance: Signal | None = None
 
     def __post_init__(self) -> None:
         set_ = object.__setattr__
+        if self.run_distance is not None and not isinstance(self.run_distance, Signal):
+            raise InputError("run_distance must be an encodex.io.Signal of cumulative metres")
         if self.lfp is not None and not isinstance(self.lfp, Signal):
             raise InputError("lfp must be an encodex.io.Signal (times, values); wrap the trace")
         extra = dict(self.extra or {})
@@ -228,10 +240,12 @@ class Recording:
             )
         _check_increasing("tracking timestamps", t)
         pos = np.asarray(self.position, dtype=float)
-        if pos.ndim != 2 or pos.shape[1] != 2:
+        if self.track is not None:
+            pos = _track_position(pos, self.track, t.size)
+        elif pos.ndim != 2 or pos.shape[1] != 2:
             raise InputError(
                 f"position must have shape (n, 2) in metres, got {pos.shape}; pass x and y "
-                "columns"
+                "columns, or for a position along a track pass track=TrackLayout(...)"
             )
         if pos.shape[0] != t.size:
             raise InputError(
@@ -331,6 +345,27 @@ class Recording:
         return tuple(seen)
 
 
+def _track_position(pos: np.ndarray, track, n: int) -> np.ndarray:
+    """One-column (n, 1) track position in metres; circular tracks wrapped to [0, length)."""
+    from encodex.io.track import TrackLayout
+
+    if not isinstance(track, TrackLayout):
+        raise InputError("track must be an encodex.io.track.TrackLayout; describe the track")
+    if pos.ndim == 1:
+        pos = pos[:, None]
+    if pos.ndim != 2 or pos.shape[1] != 1:
+        raise InputError(
+            f"a track position must have shape (n,) or (n, 1) in metres along the track, got "
+            f"{pos.shape}; project 2-D tracking with TrackLayout(path=...)")
+    if pos.shape[0] != n:
+        raise InputError(f"track position has {pos.shape[0]} samples but there are {n} "
+                         "timestamps; give one timestamp per sample")
+    pos = np.where(np.isfinite(pos), pos, np.nan)
+    if track.circular:
+        pos = np.mod(pos, track.length_m)
+    return pos
+
+
 def _check_extra_name(name) -> None:
     from encodex.variables import KINDS, VARIABLES
 
@@ -355,6 +390,8 @@ def make_recording(
     drop_empty_units: bool = False,
     lfp: Signal | None = None,
     extra: Mapping[str, Signal] | None = None,
+    track=None,
+    run_distance: Signal | None = None,
 ) -> Recording:
     """Build a :class:`Recording` from plain arrays (a convenience for in-memory data).
 
@@ -378,6 +415,10 @@ def make_recording(
         One LFP channel for the rhythm phase.
     extra : mapping of name to Signal, optional
         User-defined variables.
+    track : encodex.io.track.TrackLayout, optional
+        The position is along this track: ``position`` of shape (n,) metres.
+    run_distance : Signal, optional
+        Cumulative distance physically run, metres (virtual environments).
 
     Returns
     -------
@@ -408,4 +449,6 @@ def make_recording(
         provenance=prov,
         lfp=lfp,
         extra=dict(extra or {}),
+        track=track,
+        run_distance=run_distance,
     )

@@ -28,7 +28,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["TERM_KEYS", "CURVE_BINS", "response_arrays"]
+__all__ = ["TERM_KEYS", "CURVE_BINS", "response_arrays", "joint_baseline_hz"]
 
 #: Suffixes of the per-term keys (after ``<term>__``).
 TERM_KEYS = ("grid", "grid_x", "grid_y", "log_modulation", "se", "baseline_hz", "edges",
@@ -111,3 +111,18 @@ def response_arrays(fit, design, y: np.ndarray, bin_size: float, covariates: dic
         _, pred = occupancy_map(pos, mu, bin_size, *position_edges)
         out["ratemap__predicted_spikes"] = pred
     return out
+
+
+def joint_baseline_hz(fit, design, names, bin_size: float | None = None) -> float:
+    """The rate (Hz) that a joint curve of several terms is relative to.
+
+    The mean over the environment's bins of ``exp(eta - sum of the named terms)``: the
+    model's rate with those terms' own effects taken out, so that
+    ``baseline * exp(f_1(x) + f_2(x) + ...)`` is their joint partial-dependence rate
+    (Friedman 2001). Used for the per-direction curves along a track (position and
+    direction together). ``bin_size`` is accepted for symmetry with
+    :func:`response_arrays` and not needed (the linear predictor excludes the exposure).
+    """
+    eta, parts = _term_parts(fit, design)
+    removed = sum(parts[n] for n in names if n in parts)
+    return float(np.mean(np.exp(eta - removed)))

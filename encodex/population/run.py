@@ -239,13 +239,14 @@ def _environment_work(session, env_name: str, settings: RunSettings,
         fold = chunked_folds(rows.size, settings.folds, settings.chunks_per_fold,
                              stream(settings.seed, env_name, None, PURPOSE_FOLDS)).fold
     ex = ey = None
-    if "position" in cov and rows.size:
+    if "position" in cov and rows.size and np.ndim(cov["position"]) == 2:
         pos = cov["position"]
         if np.isfinite(pos).all(axis=1).any():
             ex, ey = spatial_edges(pos, settings.ratemap_bin_m)
     token = stable_hash([fingerprint, env_name, settings.to_dict()])
     all_kinds = dict(getattr(session, "kinds", {}) or {})
-    kinds = tuple(sorted((v, all_kinds[v]) for v in variables if v in all_kinds))
+    kinds = tuple(sorted((v, all_kinds[v]) for v in set(variables) | {"position"}
+                         if v in all_kinds))
     clock = _drift_clock(session, k, rows, settings, variables, info)
     work = EnvironmentWork(env_name, token, cov, variables, float(session.bin_size), fold,
                            settings.folds, settings.basis_sizes, kinds, ex, ey, note,

@@ -151,7 +151,8 @@ def environment_design(env: EnvironmentWork):
         return _DESIGNS[env.token]
     from encodex.design import DRIFT_TERM, build_design, default_bases, drift_basis
 
-    cov = {v: env.covariates[v] for v in env.variables}
+    # a direction term is evaluated on the track position too (its factor-by-curve input)
+    cov = {v: env.covariates[v] for v in set(env.variables) | ({"position"} & set(env.covariates))}
     bases = default_bases(cov, env.variables, sizes=dict(env.basis_sizes),
                           kinds=dict(env.kinds))
     if env.clock is not None:
@@ -263,10 +264,9 @@ def _analyse_cell(env, unit, y, settings, n_spikes, rate, arrays):
         row[f"gain_{v}"] = sel.gains.get(v, np.nan)
     # Concurvity flags (encodex.compare.concurvity): variables the chosen ones cannot be told
     # apart from on this environment's bins, whatever the spikes.
-    from encodex.compare.concurvity import ambiguous_pairs
+    from encodex.compare.concurvity import ambiguity_flags
 
-    flags = ambiguous_pairs(design, sel.chosen) if sel.chosen else {}
-    flagged = canonical_order({v for vs in flags.values() for v in vs})
+    flagged = ambiguity_flags(design, sel.chosen)
     row.update(
         shuffle_p=a.shuffle_p,
         ambiguous_with=";".join(flagged),
@@ -290,6 +290,14 @@ def _analyse_cell(env, unit, y, settings, n_spikes, rate, arrays):
         arrays.update(response_arrays(
             fit, design, y, env.bin_size, cov,
             None if env.edges_x is None else (env.edges_x, env.edges_y)))
+        from encodex.fit.direction import direction_curves
+        from encodex.population.curves import joint_baseline_hz
+
+        track = direction_curves(fit)
+        if track:
+            track["track__baseline_hz"] = np.asarray(joint_baseline_hz(
+                fit, design, ("position", "direction"), env.bin_size))
+        arrays.update(track)
     if settings.shuffles:
         arrays["shuffle__null_bits_per_spike"] = a.shuffle_null
     return {"cell": row, "models": model_rows(a.models)}, arrays, a.final_fit
@@ -319,6 +327,10 @@ def selection_path(steps, alpha: float, correction: str) -> str:
 
 
 def _ratemap(env: EnvironmentWork, y: np.ndarray) -> dict:
+    if "position" in env.covariates and np.ndim(env.covariates["position"]) == 1:
+        from encodex.track_maps import track_arrays  # position along a track
+
+        return track_arrays(env.covariates, y, env.bin_size, dict(env.kinds))
     if env.edges_x is None or "position" not in env.covariates:
         return {}
     from encodex.classic import occupancy_map

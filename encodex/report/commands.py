@@ -182,8 +182,14 @@ def run_demo(args) -> int:
 
     jobs = resolve_jobs(args.jobs)
     _out(f"{jobs} worker process{'es' * (jobs != 1)} (--jobs)")
-    result = demo(args.out, n_cells=args.cells, duration_s=args.duration, jobs=jobs,
-                  seed=args.seed, echo=_out)
+    if getattr(args, "track", None):
+        from encodex.report.track_demo import track_demo
+
+        result = track_demo(args.out, args.track, n_cells=args.cells,
+                            duration_s=args.duration, jobs=jobs, seed=args.seed, echo=_out)
+    else:
+        result = demo(args.out, n_cells=args.cells, duration_s=args.duration, jobs=jobs,
+                      seed=args.seed, echo=_out)
     _out(f"\nreport: {result['report'].resolve()}")
     return 0
 
@@ -263,5 +269,9 @@ def register_report_commands(subparsers) -> None:
     add_jobs_option(p)
     p.add_argument("--seed", type=whole_number(0), default=1,
                    help="seed of the simulation and folds (default 1)")
+    p.add_argument("--track", choices=("shuttle", "circular", "gain_corridor", "corridor"),
+                   help="a simulated track session instead: shuttle runs on a linear track, "
+                        "a circular track, or a virtual corridor with two gains "
+                        "(gain_corridor) or one (corridor)")
     p.set_defaults(func=run_demo)
 

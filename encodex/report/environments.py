@@ -166,7 +166,7 @@ def response_correlation(arrays_a: dict, arrays_b: dict, variable: str) -> float
         Correlation in [-1, 1]; NaN when a curve is missing, flat, or fewer than 3 grid points
         overlap.
     """
-    if variable == "position":
+    if variable == "position" and "position__grid" not in arrays_a:  # 1-D on a track: below
         keys = ("position__grid_x", "position__grid_y", "position__log_modulation")
         if not all(k in arrays_a and k in arrays_b for k in keys):
             return float("nan")

@@ -96,6 +96,10 @@ def cell_figure(run: RunFolder, unit: str, environment: str):
         )
     row = row.iloc[0]
     arrays = run.unit_arrays(environment, unit) or {}
+    if "track__edges" in arrays:  # a cell on a track: its own layout
+        from encodex.report.track_figures import track_cell_figure
+
+        return track_cell_figure(run, unit, environment, row, arrays)
     m = run.models
     m = m[(m["unit"].astype(str) == str(unit)) & (m["environment"].astype(str) ==
                                                   str(environment))]

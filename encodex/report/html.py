@@ -33,7 +33,7 @@ from encodex.report.tables import (
     make_tables,
     not_analysed_display,
 )
-from encodex.report.wording import label_caveat
+from encodex.report.wording import AMBIGUITY_SENTENCE, label_caveat
 
 __all__ = ["build_report", "render_report"]
 
@@ -188,7 +188,7 @@ def render_report(run: RunFolder, between=None, max_cells: int = 30,
         "<a href='#cells'>Cells</a><a href='#methods'>Methods</a>"
         "<a href='#settings'>Settings</a></nav><main>",
         f"<div class='caveat' id='caveat'><b>How to read the labels.</b> "
-        f"{html.escape(caveat)}</div>",
+        f"{html.escape(caveat)} {html.escape(AMBIGUITY_SENTENCE)}</div>",
         "<section id='summary'><h2>Summary</h2>",
         f"<p>{n_units} units in {len(envs)} environment(s): "
         f"{html.escape(', '.join(envs))}. Significance level alpha = {alpha:g}; "

@@ -23,7 +23,7 @@ from statsmodels.stats.proportion import proportion_confint
 
 from encodex.errors import OutputError, SettingsError
 from encodex.report.load import RunFolder, carried, classified, variables_in
-from encodex.report.wording import label_caveat
+from encodex.report.wording import AMBIGUITY_SENTENCE, label_caveat
 from encodex.variables import VARIABLES, NONE_LABEL
 
 __all__ = [
@@ -86,11 +86,21 @@ def _gain_summary(values: pd.Series) -> tuple[float, float, float]:
     return (float(med), float(q1), float(q3))
 
 
-def _count_rows(env: str, key: str, name: str, k: int, n: int, gains, level) -> dict:
+def _n_flagged(sel: pd.DataFrame) -> int:
+    """Cells carrying an ``ambiguous_with`` flag (a variable or combination they cannot be
+    told apart from in this session); counted beside, not instead of, the cells."""
+    if "ambiguous_with" not in sel:
+        return 0
+    return int((sel["ambiguous_with"].fillna("").astype(str).str.strip() != "").sum())
+
+
+def _count_rows(env: str, key: str, name: str, k: int, n: int, gains, level,
+                n_flagged: int = 0) -> dict:
     lo, hi = wilson_interval(k, n, level)
     med, q1, q3 = gains
     return {
-        "environment": env, key: name, "n_cells": k, "n_classified": n,
+        "environment": env, key: name, "n_cells": k, "n_flagged": int(n_flagged),
+        "n_classified": n,
         "percent": 100.0 * k / n if n else np.nan,
         "ci_low_percent": 100.0 * lo, "ci_high_percent": 100.0 * hi,
         "gain_median_bits_per_spike": med, "gain_q1_bits_per_spike": q1,
@@ -111,7 +121,8 @@ def label_counts(cells: pd.DataFrame, level: float = 0.95) -> pd.DataFrame:
     Returns
     -------
     DataFrame
-        Columns ``environment, label, n_cells, n_classified, percent, ci_low_percent,
+        Columns ``environment, label, n_cells, n_flagged, n_classified, percent,
+        ci_low_percent,
         ci_high_percent, gain_median_bits_per_spike, gain_q1_bits_per_spike,
         gain_q3_bits_per_spike``. Gains are the held-out information (cells.csv
         ``bits_per_spike``, pooled folds) of the chosen models of the cells with that label;
@@ -123,10 +134,11 @@ def label_counts(cells: pd.DataFrame, level: float = 0.95) -> pd.DataFrame:
         n = len(ok)
         for lab in sorted(set(ok["variables"]) | {NONE_LABEL}, key=_label_sort_key):
             sel = ok[ok["variables"] == lab]
-            # a "none" cell's chosen model is the mean-rate model: its 0 is not a measurement
+            # a "none" cell's chosen model is the baseline model: its 0 is not a measurement
             gains = (_gain_summary(sel["bits_per_spike"]) if lab != NONE_LABEL
                      else (np.nan,) * 3)
-            rows.append(_count_rows(env, "label", lab, len(sel), n, gains, level))
+            rows.append(_count_rows(env, "label", lab, len(sel), n, gains, level,
+                                    _n_flagged(sel)))
     return pd.DataFrame(rows, columns=_columns("label"))
 
 
@@ -162,7 +174,8 @@ def variable_counts(cells: pd.DataFrame, level: float = 0.95, tested=None,
                 continue
             col = f"gain_{v}"
             gains = _gain_summary(ok.loc[has, col]) if col in ok else (np.nan,) * 3
-            rows.append(_count_rows(env, "variable", v, int(has.sum()), n, gains, level))
+            rows.append(_count_rows(env, "variable", v, int(has.sum()), n, gains, level,
+                                    _n_flagged(ok.loc[has])))
     return pd.DataFrame(rows, columns=_columns("variable"))
 
 
@@ -181,7 +194,8 @@ def not_analysed(run: RunFolder) -> pd.DataFrame:
 
 
 def _columns(key: str) -> list[str]:
-    return ["environment", key, "n_cells", "n_classified", "percent", "ci_low_percent",
+    return ["environment", key, "n_cells", "n_flagged", "n_classified", "percent",
+            "ci_low_percent",
             "ci_high_percent", "gain_median_bits_per_spike", "gain_q1_bits_per_spike",
             "gain_q3_bits_per_spike"]
 
@@ -220,7 +234,8 @@ def cell_measures(run: RunFolder, min_occupancy_s: float | None = None) -> pd.Da
     Skaggs spatial information (bits per spike; Skaggs et al. 1993), plug-in and
     bias-corrected (:func:`encodex.classic.skaggs_information_corrected`), and the peak and
     mean occupancy-normalised rates are computed from the unsmoothed occupancy map saved by
-    the fit (``ratemap__occupancy_s``, ``ratemap__spikes``), over spatial bins visited for
+    the fit (``ratemap__occupancy_s``, ``ratemap__spikes``; on a track the 1-D occupancy along it,
+    both directions pooled), over spatial bins visited for
     at least ``min_occupancy_s`` seconds (default :data:`encodex.classic.MIN_OCCUPANCY_S`).
 
     Returns
@@ -243,6 +258,8 @@ def cell_measures(run: RunFolder, min_occupancy_s: float | None = None) -> pd.Da
         arr = run.unit_arrays(d["environment"], d["unit"]) or {}
         info = corrected = peak = mean = np.nan
         occ, spk = arr.get("ratemap__occupancy_s"), arr.get("ratemap__spikes")
+        if "track__occupancy_s" in arr:  # on a track: the 1-D occupancy, all directions
+            occ, spk = arr["track__occupancy_s"][0], arr["track__spikes"][0]
         if occ is not None and spk is not None:
             rates = rate_map(occ, spk, min_occupancy_s=min_occ)
             used = np.isfinite(rates)
@@ -312,6 +329,7 @@ def display_frame(df: pd.DataFrame, level: float = 0.95) -> pd.DataFrame:
             "Environment": d["environment"],
             key.capitalize(): d[key],
             "Cells": f"{d['n_cells']} / {d['n_classified']}",
+            "Flagged": str(d.get("n_flagged", 0)),
             "Percent": _fmt_num(d["percent"], 1),
             f"{pct}% CI (Wilson)": (
                 f"[{_fmt_num(d['ci_low_percent'], 1)}, {_fmt_num(d['ci_high_percent'], 1)}]"
@@ -427,12 +445,14 @@ def _captions(t: PaperTables) -> dict[str, str]:
         "labels": (f"Cells per label (set of carried variables) per environment, among "
                    f"labelled cells, with {pct}% Wilson score intervals and the held-out "
                    f"information of the chosen model (bits per spike, all held-out bins "
-                   f"pooled; blank for 'none', whose model is the mean rate). {t.caveat}"),
+                   f"pooled; blank for 'none', whose model is the baseline); Flagged: of these, "
+                   f"cells with an ambiguity flag. {t.caveat} {AMBIGUITY_SENTENCE}"),
         "variables": (f"Cells carrying each variable (alone or with others; a cell can carry "
                       f"several) per environment, among labelled cells, with {pct}% Wilson "
                       f"score intervals and the gain of the variable (bits per spike, "
                       f"averaged over folds). Variables not analysed in an environment have "
-                      f"no row (see table_not_analysed). {t.caveat}"),
+                      f"no row (see table_not_analysed); Flagged: of these, cells with an "
+                      f"ambiguity flag. {t.caveat} {AMBIGUITY_SENTENCE}"),
         "excluded": "Cells not labelled, by environment, status and reason; they are in no "
                     "count.",
         "not_analysed": "Variables not analysed in an environment, with the reason.",
