@@ -125,7 +125,8 @@ def _length_work(session, spec: PlanSpec, settings, minutes: float):
                          int(session.n_bins)])
     work = EnvironmentWork(spec.environment, token, cov, tuple(spec.variables),
                            float(session.bin_size), fold, settings.folds, settings.basis_sizes,
-                           kinds, None, None, "", clock if settings.drift else None)
+                           kinds, None, None, "", gram_precision=settings.gram_precision,
+                           clock=clock if settings.drift else None)
     return work, clock, repeated
 
 

@@ -647,7 +647,7 @@ def binned_counts(covariates, clock_s: np.ndarray, bin_size: float, variables,
                          _cov(covariates, "heading", n), _cov(covariates, "speed", n),
                          _cov(covariates, "distance", n), _cov(covariates, "time", n),
                          np.zeros(n, dtype=np.int64), np.zeros((0, 2)), ())
-        log_rate += strength * _log_gain(variables, p, beh, np.arange(n))
+        log_rate += strength * _log_modulation(variables, p, beh, np.arange(n))
     if modulation == "bursty":
         log_rate += _ou_dt(rng, n, bin_size, 2.0, 0.7)
     elif modulation == "drift":

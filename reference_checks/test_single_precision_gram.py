@@ -80,11 +80,13 @@ def test_population_results_do_not_depend_on_the_gram_precision(session):
     # At least two tuned cells, so that the comparison covers chosen models with terms.
     assert (a["variables"].isin(["", "none"]) == False).sum() >= 2  # noqa: E712
     np.testing.assert_allclose(a["p_value"], b["p_value"], rtol=1e-6, atol=1e-12)
-    np.testing.assert_allclose(a["bits_per_spike"], b["bits_per_spike"], rtol=0, atol=1e-7)
-    # Per-fold scores come from one Newton step per fold (not iterated), so the Hessian's
-    # rounding shows in them directly, but only at ~1e-7 bits per spike (3.2e-7 measured).
+    # Held-out scores move more than the all-bins fits: each fold's model is one Newton step
+    # (not iterated) with the rounded Hessian, and the drift-only baseline goes through the
+    # same steps. Measured with the drift term on: 7.9e-6 bits per spike per cell, 4.5e-5
+    # per fold (a wrong Gram entry would move them by orders of magnitude more).
+    np.testing.assert_allclose(a["bits_per_spike"], b["bits_per_spike"], rtol=0, atol=3e-5)
     ma, mb = runs["single"].models, runs["double"].models
-    np.testing.assert_allclose(ma["bits_per_spike"], mb["bits_per_spike"], rtol=0, atol=2e-6)
+    np.testing.assert_allclose(ma["bits_per_spike"], mb["bits_per_spike"], rtol=0, atol=1.5e-4)
     for key in runs["single"].fits:
         fa, fb = runs["single"].fits[key], runs["double"].fits[key]
         scale = np.max(np.abs(fb.theta))

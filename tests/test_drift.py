@@ -1,5 +1,7 @@
 """Slow drift as a nuisance term: basis, baseline model, labels and stored response."""
 
+import re
+
 import numpy as np
 import pytest
 
@@ -96,11 +98,12 @@ def test_run_stores_the_drift_response_and_records_the_setting(tmp_path):
     assert json.loads((tmp_path / "off" / "run.json").read_text())["settings"]["drift"] is False
     for unit in session.unit_ids:
         with np.load(tmp_path / "on" / "units" / "box" / f"{unit}.npz") as z:
-            assert z["drift__log_gain"].shape == z["drift__grid"].shape == z["drift__se"].shape
+            assert z["drift__log_modulation"].shape == z["drift__grid"].shape == z["drift__se"].shape
             assert z["drift__grid"][-1] == pytest.approx(240.0, abs=1.0)
         with np.load(tmp_path / "off" / "units" / "box" / f"{unit}.npz") as z:
             assert "drift__log_gain" not in z
-    assert "level 0.05" in on.cells["selection_path"].iloc[0]
+    # each step shows its p-value against the level it was tested at (alpha for signflip)
+    assert re.search(r"\(p=[0-9.e-]+(<=|>)0\.05\)", on.cells["selection_path"].iloc[0])
     assert len(off.cells) == len(on.cells)
     readme = (tmp_path / "on" / "README.txt").read_text()
     assert "drift-only model" in readme

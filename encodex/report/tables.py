@@ -475,7 +475,10 @@ Intervals are {pct}% Wilson score intervals.
 table_labels      one row per environment and label ("none": labelled, carries no variable)
 table_variables   one row per environment and variable analysed there
   environment, label | variable,
-  n_cells (cells with the label / carrying the variable), n_classified (labelled cells),
+  n_cells (cells with the label / carrying the variable),
+  n_flagged (of these, cells whose ambiguous_with is not empty: a chosen variable cannot be
+             told apart from another variable or combination in this session),
+  n_classified (labelled cells),
   percent, ci_low_percent, ci_high_percent (percent of n_classified and its interval),
   gain_median_bits_per_spike, gain_q1_bits_per_spike, gain_q3_bits_per_spike:
     table_labels: median and quartiles of the chosen model's held-out information
