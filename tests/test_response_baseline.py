@@ -79,16 +79,38 @@ def test_position_map_and_model_check_reproduce_observed_rates(unit_files):
 
 
 @pytest.fixture(scope="module")
-def unit_files(tmp_path_factory):
+def fit_dir(tmp_path_factory):
     rec, _ = simulate_recording(seed=11, n_cells=8, duration_s=600.0,
                                 environments=("room_a",))
     out = tmp_path_factory.mktemp("baseline") / "fit"
-    res = run_population(build_session(rec), out=out,
-                         variables=("position", "heading", "speed"))
+    run_population(build_session(rec), out=out, variables=("position", "heading", "speed"))
+    return out
+
+
+@pytest.fixture(scope="module")
+def unit_files(fit_dir):
+    import pandas as pd
+
+    cells = pd.read_csv(fit_dir / "cells.csv", dtype={"unit": str})
     found = []
-    for r in res.cells.itertuples():
+    for r in cells.itertuples():
         if r.status != "ok" or r.variables == "none":
             continue
-        with np.load(out / "units" / "room_a" / f"{r.unit}.npz") as z:
+        with np.load(fit_dir / "units" / "room_a" / f"{r.unit}.npz") as z:
             found.append((r.unit, {k: z[k] for k in z.files}, r.variables))
     return found
+
+
+def test_cell_figure_draws_the_model_check_of_a_fitted_cell(fit_dir, unit_files):
+    import matplotlib.pyplot as plt
+
+    from encodex.report.figures import cell_figure
+    from encodex.report.load import load_run
+
+    run = load_run(fit_dir)
+    unit = next(u for u, _, lab in unit_files if lab == "position")
+    fig = cell_figure(run, unit, "room_a")
+    check = next(ax for ax in fig.axes if ax.get_title() == "model check per spatial bin")
+    ratio = float(check.texts[0].get_text().split(":")[1].split()[0])
+    assert ratio == pytest.approx(1.0, abs=0.02)
+    plt.close(fig)
