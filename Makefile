@@ -13,13 +13,14 @@ $(STAMP): pyproject.toml
 	$(PY) -m pip install --quiet -e ".[test]"
 	touch $(STAMP)
 
-provision: $(STAMP)
+# First, so that a machine that cannot install the browser is told before the pip install.
+provision:
 	@sh scripts/provision
 
 demo: $(STAMP)
 	$(PY) -m encodex demo --out demo_output
 
-test: provision
+test: provision $(STAMP)
 	$(PY) -m pytest -q
 
 bench: $(STAMP)

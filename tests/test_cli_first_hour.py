@@ -113,20 +113,41 @@ def test_table_into_a_closed_pipe_ends_quietly(fitted):
     assert res.stdout.startswith("| Environment") and res.stderr == ""
 
 
+def _add_second_position_series(src: Path, dst: Path) -> None:
+    """Copy of an NWB file with a second camera's position (half scale) in another module."""
+    import numpy as np
+    from pynwb import NWBHDF5IO
+    from pynwb.behavior import Position, SpatialSeries
+
+    shutil.copy(src, dst)
+    with NWBHDF5IO(str(dst), "a") as io:
+        f = io.read()
+        pos = f.processing["behavior"]["Position"]["position"]
+        timing = ({"timestamps": np.asarray(pos.timestamps[:])} if pos.timestamps is not None
+                  else {"rate": pos.rate, "starting_time": pos.starting_time})
+        second = Position(name="Position")
+        second.add_spatial_series(SpatialSeries(name="led", data=0.5 * np.asarray(pos.data[:]),
+                                                reference_frame="arena corner", unit=pos.unit,
+                                                **timing))
+        f.create_processing_module("tracking", "a second camera").add(second)
+        io.write(f)
+
+
 def test_refused_run_writes_nothing_and_replaces_an_empty_checkpoint(work):
     # --folds 3 cannot reach the first step's level: refused before --out is created.
     err = one_error_line(encodex("fit", "data/simulated_session.nwb", "--out", "A",
                                  "--folds", "3", cwd=work))
     assert "--folds" in err and not (work / "A").exists()
     # A folder holding only a checkpoint (a run that finished no unit) is replaced, and
-    # every command-line option reaches the run.
+    # every command-line option reaches the run, on a file holding two position series.
+    _add_second_position_series(work / "data" / "simulated_session.nwb", work / "two.nwb")
     (work / "B").mkdir()
     (work / "B" / "checkpoint.json").write_text(json.dumps(
         {"format": "encodex-run-checkpoint/1", "settings": {"folds": 5},
          "data_fingerprint": "0"}))
-    res = encodex("fit", "data/simulated_session.nwb", "--out", "B", *FIT, "--jobs", "1",
+    res = encodex("fit", "two.nwb", "--out", "B", *FIT, "--jobs", "1",
                   "--min-speed", "0.04", "--speed-smoothing", "0.3", "--max-gap", "1",
-                  "--nwb-position", "processing/behavior/Position/position",
+                  "--nwb-position", "processing/tracking/Position/led",
                   "--nwb-epochs", "intervals/epochs", "--basis-size", "speed=6", "--basis-size",
                   "heading=8", "--chunks-per-fold", "2", cwd=work)
     assert res.returncode == 0, res.stderr
@@ -137,8 +158,11 @@ def test_refused_run_writes_nothing_and_replaces_an_empty_checkpoint(work):
     assert (built["min_speed"], built["speed_smoothing_s"], built["max_gap_s"]) == (0.04, 0.3,
                                                                                    1.0)
     assert run["load_options"]["object_paths"] == {
-        "position": "processing/behavior/Position/position", "epochs": "intervals/epochs"}
-    assert run["session"]["summary"]["objects"]["epochs"] == "intervals/epochs"
+        "position": "processing/tracking/Position/led", "epochs": "intervals/epochs"}
+    objects = run["session"]["summary"]["objects"]
+    assert (objects["position"], objects["epochs"]) == ("processing/tracking/Position/led",
+                                                        "intervals/epochs")
+    assert re.search(r"^\s+position\s+processing/tracking/Position/led$", res.stdout, re.M)
     assert run["session"]["masked_bins"]["below_min_speed"] > 0
     assert re.search(r"below_min_speed\s+[\d,]+ .*--min-speed", res.stdout)
 

@@ -248,7 +248,7 @@ def register_report_commands(subparsers) -> None:
                                                  "RESULTS/report.html)")
     p.add_argument("--between", nargs=2, metavar=("A", "B"),
                    help="environments to compare (default: every pair, at most three)")
-    p.add_argument("--max-cells", type=whole_number(0), default=30,
+    p.add_argument("--max-cells", type=whole_number(0), default=30, metavar="N",
                    help="per-cell sections in the report (default 30, tuned cells first)")
     p.add_argument("--cell", nargs=2, action="append", metavar=("UNIT", "ENV"),
                    help="also save this cell's figure as PNG and PDF (repeatable)")
@@ -262,12 +262,13 @@ def register_report_commands(subparsers) -> None:
     p.add_argument("--out", required=True, metavar="DIR",
                    help="folder for everything the demo writes (new, empty, or an earlier "
                         "demo's)")
-    p.add_argument("--cells", type=int, default=12,
+    p.add_argument("--cells", type=int, default=12, metavar="N",
                    help="simulated units (default 12)")
     p.add_argument("--duration", type=positive_number("seconds"), default=900.0,
+                   metavar="SECONDS",
                    help="seconds per environment (default 900)")
     add_jobs_option(p)
-    p.add_argument("--seed", type=whole_number(0), default=1,
+    p.add_argument("--seed", type=whole_number(0), default=1, metavar="S",
                    help="seed of the simulation and folds (default 1)")
     p.add_argument("--track", choices=("shuttle", "circular", "gain_corridor", "corridor"),
                    help="a simulated track session instead: shuttle runs on a linear track, "
