@@ -146,7 +146,7 @@ def add_fit_command(subparsers) -> None:
                         "slower)")
     p.add_argument("--gram-precision", choices=("single", "double"), default="single",
                    help="arithmetic of the Hessian pieces X'WX: single (default; float32 "
-                        "chunks summed in float64, 1.5x faster, same optima) or double")
+                        "chunks summed in float64: X'WX 1.5x faster, same optima) or double")
     p.add_argument("--min-spikes", type=_positive_int, default=100, metavar="N",
                    help="cells with fewer spikes in an environment are not labelled "
                         "(default 100)")
