@@ -67,7 +67,8 @@ class Problem:
         return self.design.n_rows
 
 
-def make_problem(duration_s: float, seed: int = 1, n_cells: int = 20) -> Problem:
+def make_problem(duration_s: float, seed: int = 1, n_cells: int = 20,
+                 gram_precision: str = "double") -> Problem:
     """Simulate one open-field session and pick a position+speed cell.
 
     Uses :func:`encodex.simulate.simulate_recording` (a single environment of ``duration_s``,
@@ -89,7 +90,7 @@ def make_problem(duration_s: float, seed: int = 1, n_cells: int = 20) -> Problem
     session = build_session(rec, bin_size=BIN_SIZE).restrict(0)
     cov = {v: np.asarray(session.covariates[v]) for v in VARIABLES}
     bases = default_bases(cov, VARIABLES, sizes=SIZES)
-    design = build_design(cov, bases)
+    design = build_design(cov, bases, gram_precision=gram_precision)
     unit = str(hits.iloc[0])
     y = session.unit_counts(unit).astype(float)
     return Problem(design, y, float(np.log(session.bin_size)), unit, s, float(duration_s))

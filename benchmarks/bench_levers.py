@@ -230,70 +230,30 @@ def line_search_counts(session, n_cells: int) -> dict:
             "share_of_cell_time": counts["seconds"] / total, "cells_seconds": total}
 
 
-# --- 4. single-precision X'WX (a lever of our own, measured here) ---------------------------
-_ROWS32: dict = {}
-
-
-def _gram_single(self, w, groups=None, n_groups=None):
-    """``Design.weighted_gram`` with the compact rows and each chunk's product in float32
-    (summed in float64): the Hessian alone is approximated; gradients and objectives stay
-    exact, so Newton still converges to the same optimum."""
-    from encodex.design.design import GRAM_CHUNK_ROWS
-
-    plan = self._base._gram_plan(groups)
-    rows32 = _ROWS32.get(id(plan))
-    if rows32 is None:
-        rows32 = _ROWS32[id(plan)] = plan.columns_by_row.astype(np.float32)
-    runs, width, spans = plan.layout_for(self)
-    n_out = 1 if groups is None else (int(np.max(groups)) + 1 if n_groups is None
-                                      else int(n_groups))
-    p = self.n_beta
-    out = np.zeros((n_out, p, p))
-    sw = np.sqrt(np.asarray(w, dtype=float)[plan.order]).astype(np.float32)
-    buf = np.empty((width, GRAM_CHUNK_ROWS), dtype=np.float32)
-    for r0, r1, gid, cols in runs:
-        if not sw[r0:r1].any():
-            continue
-        g = np.zeros((width, width))
-        for start in range(r0, r1, GRAM_CHUNK_ROWS):
-            stop = min(start + GRAM_CHUNK_ROWS, r1)
-            c = buf[:, :stop - start]
-            for lo, hi, at in spans:
-                np.multiply(rows32[lo:hi, start:stop], sw[start:stop], out=c[at:at + hi - lo])
-            g += c @ c.T
-        out[gid][np.ix_(cols, cols)] += g
-    out = self.Z.T @ out @ self.Z
-    return out[0] if groups is None else out
-
-
+# --- 4. single-precision X'WX (``gram_precision``, a lever of our own) ------------------------
 def single_precision(session, n_cells: int) -> dict:
-    """Whole cells with the exact X'WX and with :func:`_gram_single`, interleaved."""
-    from encodex.design import Design
+    """Whole cells with ``gram_precision="double"`` and ``"single"``, interleaved."""
     from encodex.population.run import _env_counts, _environment_work
     from encodex.population.settings import RunSettings
     from encodex.population.work import analyse_unit, environment_design
 
-    rs = RunSettings()
-    env, _ = _environment_work(session, session.environments[0], rs, "levers-f32")
-    design = environment_design(env)
-    exact = Design.weighted_gram
-    w = np.exp(np.random.default_rng(0).normal(-3.0, 0.5, design.n_rows))
-    g64, g32 = exact(design, w), _gram_single(design, w)
+    settings = {p: RunSettings(gram_precision=p) for p in ("double", "single")}
+    envs = {p: _environment_work(session, session.environments[0], rs, "levers")[0]
+            for p, rs in settings.items()}
+    designs = {p: environment_design(env) for p, env in envs.items()}
+    w = np.exp(np.random.default_rng(0).normal(-3.0, 0.5, designs["double"].n_rows))
+    g64, g32 = designs["double"].weighted_gram(w), designs["single"].weighted_gram(w)
     gram_err = float(np.max(np.abs(g32 - g64)) / np.max(np.abs(g64)))
-    t64 = median_ms(lambda: exact(design, w), 5)
-    t32 = median_ms(lambda: _gram_single(design, w), 5)
+    t64 = median_ms(lambda: designs["double"].weighted_gram(w), 5)
+    t32 = median_ms(lambda: designs["single"].weighted_gram(w), 5)
     cells = []
     for unit in session.unit_ids[:n_cells]:
-        y = _env_counts(session, env.name, unit, env)
         res = {}
-        for mode in ("double", "single"):
-            Design.weighted_gram = exact if mode == "double" else _gram_single
-            try:
-                t0 = time.process_time()
-                oc = analyse_unit(env, unit, y, rs)
-                res[mode] = (time.process_time() - t0, oc)
-            finally:
-                Design.weighted_gram = exact
+        for p in ("double", "single"):
+            y = _env_counts(session, envs[p].name, unit, envs[p])
+            t0 = time.process_time()
+            oc = analyse_unit(envs[p], unit, y, settings[p])
+            res[p] = (time.process_time() - t0, oc)
         (c64, o64), (c32, o32) = res["double"], res["single"]
         r64, r32 = o64.record["cell"], o32.record["cell"]
         row = {"unit": unit, "label_double": r64["variables"], "label_single": r32["variables"],
@@ -323,7 +283,9 @@ def run(args) -> dict:
     from encodex.population.work import environment_design
 
     session, _ = make_session(args.cells, args.minutes * 60.0, args.seed)
-    env, _ = _environment_work(session, session.environments[0], RunSettings(), "levers")
+    # The exact (float64) X'WX is the reference of every lever.
+    env, _ = _environment_work(session, session.environments[0],
+                               RunSettings(gram_precision="double"), "levers")
     design = environment_design(env)
     rng = np.random.default_rng(args.seed)
     with threadpool_limits(limits=1):
@@ -390,7 +352,7 @@ def main(argv=None) -> int:
     ap.add_argument("--repeats", type=int, default=7, help="timed repeats (default 7)")
     ap.add_argument("--seed", type=int, default=1, help="simulation seed (default 1)")
     ap.add_argument("--single", action="store_true",
-                    help="also run whole cells with a single-precision X'WX (prototype)")
+                    help="also compare whole cells with gram_precision single and double")
     ap.add_argument("--quick", action="store_true", help="10 min of data, 3 repeats")
     args = ap.parse_args(argv)
     if args.quick:

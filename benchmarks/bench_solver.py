@@ -166,7 +166,8 @@ def run(args) -> dict:
     load0 = os.getloadavg()[0]
     with threadpool_limits(limits=1):
         threads = sorted({(i["user_api"], i["num_threads"]) for i in threadpool_info()})
-        problem = _peers.make_problem(duration, seed=args.seed)
+        problem = _peers.make_problem(duration, seed=args.seed,
+                                      gram_precision=args.gram_precision)
         d, y, off = problem.design, problem.y, problem.offset
 
         # 1. Smoothing parameters from one LAML fit, then timed separately.
@@ -233,6 +234,7 @@ def run(args) -> dict:
         "date_utc": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "command": " ".join([Path(sys.executable).name, *sys.argv]),
         "quick": bool(args.quick),
+        "gram_precision": args.gram_precision,
         "machine": {**machine(), "loadavg_1min_start": load0},
         "versions": versions(),
         "threads": [list(t) for t in threads],
@@ -331,6 +333,8 @@ def main(argv=None) -> int:
     ap.add_argument("--duration", type=float, default=None,
                     help="session length in seconds (default 1800, 300 with --quick)")
     ap.add_argument("--seed", type=int, default=1, help="simulation seed (default 1)")
+    ap.add_argument("--gram-precision", choices=("double", "single"), default="double",
+                    help="arithmetic of encodex's X'WX (default double, the engine's default)")
     args = ap.parse_args(argv)
     if args.repeats is not None and args.repeats < 1:
         print("error: --repeats must be at least 1", file=sys.stderr)

@@ -1,9 +1,10 @@
 """What a population task carries: spike counts by their non-zero bins, fits without
-bins-long arrays."""
+bins-long arrays; and the check of the X'WX precision setting the workers receive."""
 
 import pickle
 
 import numpy as np
+import pytest
 from scipy import sparse
 
 from encodex.design import IntervalBasis, build_design
@@ -47,3 +48,14 @@ def test_fit_keeps_a_constant_offset_as_one_number():
                                np.exp(design.linear_predictor(fit.theta)[:10] + full[:10]))
     varying = full + 0.1 * np.sin(x)
     assert np.shape(fit_poisson(design, y, varying, lambdas=fit.lambdas).offset) == x.shape
+
+
+def test_unknown_gram_precision_is_a_settings_error():
+    from encodex.errors import SettingsError
+    from encodex.population.settings import RunSettings
+
+    with pytest.raises(SettingsError, match="gram_precision"):
+        build_design({"speed": np.linspace(0, 1, 50)}, {"speed": IntervalBasis(6, (0.0, 1.0))},
+                     gram_precision="half")
+    with pytest.raises(SettingsError, match="--gram-precision double"):
+        RunSettings(gram_precision="quad")

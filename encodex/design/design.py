@@ -29,7 +29,7 @@ from functools import cached_property
 import numpy as np
 from scipy import sparse
 
-from encodex.errors import InputError
+from encodex.errors import InputError, SettingsError
 from encodex.variables import canonical_order
 
 from .bases import Basis, Block
@@ -104,7 +104,7 @@ class Design:
 
     def __post_init__(self):
         if self.gram_precision not in GRAM_PRECISIONS:
-            raise InputError(f"gram_precision must be one of {GRAM_PRECISIONS} (got "
+            raise SettingsError(f"gram_precision must be one of {GRAM_PRECISIONS} (got "
                              f"{self.gram_precision!r}); use 'double'")
 
     # --- layout -------------------------------------------------------------------------
