@@ -99,6 +99,9 @@ def run_compare(args) -> int:
         if getattr(args, option):
             raise SettingsError(f"--{option} is for comparing two or more folders; with one "
                                 f"folder use --between A B")
+    if args.coordinates != "own":
+        raise SettingsError("--coordinates is for comparing two or more folders; one folder's "
+                            "environments are compared in the recorded metres")
     args.dir = args.dir[0]
     _headless()
     import matplotlib.pyplot as plt
