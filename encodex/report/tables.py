@@ -91,7 +91,9 @@ def _n_flagged(sel: pd.DataFrame) -> int:
     told apart from in this session); counted beside, not instead of, the cells."""
     if "ambiguous_with" not in sel:
         return 0
-    return int((sel["ambiguous_with"].fillna("").astype(str).str.strip() != "").sum())
+    # empty flags read back from CSV as NaN (a float column when no cell is flagged)
+    return int(sel["ambiguous_with"].map(lambda v: isinstance(v, str) and v.strip() != "")
+               .sum())
 
 
 def _count_rows(env: str, key: str, name: str, k: int, n: int, gains, level,
