@@ -28,7 +28,9 @@ Its maximisation (:func:`encodex.fit.engine.fit_poisson`)
    (by up to a few percent in lambda).
 2. Newton steps on ``rho = log lambda`` with the exact gradient of ``V``, which includes the
    change of the Poisson weights with lambda (:func:`laml_derivatives`), until the gradient
-   or the step is small (:class:`encodex.fit.engine.FitOptions`).
+   or the step is small (:class:`encodex.fit.engine.FitOptions`). A parameter that step 1
+   sent far up to where ``V`` is flat (a term smoothed away) while ``V`` still rises towards
+   smaller lambda is walked back first: there a small gradient is no sign of an optimum.
 """
 
 from __future__ import annotations

@@ -235,6 +235,47 @@ def _tracking(m: MethodsInput):
     return Sentence(text)
 
 
+@register_sentence("track")
+def _track(m: MethodsInput):
+    t = m.summary.get("track")
+    if not isinstance(t, dict):
+        return None
+    circular = t.get("shape") == "circular"
+    length = t.get("length_m")
+    size = f" of {_num(length)} m" if isinstance(length, (int, float)) else ""
+    text = (f"Position was the distance along a {'circular' if circular else 'linear'} "
+            f"track{size} (m), modelled with a "
+            + ("periodic cubic P-spline basis with the track length as period"
+               if circular else "cubic P-spline basis on its observed range"))
+    if t.get("path"):
+        text += "; 2-D tracking was projected onto the nearest point of the track's path"
+    text += "."
+    st = m.session_settings
+    if "direction" in m.analysed:
+        ds = st.get("direction_speed")
+        below = f", with no direction below {_num(ds)} m/s" if ds is not None else ""
+        text += (f" Running direction was the sign of the velocity along the track{below}; it "
+                 f"entered as a factor-by-curve term s d(x) beside the shared position curve "
+                 f"f(x), with the same basis and penalty, was offered only together with or "
+                 f"after position, and was kept only if it improved held-out prediction over "
+                 f"position alone by the step test.")
+    if t.get("trials_from") == "laps":
+        text += (f" Laps served as trials ({t.get('n_laps')} laps): traversals between the "
+                 f"ends of a linear track, passes of the origin on a circular one, or "
+                 f"stretches between resets of a virtual position.")
+    source = str(t.get("speed_source", ""))
+    if source.startswith("distance run"):
+        text += (f" Speed and distance came from the cumulative distance run on the "
+                 f"treadmill or ball ({source[len('distance run'):].strip(' ()')}), not from "
+                 f"the virtual position.")
+    js = st.get("jump_speed")
+    if js is not None:
+        text += (f" Jumps of the position faster than {_num(js)} m/s (lap resets, teleports; "
+                 f"{t.get('n_jumps', 0)} in this recording) never contributed to speed or "
+                 f"distance, and the bin of each jump was excluded.")
+    return Sentence(text, ("Eilers & Marx 1996",))
+
+
 @register_sentence("speed")
 def _speed(m: MethodsInput):
     sd = m.session_settings.get("speed_smoothing_s")

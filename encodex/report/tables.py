@@ -92,8 +92,8 @@ def _n_flagged(sel: pd.DataFrame) -> int:
     if "ambiguous_with" not in sel:
         return 0
     # empty flags read back from CSV as NaN (a float column when no cell is flagged)
-    return int(sel["ambiguous_with"].map(lambda v: isinstance(v, str) and v.strip() != "")
-               .sum())
+    # (a plain count: the sum of an empty object column is not 0 in every pandas version)
+    return sum(1 for v in sel["ambiguous_with"] if isinstance(v, str) and v.strip() != "")
 
 
 def _count_rows(env: str, key: str, name: str, k: int, n: int, gains, level,
