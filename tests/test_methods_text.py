@@ -151,3 +151,18 @@ def test_table_level_reaches_the_paragraph(runs):
     s = _check(runs["nwb"], level=0.9)
     assert "90% Wilson" in s["level"]
     assert "95% Wilson" not in methods_paragraph(runs["nwb"], level=0.9)
+
+
+def test_track_run_is_described_as_a_track_not_an_arena(tmp_path):
+    # A shuttle track with a direction-dependent field: the paragraph must describe a 1-D
+    # track position, the direction term and laps, never the arena's tensor-product basis.
+    from encodex.simulate_track import simulate_track_recording
+
+    rec, _ = simulate_track_recording("shuttle", n_cells=2, duration_s=200.0, seed=3)
+    run = _fit(build_session(rec, bin_size=0.05), folds=5, chunks_per_fold=2)
+    s = dict(methods_sentences(run))
+    assert "linear track" in s["track"].text and "factor-by-curve" in s["track"].text
+    assert "tensor product" not in s["basis_sizes"].text
+    assert "direction: a difference curve over track position" in s["basis_sizes"].text
+    assert "combination of two others" in s["concurvity"].text
+    assert "mean squared canonical correlation" in s["concurvity"].text

@@ -97,8 +97,11 @@ def response_arrays(fit, design, y: np.ndarray, bin_size: float, covariates: dic
         # mean over bins of exp(eta - f): the rate with this term's own effect taken out
         out[f"{name}__baseline_hz"] = np.asarray(float(np.mean(np.exp(eta - parts[name]))))
         v = covariates.get(name)
-        if v is not None and np.ndim(v) == 1 and not isinstance(r.grid, tuple):
-            basis = design.term(name).basis
+        basis = design.term(name).basis
+        # a factor-by-curve term (track direction) is a curve over another covariate: its
+        # own values (+1, -1) give no tuning curve to bin
+        own = tuple(getattr(basis, "inputs", (name,))) in ((name,),)
+        if v is not None and own and np.ndim(v) == 1 and not isinstance(r.grid, tuple):
             lo, hi = (float(b) for b in basis.range)
             edges = np.linspace(lo, hi, CURVE_BINS + 1)
             out[f"{name}__edges"] = edges

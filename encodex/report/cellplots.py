@@ -33,7 +33,8 @@ Z95 = 1.959963984540054
 #: Bins (spatial or along a variable) visited for less than this are not given a rate.
 MIN_BIN_OCCUPANCY_S = MIN_OCCUPANCY_S
 _PATH_STEP = re.compile(r"([+x])([^(]+)\(p=([^<>=)]+)(?:(<=|<|>=|>)([^)]+))?\)")
-_NAMES = {"distance": "distance since trial start", "time": "time since trial start"}
+_NAMES = {"distance": "distance since trial start", "time": "time since trial start",
+          "drift": "time in the environment (slow drift, s)"}
 
 
 def response_terms(arrays: dict) -> tuple[str, ...]:
@@ -241,7 +242,7 @@ def _draw_path(ax_gain, ax_p, steps: list[dict], models: pd.DataFrame) -> None:
                           for s in steps], fontsize=8)
     for a in (ax_gain, ax_p):
         a.set_xlim(-0.6, max(len(steps), 1) - 0.4)
-    ax_p.text(0.99, 0.04, "bar: level of the step (added if p < level)",
+    ax_p.text(0.99, 0.04, "bar: level of the step (added when p reached it)",
               transform=ax_p.transAxes, ha="right", va="bottom", fontsize=7, color="0.3")
 
 

@@ -244,7 +244,7 @@ def _track(m: MethodsInput):
     length = t.get("length_m")
     size = f" of {_num(length)} m" if isinstance(length, (int, float)) else ""
     text = (f"Position was the distance along a {'circular' if circular else 'linear'} "
-            f"track{size} (m), modelled with a "
+            f"track{size}, in metres, modelled with a "
             + ("periodic cubic P-spline basis with the track length as period"
                if circular else "cubic P-spline basis on its observed range"))
     if t.get("path"):
@@ -392,12 +392,19 @@ def _bases(m: MethodsInput):
     except ImportError:  # pragma: no cover - design stage always present in a package
         DEFAULT_SIZES = {}
     sizes = {**DEFAULT_SIZES, **(m.get("basis_sizes") or {})}
-    kinds = m.kinds
+    kinds = dict(m.kinds)
+    track = m.summary.get("track")
+    if isinstance(track, dict):  # position along a track: a 1-D term
+        kinds["position"] = "circular" if track.get("shape") == "circular" else "interval"
     parts = []
     for v in m.analysed:
-        n = sizes.get(v)
+        n = sizes.get(v, sizes.get("position") if v == "direction" else None)
         k = kinds.get(v, "interval")
-        if k == "planar":
+        if v == "direction":
+            parts.append(f"direction: a difference curve over track position with the "
+                         f"position term's basis ({n} functions), multiplied by the running "
+                         f"direction (+1 or -1) and not centred")
+        elif k == "planar":
             parts.append(f"{v}: tensor product of two cubic B-spline bases ({n} x {n} "
                          f"functions, one penalty per axis)")
         elif k == "circular":
@@ -407,7 +414,7 @@ def _bases(m: MethodsInput):
     if not parts:
         return None
     extent = (" (for position, the tracked extent on each axis)"
-              if "position" in m.analysed else "")
+              if "position" in m.analysed and not isinstance(track, dict) else "")
     return Sentence(
         "Terms were penalised regression splines (P-splines; Eilers & Marx 1996) with a "
         "second-order difference penalty: " + "; ".join(parts) + ". The knots of each term "
@@ -571,12 +578,15 @@ def _concurvity(m: MethodsInput):
         from encodex.compare.concurvity import DEFAULT_MEASURE, DEFAULT_THRESHOLD
     except ImportError:  # pragma: no cover
         return None
-    how = ("the mean squared canonical correlation between the two terms' basis spaces over "
-           "the environment's bins" if DEFAULT_MEASURE == "mean" else
-           "the largest squared canonical correlation between the two terms' basis spaces")
+    how = ("the mean squared canonical correlation between the chosen term's basis space "
+           "and the other's over the environment's bins"
+           if DEFAULT_MEASURE in ("mean", "average") else
+           "the largest squared canonical correlation between the chosen term's basis space "
+           "and the other's")
     return Sentence(
-        f"A chosen variable was flagged as not separable from another candidate "
-        f"(ambiguous_with) when their concurvity (Hastie & Tibshirani 1990; Wood 2017), "
+        f"A chosen variable was flagged as not separable from another candidate, or from a "
+        f"combination of two others (ambiguous_with, e.g. distance against "
+        f"position+direction), when their concurvity (Hastie & Tibshirani 1990; Wood 2017), "
         f"computed from the design alone as {how}, reached {_num(DEFAULT_THRESHOLD)}; the "
         f"flag does not depend on the spikes.", ("Hastie & Tibshirani 1990", "Wood 2017"))
 

@@ -137,7 +137,7 @@ def plot_track_ratemap(ax, arrays: dict, min_occupancy_s: float = 0.1) -> dict:
     ax.set_ylabel("rate (Hz)")
     ax.set_ylim(bottom=0)
     ax.legend(fontsize=7, frameon=False, title="Skaggs information", title_fontsize=7)
-    ax.set_title("rate along the track (occupancy-normalised)")
+    ax.set_title("observed rate (occupancy-normalised)", fontsize=9)
     return info
 
 
@@ -148,7 +148,7 @@ def track_cell_figure(run, unit: str, environment: str, row, arrays: dict):
 
     ok = row["status"] == "ok"
     others = [t for t in (response_terms(arrays) if ok else ())
-              if t not in ("position", "direction") and f"{t}__grid" in arrays]
+              if t not in ("position", "direction", "track") and f"{t}__grid" in arrays]
     heights = [1.2] + ([1.0] if others else []) + ([0.8, 0.5] if ok else [])
     ncol = max(3, len(others))
     fig = plt.figure(figsize=(3.8 * ncol, 2.6 * sum(heights) + 0.8), layout="constrained")
