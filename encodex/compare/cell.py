@@ -207,7 +207,7 @@ class CellAnalysis:
     notes : tuple of str
         Warnings worth a line in the table (fits that did not converge).
     goodness : GoodnessOfFit or None
-        Goodness of fit of the chosen model (the mean-rate model for "none") on its held-out
+        Goodness of fit of the chosen model (the baseline model for "none") on its held-out
         predictions (:mod:`encodex.compare.goodness`); None when not computed.
     baseline_fit : PoissonFit or None
         The nuisance-only model (e.g. drift only) fitted on all bins, when there are

@@ -344,7 +344,7 @@ def goodness_of_fit(y, mu, bin_size: float, rng: np.random.Generator, gaps=None,
 
 #: What the checks are, for run.json and the methods text.
 GOODNESS_STATEMENT = (
-    "The goodness of fit of each cell's chosen model (the mean-rate model for cells labelled "
+    "The goodness of fit of each cell's chosen model (the baseline model for cells labelled "
     "'none') was checked on its held-out predictions, each bin predicted by the fold model "
     "that had not seen it: a time-rescaling Kolmogorov-Smirnov test with the discrete-time "
     "correction (Brown et al. 2002; Haslinger et al. 2010) against the 95% point of the "

@@ -645,7 +645,7 @@ cells.csv   one row per unit and environment:
                   can never be passed),
   tied_with (other models with as many variables that the chosen one does not beat
              significantly across folds, ";"-separated labels),
-  goodness of fit of the chosen model (the mean-rate model for "none") on its held-out
+  goodness of fit of the chosen model (the baseline model for "none") on its held-out
   predictions (encodex.compare.goodness): ks_distance (time-rescaling KS distance, with the
   discrete-time correction), ks_critical (its 95% point), ks_within_band (True/False),
   ks_intervals (rescaled intervals used), dispersion (Pearson statistic of held-out counts

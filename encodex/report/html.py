@@ -124,8 +124,8 @@ def _goodness_section(cells: pd.DataFrame) -> list[str]:
         return head + ["<p>This folder has no goodness-of-fit columns (written before they "
                        "existed); re-run <code>encodex fit</code> to add them.</p></section>"]
     return head + [
-        "<p>Each chosen model (the mean-rate model for 'none') is checked on its held-out "
-        "predictions: time-rescaling KS test with the discrete-time correction, dispersion "
+        "<p>Each chosen model (for 'none', the baseline model: drift-only, or mean-rate "
+        "with drift off) is checked on its held-out predictions: time-rescaling KS test with the discrete-time correction, dispersion "
         "of counts in 1 s windows, and spike pairs within 0.05 s (bursts above 1, "
         "refractoriness below 1). If every model described its spike train, about 95% of "
         "cells would lie inside the band.</p>",
