@@ -646,6 +646,17 @@ def _phase_and_user_variables(recording, centres, t0, bin_size, max_gap_s, phase
     return extra_cov, phase_info, user_kinds
 
 
+def _note_extra_variables(summary: dict, phase_info, phase_band, user_kinds, extra_cov) -> None:
+    """Record rhythm phase and user variables in a session summary (arena and track alike)."""
+    if phase_info is not None:
+        summary["phase"] = phase_info
+        summary["settings"]["phase_band"] = [float(b) for b in phase_band]
+    if user_kinds:
+        summary["extra_variables"] = {
+            name: {"kind": kind, "range": None, "unknown_bins": int(np.sum(
+                ~np.isfinite(extra_cov[name])))} for name, kind in user_kinds.items()}
+
+
 def build_session(
     recording: Recording,
     bin_size: float = DEFAULT_BIN_SIZE,
@@ -852,13 +863,7 @@ def build_session(
             "heading_speed_threshold": float(heading_speed_threshold),
         },
     }
-    if phase_info is not None:
-        summary["phase"] = phase_info
-        summary["settings"]["phase_band"] = [float(b) for b in phase_band]
-    if user_kinds:
-        summary["extra_variables"] = {
-            name: {"kind": kind, "range": None, "unknown_bins": int(np.sum(
-                ~np.isfinite(extra_cov[name])))} for name, kind in user_kinds.items()}
+    _note_extra_variables(summary, phase_info, phase_band, user_kinds, extra_cov)
     return Session(
         bin_size=float(bin_size),
         time=_frozen(centres),

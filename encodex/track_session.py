@@ -317,13 +317,7 @@ def build_track_session(recording: Recording, bin_size: float, speed_smoothing_s
             "lap_trials": lap_trials,
         },
     }
-    if phase_info is not None:
-        summary["phase"] = phase_info
-        summary["settings"]["phase_band"] = [float(b) for b in phase_band]
-    if user_kinds:
-        summary["extra_variables"] = {
-            name: {"kind": kind, "range": None, "unknown_bins": int(np.sum(
-                ~np.isfinite(extra_cov[name])))} for name, kind in user_kinds.items()}
+    S._note_extra_variables(summary, phase_info, phase_band, user_kinds, extra_cov)
     return S.Session(
         bin_size=float(bin_size), time=S._frozen(centres), covariates=covariates,
         counts=counts, unit_ids=recording.unit_ids, valid=S._frozen(valid),
