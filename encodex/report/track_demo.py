@@ -37,7 +37,7 @@ def track_demo(out, scenario: str = "gain_corridor", n_cells: int = 12,
     from encodex.report.demo import recovery_summary
     from encodex.report.html import build_report
     from encodex.report.load import load_run
-    from encodex.report.methods import methods_markdown
+    from encodex.report.methods import methods_markdown, methods_paragraph
     from encodex.report.tables import display_frame, make_tables, to_markdown, write_tables
     from encodex.simulate_track import TRACK_SCENARIOS, simulate_track_to_files
 
@@ -47,6 +47,13 @@ def track_demo(out, scenario: str = "gain_corridor", n_cells: int = 12,
     if n_cells < 1 or jobs < 1:
         raise SettingsError(f"--cells and --jobs must be at least 1; got {n_cells}, {jobs}")
     out = Path(out)
+    # Like the arena demo, the track demo owns its folder (see encodex.report.demo).
+    from encodex.report.demo import DEMO_MARKER, own_folder
+
+    state = own_folder(out, DEMO_MARKER, {"track": scenario, "cells": int(n_cells),
+                                          "duration_s": float(duration_s), "seed": int(seed)})
+    if state.startswith("replaced"):
+        echo(f"{out} held an earlier demo ({state[len('replaced: '):]}); it was replaced")
     t0 = time.perf_counter()
 
     def step(msg):
@@ -65,6 +72,7 @@ def track_demo(out, scenario: str = "gain_corridor", n_cells: int = 12,
     tables = make_tables(run)
     write_tables(tables, fit_dir / "tables")
     (fit_dir / "tables" / "methods.md").write_text(methods_markdown(run.run))
+    (fit_dir / "tables" / "methods.txt").write_text(methods_paragraph(run.run))
     echo(to_markdown(display_frame(tables.variables, tables.level)))
     truth = pd.read_csv(files["truth"], dtype={"unit": str, "environment": str})
     for r in recovery_summary(run.cells, truth).itertuples(index=False):
