@@ -89,6 +89,14 @@ def _goodness(run, fit_dir: Path, echo) -> Path | None:
     return stem.with_name(stem.name + ".png")
 
 
+def claim_demo_folder(out: Path, params: dict, echo) -> None:
+    """Own a demo's folder: refuse anyone else's files before writing anything, and start
+    over (not half-resume) when the simulation asked for differs (``params``)."""
+    state = own_folder(out, DEMO_MARKER, params)
+    if state.startswith("replaced"):
+        echo(f"{out} held an earlier demo ({state[len('replaced: '):]}); it was replaced")
+
+
 def demo(out, n_cells: int = 12, duration_s: float = 900.0, jobs: int = 2, seed: int = 1,
          echo=print, max_cells: int = 16) -> dict[str, Path]:
     """Run the demo: simulate a session, write NWB, fit, then tables, comparison and report.
@@ -129,12 +137,8 @@ def demo(out, n_cells: int = 12, duration_s: float = 900.0, jobs: int = 2, seed:
     if jobs < 1:
         raise SettingsError(f"--jobs must be at least 1; got {jobs}")
     out = Path(out)
-    # The demo owns its folder: refuse anyone else's files before writing anything, and
-    # start over (not half-resume) when the simulation asked for differs.
-    state = own_folder(out, DEMO_MARKER, {"cells": int(n_cells), "duration_s": float(duration_s),
-                                          "seed": int(seed)})
-    if state.startswith("replaced"):
-        echo(f"{out} held an earlier demo ({state[len('replaced: '):]}); it was replaced")
+    claim_demo_folder(out, {"cells": int(n_cells), "duration_s": float(duration_s),
+                            "seed": int(seed)}, echo)
     t0 = time.perf_counter()
 
     def step(msg):

@@ -47,13 +47,10 @@ def track_demo(out, scenario: str = "gain_corridor", n_cells: int = 12,
     if n_cells < 1 or jobs < 1:
         raise SettingsError(f"--cells and --jobs must be at least 1; got {n_cells}, {jobs}")
     out = Path(out)
-    # Like the arena demo, the track demo owns its folder (see encodex.report.demo).
-    from encodex.report.demo import DEMO_MARKER, own_folder
+    from encodex.report.demo import claim_demo_folder
 
-    state = own_folder(out, DEMO_MARKER, {"track": scenario, "cells": int(n_cells),
-                                          "duration_s": float(duration_s), "seed": int(seed)})
-    if state.startswith("replaced"):
-        echo(f"{out} held an earlier demo ({state[len('replaced: '):]}); it was replaced")
+    claim_demo_folder(out, {"track": scenario, "cells": int(n_cells),
+                            "duration_s": float(duration_s), "seed": int(seed)}, echo)
     t0 = time.perf_counter()
 
     def step(msg):
