@@ -89,6 +89,20 @@ def _goodness(run, fit_dir: Path, echo) -> Path | None:
     return stem.with_name(stem.name + ".png")
 
 
+def write_demo_tables(run, fit_dir: Path, echo):
+    """A demo's tables and methods paragraph (tables/ of the fit folder); echoes the
+    per-variable table and returns the tables."""
+    from encodex.report.methods import methods_markdown, methods_paragraph
+    from encodex.report.tables import display_frame, make_tables, to_markdown, write_tables
+
+    tables = make_tables(run)
+    write_tables(tables, fit_dir / "tables")
+    (fit_dir / "tables" / "methods.md").write_text(methods_markdown(run.run))
+    (fit_dir / "tables" / "methods.txt").write_text(methods_paragraph(run.run))
+    echo(to_markdown(display_frame(tables.variables, tables.level)))
+    return tables
+
+
 def claim_demo_folder(out: Path, params: dict, echo) -> None:
     """Own a demo's folder: refuse anyone else's files before writing anything, and start
     over (not half-resume) when the simulation asked for differs (``params``)."""
@@ -128,8 +142,6 @@ def demo(out, n_cells: int = 12, duration_s: float = 900.0, jobs: int = 2, seed:
     from encodex.report.figures import comparison_figure, population_figure, save_figure
     from encodex.report.html import build_report
     from encodex.report.load import load_run
-    from encodex.report.methods import methods_markdown, methods_paragraph
-    from encodex.report.tables import make_tables, to_markdown, display_frame, write_tables
     from encodex.simulate import simulate_to_files
 
     if n_cells < 1:
@@ -154,11 +166,7 @@ def demo(out, n_cells: int = 12, duration_s: float = 900.0, jobs: int = 2, seed:
     _fit(files["nwb"], fit_dir, jobs, seed, echo)
     run = load_run(fit_dir)
     step("4/6 tables")
-    tables = make_tables(run)
-    write_tables(tables, fit_dir / "tables")
-    (fit_dir / "tables" / "methods.md").write_text(methods_markdown(run.run))
-    (fit_dir / "tables" / "methods.txt").write_text(methods_paragraph(run.run))
-    echo(to_markdown(display_frame(tables.variables, tables.level)))
+    tables = write_demo_tables(run, fit_dir, echo)
     _goodness(run, fit_dir, echo)
     truth = pd.read_csv(files["truth"], dtype={"unit": str, "environment": str})
     rec = recovery_summary(run.cells, truth)

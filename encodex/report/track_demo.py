@@ -37,8 +37,6 @@ def track_demo(out, scenario: str = "gain_corridor", n_cells: int = 12,
     from encodex.report.demo import recovery_summary
     from encodex.report.html import build_report
     from encodex.report.load import load_run
-    from encodex.report.methods import methods_markdown, methods_paragraph
-    from encodex.report.tables import display_frame, make_tables, to_markdown, write_tables
     from encodex.simulate_track import TRACK_SCENARIOS, simulate_track_to_files
 
     if scenario not in TRACK_SCENARIOS:
@@ -47,7 +45,7 @@ def track_demo(out, scenario: str = "gain_corridor", n_cells: int = 12,
     if n_cells < 1 or jobs < 1:
         raise SettingsError(f"--cells and --jobs must be at least 1; got {n_cells}, {jobs}")
     out = Path(out)
-    from encodex.report.demo import claim_demo_folder
+    from encodex.report.demo import claim_demo_folder, write_demo_tables
 
     claim_demo_folder(out, {"track": scenario, "cells": int(n_cells),
                             "duration_s": float(duration_s), "seed": int(seed)}, echo)
@@ -66,11 +64,7 @@ def track_demo(out, scenario: str = "gain_corridor", n_cells: int = 12,
     run_population(files["nwb"], out=fit_dir, jobs=jobs, seed=seed, progress=True)
     run = load_run(fit_dir)
     step("3/4 tables")
-    tables = make_tables(run)
-    write_tables(tables, fit_dir / "tables")
-    (fit_dir / "tables" / "methods.md").write_text(methods_markdown(run.run))
-    (fit_dir / "tables" / "methods.txt").write_text(methods_paragraph(run.run))
-    echo(to_markdown(display_frame(tables.variables, tables.level)))
+    tables = write_demo_tables(run, fit_dir, echo)
     truth = pd.read_csv(files["truth"], dtype={"unit": str, "environment": str})
     for r in recovery_summary(run.cells, truth).itertuples(index=False):
         echo(f"  ground truth check: {r.exact} of {r.classified} classified cells got exactly "
