@@ -5,18 +5,20 @@ Simulated cells on simulated trajectories (``encodex.simulate``: the foraging an
 by three pipelines on the same cells:
 
 - ``new``: the defaults of this version: slow-drift term in every model, sign-flip
-  max-statistic step test at alpha (``correction="signflip"``), 10 folds of 3 chunks,
+  max-statistic step test at alpha (``correction="signflip"``), 20 folds of 3 chunks,
   smoothness by LAML, one-step fold fits;
-- ``old``: the previous defaults: no drift term, one-sided Wilcoxon at alpha / m
-  (Bonferroni); same folds and fits;
+- ``new_k10``: the same with 10 folds of 3 chunks (the defaults of the first round of this
+  study);
+- ``old``: the defaults when the study began: no drift term, one-sided Wilcoxon at alpha / m
+  (Bonferroni), 10 folds of 3 chunks, same fits;
 - ``reference``: a plain pipeline: no drift term, fixed smoothing (every smoothing
   parameter ``FIXED_LAMBDA``),
   10 contiguous folds, one-sided Wilcoxon at alpha without correction; each fold's model is
   one Newton step from the all-bins fit (cheaper than a refit, same smoothing).
 
-Only the test differs between ``old`` and ``old_signflip`` / ``old_none`` (and between
-``new`` and ``new_bonferroni``): they share the fits (one ``ModelScorer`` per cell and
-design). Parts:
+Pipelines named ``<fits>_<test>`` share the fits of ``<fits>`` and differ only by the test
+(``new_bonferroni``, ``old_signflip``, ``old_none``: one ``ModelScorer`` per cell, folds and
+design; offered by ``--pipelines``). Parts:
 
 1. null kinds (untuned cells): Poisson (15 min), bursty / doubly stochastic (15 min), slow
    drift (rate x2 per 20 min) while the animal slows down (speed falling to 0.4x over 30 min),
@@ -26,7 +28,8 @@ design). Parts:
    (0.1-5 Hz, 30 min, 0.5x). Cells with fewer than 100 spikes are not labelled (as in a run)
    and count as misses.
 3. extras: tuned cells (1x) at 30 and 60 min, the new default with ``one-step`` and with
-   ``refit`` fold fits: share of cells whose label holds a variable they do not carry.
+   ``refit`` fold fits (``--refit-cells`` of them): share of cells whose label holds a
+   variable they do not carry.
 
 Usage::
 
@@ -80,7 +83,7 @@ def scenario(duration_s: float, slowdown: float | None, seed: int):
     bases = default_bases(cov, VARIABLES)
     bases[DRIFT_TERM] = drift_basis(clock)
     design = build_design({**cov, DRIFT_TERM: clock}, bases)
-    folds = chunked_folds(rows.size, 10, 3, seed)
+    folds = {k: chunked_folds(rows.size, k, 3, seed) for k in (10, 20)}
     contiguous = chunked_folds(rows.size, 10, 1, seed)
     return cov, clock, design, folds, contiguous, float(s.bin_size)
 
@@ -145,15 +148,16 @@ def run_cell(spec: dict) -> dict:
         for p in spec["pipelines"]:
             if p.startswith("new"):
                 fits = "refit" if p.endswith("refit") else "one-step"
-                key = ("drift", fits)
+                k = 10 if p == "new_k10" else 20
+                key = ("drift", fits, k)
                 if key not in scorers:
-                    scorers[key] = ModelScorer(design, y, offset, folds, fold_fits=fits,
+                    scorers[key] = ModelScorer(design, y, offset, folds[k], fold_fits=fits,
                                                nuisance=(DRIFT_TERM,))
                 rule = "bonferroni" if p == "new_bonferroni" else "signflip"
             elif p.startswith("old"):
                 key = ("plain", "one-step")
                 if key not in scorers:
-                    scorers[key] = ModelScorer(design, y, offset, folds)
+                    scorers[key] = ModelScorer(design, y, offset, folds[10])
                 rule = {"old": "bonferroni", "old_signflip": "signflip",
                         "old_none": "none"}[p]
             else:
@@ -168,12 +172,17 @@ def run_cell(spec: dict) -> dict:
     return out
 
 
-def plan(quick: bool, n_null=None, n_pow=None, n_extra=None, n_null_all=None) -> list[dict]:
+PIPELINES = ("new", "new_k10", "old", "reference")
+
+
+def plan(quick: bool, n_null=None, n_pow=None, n_extra=None, n_null_all=None,
+         pipelines=PIPELINES, n_refit=None) -> list[dict]:
     """Every cell of the study, in a fixed order (seeds from the position in the list)."""
     n_null = n_null or (40 if quick else 250)
     n_pow = n_pow or (18 if quick else 54)
     n_extra = n_extra or (18 if quick else 100)
-    main = ["new", "new_bonferroni", "old", "old_signflip", "old_none", "reference"]
+    n_refit = n_extra if n_refit is None else min(n_refit, n_extra)
+    main = list(pipelines)
     specs = []
 
     def add(part, n, duration, slowdown, truth_fn, strength, rate_fn, modulation, pipelines,
@@ -202,7 +211,7 @@ def plan(quick: bool, n_null=None, n_pow=None, n_extra=None, n_null_all=None) ->
                                  ("short 5 min", 300.0, None, "poisson")):
         add("null", n_all, dur, slow, untuned, 0.0, rate_1_4, mod, main, kind)
         add("null", n_null - n_all, dur, slow, lambda i, n=n_all: (), 0.0,
-            lambda i, n=n_all: rate_1_4(i + n), mod, ["new", "new_bonferroni"], kind)
+            lambda i, n=n_all: rate_1_4(i + n), mod, ["new"], kind)
     for g in (0.25, 0.5, 0.75, 1.0):
         add("strength", n_pow, 1800.0, None, tuned, g, rate_1_4, "poisson", main, g)
     for d in (300.0, 900.0, 3600.0):  # 30 min is the strength axis' 0.5 point
@@ -210,8 +219,11 @@ def plan(quick: bool, n_null=None, n_pow=None, n_extra=None, n_null_all=None) ->
     for r in (0.1, 0.3, 1.0, 5.0):
         add("rate", n_pow, 1800.0, None, tuned, 0.5, lambda i, r=r: r, "poisson", main, r)
     for d in (1800.0, 3600.0):
-        add("extras", n_extra, d, None, tuned, 1.0, rate_1_4, "poisson",
+        # The first n_refit cells of each length also through refit fold fits (slow).
+        add("extras", n_refit, d, None, tuned, 1.0, rate_1_4, "poisson",
             ["new", "new_refit"], d / 60)
+        add("extras", n_extra - n_refit, d, None, lambda i, n=n_refit: tuned(i + n), 1.0,
+            lambda i, n=n_refit: rate_1_4(i + n), "poisson", ["new"], d / 60)
     for i, s in enumerate(specs):
         s["seed"] = 10_000 + i
         s["truth"] = list(s["truth"])
@@ -286,8 +298,9 @@ def figure(summary: dict, path: str) -> None:
     import matplotlib.pyplot as plt
 
     fig, axes = plt.subplots(1, 4, figsize=(15, 3.6))
-    styles = {"new": ("C0", "drift + sign-flip (new default)"),
-              "old": ("C1", "Wilcoxon + Bonferroni (previous default)"),
+    styles = {"new": ("C0", "drift + sign-flip, 20 folds (new default)"),
+              "new_k10": ("C3", "drift + sign-flip, 10 folds"),
+              "old": ("C1", "Wilcoxon + Bonferroni, 10 folds (earlier default)"),
               "reference": ("C2", "fixed smoothing, uncorrected (reference)")}
     for ax, part, xlabel in zip(axes[:3], ("strength", "length", "rate"),
                                 ("tuning strength (x built-in cells)", "environment (min)",
@@ -295,6 +308,8 @@ def figure(summary: dict, path: str) -> None:
         res = summary.get(part, {})
         xs = sorted(res, key=float)
         for p, (col, name) in styles.items():
+            if not xs or any(p not in res[x] for x in xs):
+                continue
             y = [res[x][p]["rate"] for x in xs]
             lo = [res[x][p]["ci95"][0] for x in xs]
             hi = [res[x][p]["ci95"][1] for x in xs]
@@ -311,6 +326,8 @@ def figure(summary: dict, path: str) -> None:
     res = summary.get("null", {})
     kinds = list(res)
     for j, (p, (col, name)) in enumerate(styles.items()):
+        if not kinds or any(p not in res[k] for k in kinds):
+            continue
         r = [res[k][p]["rate"] for k in kinds]
         err = np.array([[res[k][p]["rate"] - res[k][p]["ci95"][0],
                          res[k][p]["ci95"][1] - res[k][p]["rate"]] for k in kinds]).T
@@ -333,6 +350,10 @@ def main(argv=None):
     p.add_argument("--power-cells", type=int, default=None, help="tuned cells per power point")
     p.add_argument("--extra-cells", type=int, default=None,
                    help="tuned cells per length for the extras of one-step and refit")
+    p.add_argument("--refit-cells", type=int, default=None,
+                   help="of the extras cells per length, this many also with refit fold fits")
+    p.add_argument("--pipelines", default=",".join(PIPELINES),
+                   help="comma-separated pipelines of the null and power parts")
     p.add_argument("--parts", default="null,strength,length,rate,extras",
                    help="comma-separated parts to run")
     p.add_argument("--cells-out", default=None,
@@ -360,7 +381,8 @@ def main(argv=None):
     else:
         parts = set(a.parts.split(","))
         specs = [s for s in plan(a.quick, a.null_cells, a.power_cells, a.extra_cells,
-                                 a.null_cells_all)
+                                 a.null_cells_all, tuple(a.pipelines.split(",")),
+                                 a.refit_cells)
                  if s["part"] in parts]
         # Round robin over the points of the study, so that a run cut short still covers all
         # of them (results are streamed to --cells-out).

@@ -17,6 +17,7 @@ from __future__ import annotations
 import argparse
 import sys
 
+from encodex.defaults import DEFAULT_CHUNKS_PER_FOLD, DEFAULT_FOLDS
 from encodex.errors import EncodexError, SettingsError
 from encodex.report.options import (add_jobs_option, name_equals_count, non_negative_number,
                                     positive_number, resolve_jobs, whole_number)
@@ -137,8 +138,9 @@ def add_fit_command(subparsers) -> None:
     p.add_argument("--out", required=True, metavar="DIR",
                    help="results folder (created; the RESULTS of table, compare, report)")
     add_jobs_option(p)
-    p.add_argument("--folds", type=_positive_int, default=10, metavar="K",
-                   help="cross-validation folds of contiguous chunks of time (default 10)")
+    p.add_argument("--folds", type=_positive_int, default=DEFAULT_FOLDS, metavar="K",
+                   help=f"cross-validation folds of contiguous chunks of time (default "
+                        f"{DEFAULT_FOLDS})")
     p.add_argument("--seed", type=_count, default=0, metavar="S",
                    help="seed of folds and shuffles (default 0)")
     p.add_argument("--bin-size", type=_seconds, default=None, metavar="SECONDS",
@@ -271,8 +273,9 @@ def _add_model_size_options(p) -> None:
                    help="basis functions of a variable (position: per axis), e.g. speed=8; "
                         "repeatable (defaults: " + ", ".join(
                             f"{k} {v}" for k, v in DEFAULT_SIZES.items()) + ")")
-    g.add_argument("--chunks-per-fold", type=_positive_int, default=3, metavar="N",
-                   help="contiguous chunks of time per fold (default 3)")
+    g.add_argument("--chunks-per-fold", type=_positive_int, default=DEFAULT_CHUNKS_PER_FOLD,
+                   metavar="N", help=f"contiguous chunks of time per fold (default "
+                                     f"{DEFAULT_CHUNKS_PER_FOLD})")
 
 
 def _run_fit(args) -> int:

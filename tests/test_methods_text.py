@@ -108,7 +108,14 @@ def _check(run, level=0.95):
     assert f"alpha = {st['alpha']:g}" in s["alpha"]
     assert ("Bonferroni" in s["alpha"]) == (st["correction"] == "bonferroni")
     assert ("without correction" in s["alpha"]) == (st["correction"] == "none")
-    assert f"2^-{k} = {2.0 ** -k:.3g}" in s["alpha"]
+    # Smallest p: 2^-k for the Wilcoxon rules and for sign flips enumerated (k <= 16);
+    # 1/65536 when 65,535 random sign vectors and the observed one are used.
+    sampled = st["correction"] == "signflip" and k > 16
+    low = 1 / 65536 if sampled else 2.0 ** -k
+    assert run["methods"]["smallest_p"] == low
+    assert f"smallest attainable p-value is {low:.3g}." in s["alpha"]
+    assert ("65,535 random sign vectors" in s["alpha"]) == sampled
+    assert ("Phipson & Smyth 2010" in s["alpha"]) == sampled
     assert f"fewer than {st['min_spikes']} spikes" in s["min_spikes"]
     assert ("shuffles" in s) == bool(st["shuffles"])
     assert ("ratemap_bin_m" in s) == ("position" in analysed)

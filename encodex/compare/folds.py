@@ -6,7 +6,7 @@ near-copies of each test bin in the training set and inflate held-out scores. Th
 cuts the usable bins of one environment, in time order, into ``k * chunks_per_fold`` contiguous
 chunks of (nearly) equal size and deals them to the k folds by a seeded permutation, so that
 each fold gathers ``chunks_per_fold`` separate stretches of the session (default 3; a 30 min
-session with 10 folds gives 60 s chunks, far longer than the autocorrelation of behaviour) and
+session with 20 folds gives 30 s chunks, far longer than the autocorrelation of behaviour) and
 slow drifts of behaviour over the session (coverage of the arena, fatigue) are spread over all
 folds instead of landing in one.
 
@@ -22,6 +22,7 @@ from dataclasses import dataclass
 import numpy as np
 from sklearn.model_selection import PredefinedSplit
 
+from encodex.defaults import DEFAULT_CHUNKS_PER_FOLD, DEFAULT_FOLDS
 from encodex.errors import SettingsError
 
 
@@ -65,8 +66,8 @@ class Folds:
 
 def chunked_folds(
     n_rows: int,
-    k: int = 10,
-    chunks_per_fold: int = 3,
+    k: int = DEFAULT_FOLDS,
+    chunks_per_fold: int = DEFAULT_CHUNKS_PER_FOLD,
     rng: np.random.Generator | int | None = 0,
 ) -> Folds:
     """Assign rows in time order to ``k`` folds made of contiguous chunks.
@@ -93,7 +94,7 @@ def chunked_folds(
         If ``k < 2``, ``chunks_per_fold < 1`` or there are fewer rows than chunks.
     """
     if k < 2:
-        raise SettingsError(f"folds must be at least 2 (got {k}); use --folds 10 (default)")
+        raise SettingsError(f"folds must be at least 2 (got {k}); use --folds 20 (default)")
     if chunks_per_fold < 1:
         raise SettingsError(f"chunks per fold must be at least 1 (got {chunks_per_fold})")
     n_chunks = k * chunks_per_fold

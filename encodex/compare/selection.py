@@ -103,6 +103,26 @@ def sign_vectors(k: int) -> np.ndarray:
     return np.vstack([np.ones((1, k)), 1.0 - 2.0 * draws])
 
 
+def n_sign_vectors(k: int) -> int:
+    """Number of sign vectors the sign-flip test uses with ``k`` folds (the observed included).
+
+    ``2**k`` (all of them, an exact test) up to :data:`EXACT_MAX_FOLDS` folds; above, the
+    observed vector and :data:`SIGNFLIP_SAMPLES` random ones (a randomisation test that is
+    still exact in level because the observed vector is counted: Phipson & Smyth 2010,
+    Stat. Appl. Genet. Mol. Biol. 9:39). ``1 / n_sign_vectors(k)`` is the smallest p-value.
+    """
+    return 2**k if k <= EXACT_MAX_FOLDS else SIGNFLIP_SAMPLES + 1
+
+
+def smallest_p(correction: str, k: int) -> float:
+    """Smallest p-value the step test of ``correction`` can give with ``k`` folds.
+
+    The sign-flip test: ``1 / n_sign_vectors(k)``; the one-sided Wilcoxon signed-rank test
+    (exact distribution): ``2**-k``, reached when every fold improves.
+    """
+    return 1.0 / n_sign_vectors(k) if correction == "signflip" else 2.0**-k
+
+
 def _studentised(sums: np.ndarray, sumsq: np.ndarray, k: int) -> np.ndarray:
     """t statistic of a mean from its sum and sum of squares over k folds (inf when sd = 0)."""
     mean = sums / k
@@ -134,7 +154,8 @@ def max_signflip_p(differences: np.ndarray) -> np.ndarray:
         with one candidate, the exact one-sided sign-flip (Fisher-Pitman) test of the mean
         (Good 2005, Permutation, Parametric and Bootstrap Tests of Hypotheses, 3rd ed., sec.
         3.5): with the sum of squares fixed under flips, t is monotone in the mean.
-        The smallest possible value is ``2**-k``.
+        The smallest possible value is ``1 / n_sign_vectors(k)`` (``2**-k`` up to
+        :data:`EXACT_MAX_FOLDS` folds).
     """
     d = np.asarray(differences, dtype=float)
     if d.ndim == 1:
@@ -169,12 +190,22 @@ def paired_p(new: np.ndarray, old: np.ndarray, correction: str = "signflip") -> 
     return improvement_p(new, old)
 
 
-def describe_test(correction: str, alpha: float) -> str:
-    """One sentence naming the step test and its level, for run.json and README.txt."""
+def describe_test(correction: str, alpha: float, k: int | None = None) -> str:
+    """One sentence naming the step test and its level, for run.json and README.txt.
+
+    With the number of folds ``k`` the sentence also says how the sign-flip null
+    distribution was obtained (enumerated, or sampled above :data:`EXACT_MAX_FOLDS` folds).
+    """
     if correction == "signflip":
+        how = ""
+        if k is not None and k <= EXACT_MAX_FOLDS:
+            how = f", all {2**k} sign vectors of the {k} folds enumerated"
+        elif k is not None:
+            how = (f", the observed and {SIGNFLIP_SAMPLES} random sign vectors of the {k} "
+                   f"folds (fixed seed)")
         return ("exact sign-flip randomisation test of the largest studentised mean "
                 "improvement among the candidates of the step, folds flipped for all "
-                "candidates together (max-statistic, Westfall & Young 1993), at "
+                f"candidates together (max-statistic, Westfall & Young 1993){how}, at "
                 f"alpha={alpha:g}")
     text = f"one-sided Wilcoxon signed-rank test at alpha={alpha:g}"
     if correction == "bonferroni":

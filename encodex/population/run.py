@@ -19,7 +19,7 @@ import pandas as pd
 
 from encodex.compare.folds import chunked_folds
 from encodex.compare.goodness import GOODNESS_COLUMNS, GOODNESS_STATEMENT
-from encodex.compare.selection import describe_test
+from encodex.compare.selection import describe_test, smallest_p
 from encodex.errors import EncodexError, InputError, SettingsError
 from encodex.fit.smoothing import CRITERION_STATEMENT
 from encodex.population.checkpoint import (
@@ -554,9 +554,10 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
                                   + ("drift-only" if rs.drift else "mean-rate")
                                   + " model; a variable is "
                                   "kept if it improves held-out bits per spike across folds by "
-                                  "an " + describe_test(rs.correction, rs.alpha)
+                                  "an " + describe_test(rs.correction, rs.alpha, rs.folds)
                                   + ("; every subset scored (exhaustive)"
                                      if rs.exhaustive else "")),
+                    "smallest_p": smallest_p(rs.correction, rs.folds),
                     "goodness_of_fit": GOODNESS_STATEMENT},
         "session": {
             "bin_size_s": float(session.bin_size),
@@ -640,9 +641,11 @@ cells.csv   one row per unit and environment:
                   candidate's mean fold difference, candidates flipped together, adjusted
                   for the step's candidates, added when p <= level = alpha; "bonferroni",
                   one-sided Wilcoxon signed-rank p against alpha / number of candidates,
-                  added when p < level; "none", Wilcoxon against alpha). With k folds the
-                  smallest attainable p is 2^-k (0.000977 for 10 folds), so a level below it
-                  can never be passed),
+                  added when p < level; "none", Wilcoxon against alpha). The smallest
+                  attainable p is run.json methods.smallest_p (Wilcoxon with k folds: 2^-k;
+                  sign-flip: 2^-k up to 16 folds, all sign vectors enumerated, and 1/65536
+                  above, from 65,535 random sign vectors and the observed one), so a level
+                  below it can never be passed),
   tied_with (other models with as many variables that the chosen one does not beat
              significantly across folds, ";"-separated labels),
   goodness of fit of the chosen model (the baseline model for "none") on its held-out

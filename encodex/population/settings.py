@@ -13,11 +13,9 @@ import math
 import numbers
 from dataclasses import asdict, dataclass, fields
 
+from encodex.defaults import DEFAULT_CHUNKS_PER_FOLD, DEFAULT_FOLDS
 from encodex.errors import SettingsError
 from encodex.variables import VARIABLES, canonical_order
-
-#: Why folds are chunked as they are: see :mod:`encodex.compare.folds`.
-DEFAULT_FOLDS = 10
 
 
 @dataclass(frozen=True)
@@ -31,7 +29,8 @@ class RunSettings:
         environment (the five built-ins, plus ``phase`` and user-defined variables when the
         session has them).
     folds : int
-        Number of cross-validation folds (default 10).
+        Number of cross-validation folds (default 20; why:
+        :data:`encodex.defaults.DEFAULT_FOLDS`).
     chunks_per_fold : int
         Contiguous chunks of time per fold (default 3; see :mod:`encodex.compare.folds`).
     seed : int
@@ -85,7 +84,7 @@ class RunSettings:
 
     variables: tuple[str, ...] | None = None
     folds: int = DEFAULT_FOLDS
-    chunks_per_fold: int = 3
+    chunks_per_fold: int = DEFAULT_CHUNKS_PER_FOLD
     seed: int = 0
     alpha: float = 0.05
     exhaustive: bool = False
@@ -116,7 +115,7 @@ class RunSettings:
             if len(set(vs)) != len(vs):
                 raise SettingsError(f"variable listed twice in {list(vs)}; list each once")
             object.__setattr__(self, "variables", canonical_order(vs))
-        _int_at_least("folds", self.folds, 2, "--folds 10")
+        _int_at_least("folds", self.folds, 2, f"--folds {DEFAULT_FOLDS}")
         _int_at_least("chunks_per_fold", self.chunks_per_fold, 1, "3")
         _int_at_least("seed", self.seed, 0, "--seed 0")
         _int_at_least("shuffles", self.shuffles, 0, "--shuffles 0 (off) or e.g. 200")

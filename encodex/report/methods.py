@@ -14,6 +14,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import PurePath
 
+from encodex.compare.selection import n_sign_vectors, smallest_p
 from encodex.report.load import setting
 from encodex.report.wording import label_caveat
 from encodex.variables import KINDS, canonical_order
@@ -68,6 +69,11 @@ REFERENCES: dict[str, str] = {
     "Westfall & Young 1993": "Westfall, P. H. & Young, S. S. (1993). Resampling-Based "
                              "Multiple Testing: Examples and Methods for p-Value Adjustment. "
                              "Wiley.",
+    # Cited from memory (title, journal, volume and article number).
+    "Phipson & Smyth 2010": "Phipson, B. & Smyth, G. K. (2010). Permutation p-values should "
+                            "never be zero: calculating exact p-values when permutations are "
+                            "randomly drawn. Statistical Applications in Genetics and "
+                            "Molecular Biology 9:39.",
     "Wilson 1927": "Wilson, E. B. (1927). Probable inference, the law of succession, and "
                    "statistical inference. J. Am. Stat. Assoc. 22:209-212.",
     "Newcombe 1998a": "Newcombe, R. G. (1998a). Two-sided confidence intervals for the single "
@@ -526,13 +532,19 @@ def _selection(m: MethodsInput):
             f"across folds was significant ")
     cites = ("Hardcastle et al. 2017",)
     if corr == "signflip":
+        exact = bool(k) and n_sign_vectors(int(k)) == 2 ** int(k)
+        how = ("enumerated by flipping" if exact or not k else
+               f"estimated from the observed and {n_sign_vectors(int(k)) - 1:,} random sign "
+               f"vectors (fixed seed; the observed one counted, Phipson & Smyth 2010), "
+               f"flipping")
         text += (f"by an exact sign-flip randomisation test at alpha = {_num(alpha)}: the "
                  f"statistic was the largest studentised mean fold-wise improvement among the "
-                 f"step's candidates, and its null distribution was enumerated by flipping the "
+                 f"step's candidates, and its null distribution was {how} the "
                  f"signs of the folds' differences for all candidates together, so that the "
                  f"p-value is adjusted for the number of candidates while keeping their "
                  f"correlation (max-statistic; Westfall & Young 1993)")
-        cites += ("Westfall & Young 1993",)
+        cites += ("Westfall & Young 1993",) + (() if exact or not k else
+                                               ("Phipson & Smyth 2010",))
     elif corr == "bonferroni":
         text += (f"by a one-sided Wilcoxon signed-rank test (Wilcoxon 1945) at level alpha / m "
                  f"with alpha = {_num(alpha)} and m the number of candidates of the step "
@@ -542,8 +554,12 @@ def _selection(m: MethodsInput):
         text += (f"by a one-sided Wilcoxon signed-rank test (Wilcoxon 1945) at level alpha = "
                  f"{_num(alpha)} without correction for the number of candidates")
         cites += ("Wilcoxon 1945",)
+    low = m.run.get("methods", {}).get("smallest_p") if isinstance(m.run.get("methods"),
+                                                                    dict) else None
+    if low is None and k:
+        low = smallest_p(corr, int(k))
     text += (". A cell whose first step failed was labelled \"none\"; with "
-             f"{k} folds the smallest attainable p-value is 2^-{k} = {2.0 ** -k:.3g}."
+             f"{k} folds the smallest attainable p-value is {low:.3g}."
              if k else ". A cell whose first step failed was labelled \"none\".")
     return Sentence(text, cites)
 
