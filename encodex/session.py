@@ -657,6 +657,168 @@ def _note_extra_variables(summary: dict, phase_info, phase_band, user_kinds, ext
                 ~np.isfinite(extra_cov[name])))} for name, kind in user_kinds.items()}
 
 
+@dataclass(frozen=True, eq=False)
+class _BinnedTracking:
+    """Tracked position on the bin grid and the bins where it is unknown."""
+
+    position: np.ndarray  # metres on the bins, NaN where unknown
+    outside: np.ndarray  # bool: bin centre outside the tracked span
+    gap: np.ndarray  # bool: bin inside a gap longer than max_gap_s
+    n_long: int  # gaps masked
+    n_short: int  # gaps bridged by interpolation
+
+    @property
+    def unknown(self) -> np.ndarray:
+        """Bins without a position (outside the tracking or in a long gap)."""
+        return self.outside | self.gap
+
+
+def _bin_grid(ts: np.ndarray, bin_size: float):
+    """Start (s), number of bins and bin centres (s) of the grid over the tracking.
+
+    Arena and track sessions alike; refuses recordings shorter than two bins.
+    """
+    t0 = float(ts[0])
+    n_bins = int(np.floor((float(ts[-1]) - t0) / bin_size + 1e-9))
+    if n_bins < 2:
+        raise InputError(
+            f"the tracking lasts {ts[-1] - t0:.4g} s, shorter than two bins of {bin_size} s; "
+            "use a smaller bin_size or a longer recording"
+        )
+    centres = t0 + (np.arange(n_bins) + 0.5) * bin_size
+    return t0, n_bins, centres
+
+
+def _binned_position(ts, pos_raw, centres, max_gap_s) -> _BinnedTracking:
+    """Tracked (x, y) linearly interpolated to the bin centres, NaN outside and in long gaps.
+
+    Gaps up to ``max_gap_s`` are bridged by the interpolation; bins in longer ones have no
+    position, since a straight line across them could be far from the true path.
+    """
+    ok = np.isfinite(pos_raw[:, 0])
+    if ok.sum() < 2:
+        raise InputError(
+            "position has fewer than 2 finite samples; check the tracking data"
+        )
+    median_dt = float(np.median(np.diff(ts)))
+    tg = ts[ok]
+    pos = np.column_stack([_interp_linear(centres, tg, pos_raw[ok, c]) for c in range(2)])
+    outside = (centres < tg[0]) | (centres > tg[-1])
+    gap_mask, n_long, n_short = _long_gap_mask(ts, ok, centres, max_gap_s, median_dt)
+    pos[outside | gap_mask] = np.nan
+    return _BinnedTracking(pos, outside, gap_mask, n_long, n_short)
+
+
+def _binned_heading(recording, centres, vel, speed, pos_unknown, max_gap_s,
+                    heading_speed_threshold):
+    """Heading on the bins (rad, [0, 2*pi)), the bins where it is undefined, and its source.
+
+    The compass when the file has one (unknown in its own long gaps); otherwise the direction
+    of the smoothed velocity, defined only where the animal moves at least
+    ``heading_speed_threshold`` m/s (below it the direction is tracking jitter).
+    """
+    if recording.heading is None:
+        heading = wrap_angle(np.arctan2(vel[:, 1], vel[:, 0]))
+        slow = ~(speed >= heading_speed_threshold)
+        heading[slow] = np.nan
+        return heading, slow & ~pos_unknown, "movement direction"
+    ts = recording.timestamps
+    h_ok = np.isfinite(recording.heading)
+    if h_ok.sum() < 2:
+        raise InputError(
+            "heading has fewer than 2 finite samples; drop it to use movement direction"
+        )
+    th = ts[h_ok]
+    heading = _interp_circular(centres, th, recording.heading[h_ok])
+    median_dt = float(np.median(np.diff(ts)))
+    h_gap, _, _ = _long_gap_mask(ts, h_ok, centres, max_gap_s, median_dt)
+    h_unknown = h_gap | (centres < th[0]) | (centres > th[-1])
+    heading[h_unknown | pos_unknown] = np.nan
+    return heading, h_unknown & ~pos_unknown, "compass"
+
+
+def _bin_environments(recording, centres):
+    """Environment index of each bin (int64, -1 outside every epoch) and the names.
+
+    A recording without epochs is one environment, :data:`WHOLE_RECORDING`.
+    """
+    if not recording.epochs:
+        return np.zeros(centres.size, dtype=np.int64), (WHOLE_RECORDING,)
+    environments = recording.environments
+    bounds = np.array([[a, b] for a, b, _ in recording.epochs])
+    ep = _assign_intervals(centres, bounds)
+    names = np.array([environments.index(n) for _, _, n in recording.epochs])
+    return np.where(ep >= 0, names[np.clip(ep, 0, None)], -1).astype(np.int64), environments
+
+
+def _trial_and_speed_masks(trial, has_trials, after_gap, pos_unknown, environment, speed,
+                           min_speed) -> dict:
+    """Masks after the tracking ones, shared by arena and track sessions (summary order)."""
+    n_bins = trial.size
+    return {
+        "outside_trials": (trial < 0) if has_trials else np.zeros(n_bins, dtype=bool),
+        "distance_after_gap": after_gap & (trial >= 0) & ~pos_unknown,
+        "outside_epochs": environment < 0,
+        "below_min_speed": (
+            (speed < min_speed) if min_speed is not None else np.zeros(n_bins, dtype=bool)
+        ),
+    }
+
+
+def _valid_bins(n_bins: int, masks: Mapping, needed) -> np.ndarray:
+    """Usable bins: no mask applies and every needed covariate is known."""
+    valid = np.ones(n_bins, dtype=bool)
+    for m in masks.values():
+        valid &= ~m
+    for v in needed:
+        valid &= np.isfinite(v)
+    return valid
+
+
+def _grid_summary(recording, valid, environment, environments, masks,
+                  tracking: _BinnedTracking, spikes) -> dict:
+    """Summary entries shared by arena and track sessions: bins, masks, gaps, spikes.
+
+    ``spikes`` is ``(counts, drop_before, drop_after)`` from :func:`_bin_spikes`.
+    """
+    counts, drop_before, drop_after = spikes
+    per_unit_total = np.asarray(counts.sum(axis=0)).ravel()
+    return {
+        "n_bins": int(valid.size),
+        "n_valid_bins": int(valid.sum()),
+        "valid_bins_by_environment": {
+            name: int(np.sum(valid & (environment == k))) for k, name in enumerate(environments)
+        },
+        "masked_bins": {**{r: int(m.sum()) for r, m in masks.items()},
+                        "total": int((~valid).sum())},
+        "tracking_gaps": {"interpolated": tracking.n_short, "masked": tracking.n_long},
+        "dropped_spikes": {
+            "before_start": int(drop_before.sum()),
+            "after_end": int(drop_after.sum()),
+            "total": int(drop_before.sum() + drop_after.sum()),
+        },
+        "dropped_spikes_by_unit": {
+            u: int(a + b)
+            for u, a, b in zip(recording.unit_ids, drop_before, drop_after)
+            if a + b > 0
+        },
+        "units_without_spikes_in_grid": [
+            u for u, c in zip(recording.unit_ids, per_unit_total) if c == 0
+        ],
+    }
+
+
+def _grid_settings(bin_size, speed_smoothing_s, max_gap_s, min_speed, **more) -> dict:
+    """Settings recorded in a session summary: the grid's, then ``more`` (arena or track)."""
+    return {
+        "bin_size": float(bin_size),
+        "speed_smoothing_s": float(speed_smoothing_s),
+        "max_gap_s": float(max_gap_s),
+        "min_speed": None if min_speed is None else float(min_speed),
+        **more,
+    }
+
+
 def build_session(
     recording: Recording,
     bin_size: float = DEFAULT_BIN_SIZE,
@@ -719,104 +881,36 @@ def build_session(
             recording, bin_size=bin_size, speed_smoothing_s=speed_smoothing_s,
             max_gap_s=max_gap_s, min_speed=min_speed, phase_band=phase_band,
             phase_order=phase_order, **track_options)
-    ts = recording.timestamps
-    t0 = float(ts[0])
-    n_bins = int(np.floor((float(ts[-1]) - t0) / bin_size + 1e-9))
-    if n_bins < 2:
-        raise InputError(
-            f"the tracking lasts {ts[-1] - t0:.4g} s, shorter than two bins of {bin_size} s; "
-            "use a smaller bin_size or a longer recording"
-        )
-    centres = t0 + (np.arange(n_bins) + 0.5) * bin_size
-    pos_raw = recording.position
-    ok = np.isfinite(pos_raw[:, 0])
-    if ok.sum() < 2:
-        raise InputError(
-            "position has fewer than 2 finite samples; check the tracking data"
-        )
-    median_dt = float(np.median(np.diff(ts)))
-
-    # --- position, with gaps
-    tg = ts[ok]
-    pos = np.column_stack([_interp_linear(centres, tg, pos_raw[ok, c]) for c in range(2)])
-    outside = (centres < tg[0]) | (centres > tg[-1])
-    gap_mask, n_long, n_short = _long_gap_mask(ts, ok, centres, max_gap_s, median_dt)
-    pos_unknown = outside | gap_mask
-    pos[pos_unknown] = np.nan
-
-    # --- speed
+    t0, n_bins, centres = _bin_grid(recording.timestamps, bin_size)
+    tracking = _binned_position(recording.timestamps, recording.position, centres, max_gap_s)
+    pos, pos_unknown = tracking.position, tracking.unknown
     vel = _smoothed_velocity(pos, bin_size, speed_smoothing_s)
     speed = np.hypot(vel[:, 0], vel[:, 1])
-
-    # --- heading
-    heading_undefined = np.zeros(n_bins, dtype=bool)
-    if recording.heading is not None:
-        h_ok = np.isfinite(recording.heading)
-        if h_ok.sum() < 2:
-            raise InputError(
-                "heading has fewer than 2 finite samples; drop it to use movement direction"
-            )
-        th = ts[h_ok]
-        heading = _interp_circular(centres, th, recording.heading[h_ok])
-        h_gap, _, _ = _long_gap_mask(ts, h_ok, centres, max_gap_s, median_dt)
-        h_unknown = h_gap | (centres < th[0]) | (centres > th[-1])
-        heading[h_unknown | pos_unknown] = np.nan
-        heading_undefined = h_unknown & ~pos_unknown
-        heading_source = "compass"
-    else:
-        heading = wrap_angle(np.arctan2(vel[:, 1], vel[:, 0]))
-        slow = ~(speed >= heading_speed_threshold)
-        heading[slow] = np.nan
-        heading_undefined = slow & ~pos_unknown
-        heading_source = "movement direction"
+    heading, heading_undefined, heading_source = _binned_heading(
+        recording, centres, vel, speed, pos_unknown, max_gap_s, heading_speed_threshold)
     # speed unknown (isolated single bins) also makes movement heading unknown
     speed_unknown = ~np.isfinite(speed) & ~pos_unknown
 
-    # --- trials and environments
     trials = recording.trials
     has_trials = trials.shape[0] > 0
     trial = _assign_intervals(centres, trials)
     elapsed, dist, after_gap = _trial_clock(centres, trial, trials, speed, bin_size)
-    if recording.epochs:
-        environments = recording.environments
-        bounds = np.array([[a, b] for a, b, _ in recording.epochs])
-        ep = _assign_intervals(centres, bounds)
-        names = np.array([environments.index(n) for _, _, n in recording.epochs])
-        environment = np.where(ep >= 0, names[np.clip(ep, 0, None)], -1)
-    else:
-        environments = (WHOLE_RECORDING,)
-        environment = np.zeros(n_bins, dtype=np.int64)
+    environment, environments = _bin_environments(recording, centres)
 
-    # --- masks
     masks = {
-        "outside_tracking": outside,
-        "tracking_gap": gap_mask | speed_unknown,
+        "outside_tracking": tracking.outside,
+        "tracking_gap": tracking.gap | speed_unknown,
         "heading_undefined": heading_undefined,
-        "outside_trials": (trial < 0) if has_trials else np.zeros(n_bins, dtype=bool),
-        "distance_after_gap": after_gap & (trial >= 0) & ~pos_unknown,
-        "outside_epochs": environment < 0,
-        "below_min_speed": (
-            (speed < min_speed) if min_speed is not None else np.zeros(n_bins, dtype=bool)
-        ),
+        **_trial_and_speed_masks(trial, has_trials, after_gap, pos_unknown, environment, speed,
+                                 min_speed),
     }
-    valid = np.ones(n_bins, dtype=bool)
-    for m in masks.values():
-        valid &= ~m
-    needed = [pos[:, 0], pos[:, 1], heading, speed]
-    if has_trials:
-        needed += [dist, elapsed]
-    for v in needed:
-        valid &= np.isfinite(v)
-
-    # --- rhythm phase and user variables: each masks the bins where it is unknown
+    # rhythm phase and user variables: each masks the bins where it is unknown
     extra_cov, phase_info, user_kinds = _phase_and_user_variables(
         recording, centres, t0, bin_size, max_gap_s, phase_band, phase_order, masks)
-    for m in ("phase_unknown", "extra_unknown"):
-        if m in masks:
-            valid &= ~masks[m]
+    needed = [pos[:, 0], pos[:, 1], heading, speed] + ([dist, elapsed] if has_trials else [])
+    valid = _valid_bins(n_bins, masks, needed)
 
-    counts, drop_before, drop_after = _bin_spikes(recording, t0, bin_size, n_bins)
-
+    spikes = _bin_spikes(recording, t0, bin_size, n_bins)
     covariates = {
         "position": _frozen(pos),
         "heading": _frozen(heading),
@@ -825,57 +919,23 @@ def build_session(
         "time": _frozen(elapsed),
         **{k: _frozen(v) for k, v in extra_cov.items()},
     }
-    environment = environment.astype(np.int64)
-    unavailable = _unavailability(covariates, valid, environment, environments, has_trials)
-    per_unit_total = np.asarray(counts.sum(axis=0)).ravel()
-    dropped_by_unit = {
-        u: int(a + b)
-        for u, a, b in zip(recording.unit_ids, drop_before, drop_after)
-        if a + b > 0
-    }
     summary = {
-        "n_bins": n_bins,
-        "n_valid_bins": int(valid.sum()),
-        "valid_bins_by_environment": {
-            name: int(np.sum(valid & (environment == k))) for k, name in enumerate(environments)
-        },
-        "masked_bins": {**{r: int(m.sum()) for r, m in masks.items()},
-                        "total": int((~valid).sum())},
-        "tracking_gaps": {"interpolated": n_short, "masked": n_long},
-        "dropped_spikes": {
-            "before_start": int(drop_before.sum()),
-            "after_end": int(drop_after.sum()),
-            "total": int(drop_before.sum() + drop_after.sum()),
-        },
-        "dropped_spikes_by_unit": dropped_by_unit,
-        "units_without_spikes_in_grid": [
-            u for u, c in zip(recording.unit_ids, per_unit_total) if c == 0
-        ],
+        **_grid_summary(recording, valid, environment, environments, masks, tracking, spikes),
         "heading_source": heading_source,
         "n_trials": int(trials.shape[0]),
         "objects": dict(recording.provenance),
-        "unavailable": unavailable,
-        "settings": {
-            "bin_size": float(bin_size),
-            "speed_smoothing_s": float(speed_smoothing_s),
-            "max_gap_s": float(max_gap_s),
-            "min_speed": None if min_speed is None else float(min_speed),
-            "heading_speed_threshold": float(heading_speed_threshold),
-        },
+        "unavailable": _unavailability(covariates, valid, environment, environments,
+                                       has_trials),
+        "settings": _grid_settings(
+            bin_size, speed_smoothing_s, max_gap_s, min_speed,
+            heading_speed_threshold=float(heading_speed_threshold)),
     }
     _note_extra_variables(summary, phase_info, phase_band, user_kinds, extra_cov)
     return Session(
-        bin_size=float(bin_size),
-        time=_frozen(centres),
-        covariates=covariates,
-        counts=counts,
-        unit_ids=recording.unit_ids,
-        valid=_frozen(valid),
-        trial=_frozen(trial),
-        environment=_frozen(environment),
-        environments=tuple(environments),
-        summary=summary,
-        variable_kinds=user_kinds,
+        bin_size=float(bin_size), time=_frozen(centres), covariates=covariates,
+        counts=spikes[0], unit_ids=recording.unit_ids, valid=_frozen(valid),
+        trial=_frozen(trial), environment=_frozen(environment),
+        environments=tuple(environments), summary=summary, variable_kinds=user_kinds,
     )
 
 

@@ -268,6 +268,188 @@ def _thin(rng, t_rows, rate):
     return np.unique(np.round(keep * SPIKE_SAMPLING_HZ) / SPIKE_SAMPLING_HZ)
 
 
+def _check_simulation_settings(n_cells, duration_s, environments, tracking_rate_hz,
+                               n_phase_cells, lfp_rate_hz, theta_hz, slowdown,
+                               steady_speed_m_s) -> int:
+    """Refuse impossible settings; return the tracking subsampling step (internal samples).
+
+    Checked before any random draw, so that a refused call consumes nothing.
+    """
+    if n_cells < 1:
+        raise SettingsError(f"n_cells must be at least 1, got {n_cells}")
+    if duration_s < 10:
+        raise SettingsError(f"duration_s must be at least 10 s per environment, got {duration_s}")
+    if not environments or len(set(environments)) != len(environments):
+        raise SettingsError("environments must be a non-empty tuple of distinct names")
+    step = int(round(1.0 / (tracking_rate_hz * _DT)))
+    if step < 1 or abs(step * tracking_rate_hz * _DT - 1.0) > 1e-9:
+        raise SettingsError(
+            f"tracking_rate_hz {tracking_rate_hz} must divide 100 Hz evenly; use 25, 50 or 100"
+        )
+    if n_phase_cells and lfp_rate_hz is None:
+        raise SettingsError("n_phase_cells needs an LFP: give lfp_rate_hz (e.g. 250)")
+    if n_phase_cells < 0:
+        raise SettingsError(f"n_phase_cells must be >= 0, got {n_phase_cells}")
+    if lfp_rate_hz is not None and not (np.isfinite(lfp_rate_hz) and lfp_rate_hz >= 4 * theta_hz
+                                        and theta_hz > 0):
+        raise SettingsError(
+            f"lfp_rate_hz {lfp_rate_hz} must be at least 4 times theta_hz {theta_hz}; use 250"
+        )
+    if slowdown is not None and not (0 < slowdown <= 1.0):
+        raise SettingsError(f"slowdown must lie in (0, 1] (got {slowdown}); e.g. 0.5")
+    if steady_speed_m_s is not None and not (0 < steady_speed_m_s < 2.0):
+        raise SettingsError(f"steady_speed_m_s must lie in (0, 2) m/s, got {steady_speed_m_s}")
+    return step
+
+
+def _later_environment(rng, first, variables, p, p_silent, p_change, box):
+    """Tuning of a cell in an environment after the first: (variables, params, silent).
+
+    Draws, in this order, whether the cell falls silent or changes type (and its new type),
+    then the remapped place field; seeded simulations depend on that order.
+    """
+    silent = False
+    u = rng.random()
+    if u < p_silent:
+        silent = True
+    elif u < p_silent + p_change:
+        others = [v for v, _ in CELL_TYPES if v != first]
+        variables = others[rng.integers(len(others))]
+    else:
+        variables = first
+    # place fields remap between environments; other tunings keep their shape
+    p = dict(p, field_x=rng.uniform(0.15, 0.85) * box, field_y=rng.uniform(0.15, 0.85) * box)
+    return variables, p, silent
+
+
+def _truth_record(uid, name, variables, first, silent, p, mean_rate, spikes) -> dict:
+    """Ground-truth row of one cell in one environment: its label and the parameters used.
+
+    Parameters of variables the cell does not carry there are NaN, so that a column is only
+    ever read for cells it describes.
+    """
+    rec = {
+        "unit": uid,
+        "environment": name,
+        "variables": label(() if silent else variables),
+        "silent": silent,
+        "changed": bool(silent or set(variables) != set(first)),
+        "mean_rate_hz": mean_rate,
+        "n_spikes": int(spikes.size),
+    }
+    for key, val in p.items():
+        rec[key] = np.nan
+    used = set(() if silent else variables)
+    if "position" in used:
+        rec.update(field_x=p["field_x"], field_y=p["field_y"],
+                   field_sigma_m=p["field_sigma_m"], field_gain=p["field_gain"])
+    if "heading" in used:
+        rec.update(pref_heading_rad=p["pref_heading_rad"], heading_kappa=p["heading_kappa"])
+    if "speed" in used:
+        rec.update(speed_slope=p["speed_slope"])
+    if "distance" in used:
+        rec.update(distance_peak_m=p["distance_peak_m"],
+                   distance_width_m=p["distance_width_m"], distance_gain=p["distance_gain"])
+    if "time" in used:
+        rec.update(time_peak_s=p["time_peak_s"], time_width_s=p["time_width_s"],
+                   time_gain=p["time_gain"])
+    return rec
+
+
+def _simulate_cells(rng, beh, unit_ids, types, environments, box, mean_rate_hz, p_change,
+                    p_silent):
+    """Spike trains (per cell, per environment) and ground-truth rows of the tuned cells.
+
+    Cell by cell, then environment by environment: parameters, mean rate, then for each
+    later environment the change of tuning, then the spikes. Seeded simulations depend on
+    this order of draws.
+    """
+    rows_by_env = [np.flatnonzero(beh.env == k) for k in range(len(environments))]
+    trains = [[] for _ in unit_ids]
+    records = []
+    for i, uid in enumerate(unit_ids):
+        p = _draw_params(rng, box)
+        rate_target = rng.uniform(*mean_rate_hz)
+        variables = types[i]
+        first = variables
+        for k, name in enumerate(environments):
+            silent = False
+            if k > 0:
+                variables, p, silent = _later_environment(rng, first, variables, p, p_silent,
+                                                          p_change, box)
+            rows = rows_by_env[k]
+            if silent:
+                spikes = np.zeros(0)
+                mean_rate = 0.0
+            else:
+                g = np.exp(_log_modulation(variables, p, beh, rows))
+                rate = rate_target * g / g.mean()
+                spikes = _thin(rng, beh.t[rows], rate)
+                mean_rate = rate_target
+            trains[i].append(spikes)
+            records.append(_truth_record(uid, name, variables, first, silent, p, mean_rate,
+                                         spikes))
+    return trains, records
+
+
+def _tracking(rng, beh, step, tracking_noise_m, box, dropouts):
+    """Tracked samples: subsampled behaviour with jitter, lost in breaks and dropouts.
+
+    Returns timestamps (s), position (n, 2) m and compass heading (rad), NaN where lost.
+    """
+    idx = np.arange(0, beh.t.size, step)
+    ts = beh.t[idx]
+    pos = beh.pos[idx] + tracking_noise_m * rng.standard_normal((idx.size, 2))
+    pos = np.clip(pos, 0.0, box)
+    heading = beh.heading[idx].copy()
+    lost = beh.env[idx] < 0
+    if dropouts:
+        for a, b, _ in beh.epochs:
+            n_short = rng.poisson((b - a) / 60.0)
+            starts = rng.uniform(a + 1, b - 1, n_short)
+            lens = rng.uniform(0.05, 0.3, n_short)
+            long_start = rng.uniform(a + 0.2 * (b - a), a + 0.8 * (b - a))
+            starts = np.append(starts, long_start)
+            lens = np.append(lens, rng.uniform(1.5, 3.0))
+            for s, d in zip(starts, lens):
+                lost |= (ts >= s) & (ts < s + d)
+    pos[lost] = np.nan
+    heading[lost] = np.nan
+    return ts, pos, heading
+
+
+def _lfp_and_phase_cells(seed, beh, lfp_rate_hz, theta_hz, n_phase_cells, n_cells,
+                         mean_rate_hz, records):
+    """LFP signal and the theta-phase-locked cells, from their own random stream.
+
+    Adds the phase columns to the existing ``records`` and appends the phase cells' rows;
+    returns the LFP, the phase cells' ids and their spike trains.
+    """
+    # Own stream: adding an LFP leaves every other draw of the simulation unchanged.
+    lrng = np.random.default_rng([seed, 8])
+    t_lfp, v_lfp, theta_phase = _simulate_lfp(lrng, float(beh.t[-1]), lfp_rate_hz, theta_hz)
+    lfp = Signal(t_lfp, v_lfp, "interval", "simulated LFP", "volts")
+    for rec in records:
+        rec.update(pref_phase_rad=np.nan, phase_kappa=np.nan)
+    unit_ids, spike_trains = (), []
+    for j in range(n_phase_cells):
+        uid = f"c{n_cells + j:03d}"
+        pref = lrng.uniform(0, 2 * np.pi)
+        kappa = lrng.uniform(0.8, 1.5)
+        r = lrng.uniform(*mean_rate_hz)
+        st = _phase_locked_spikes(lrng, beh.epochs, t_lfp, theta_phase, r, pref, kappa)
+        unit_ids = unit_ids + (uid,)
+        spike_trains.append(st)
+        for a, b, name in beh.epochs:
+            rec = {"unit": uid, "environment": name, "variables": "phase",
+                   "silent": False, "changed": False, "mean_rate_hz": r,
+                   "n_spikes": int(np.count_nonzero((st >= a) & (st < b)))}
+            rec.update({k: np.nan for k in records[0] if k not in rec})
+            rec.update(pref_phase_rad=pref, phase_kappa=kappa)
+            records.append(rec)
+    return lfp, unit_ids, spike_trains
+
+
 def simulate_recording(
     seed: int = 0,
     n_cells: int = 60,
@@ -352,141 +534,28 @@ def simulate_recording(
         first environment), ``mean_rate_hz`` (of the generating rate), ``n_spikes`` and the
         tuning parameters (NaN where unused).
     """
-    if n_cells < 1:
-        raise SettingsError(f"n_cells must be at least 1, got {n_cells}")
-    if duration_s < 10:
-        raise SettingsError(f"duration_s must be at least 10 s per environment, got {duration_s}")
-    if not environments or len(set(environments)) != len(environments):
-        raise SettingsError("environments must be a non-empty tuple of distinct names")
-    step = int(round(1.0 / (tracking_rate_hz * _DT)))
-    if step < 1 or abs(step * tracking_rate_hz * _DT - 1.0) > 1e-9:
-        raise SettingsError(
-            f"tracking_rate_hz {tracking_rate_hz} must divide 100 Hz evenly; use 25, 50 or 100"
-        )
-    if n_phase_cells and lfp_rate_hz is None:
-        raise SettingsError("n_phase_cells needs an LFP: give lfp_rate_hz (e.g. 250)")
-    if n_phase_cells < 0:
-        raise SettingsError(f"n_phase_cells must be >= 0, got {n_phase_cells}")
-    if lfp_rate_hz is not None and not (np.isfinite(lfp_rate_hz) and lfp_rate_hz >= 4 * theta_hz
-                                        and theta_hz > 0):
-        raise SettingsError(
-            f"lfp_rate_hz {lfp_rate_hz} must be at least 4 times theta_hz {theta_hz}; use 250"
-        )
-    if slowdown is not None and not (0 < slowdown <= 1.0):
-        raise SettingsError(f"slowdown must lie in (0, 1] (got {slowdown}); e.g. 0.5")
-    if steady_speed_m_s is not None and not (0 < steady_speed_m_s < 2.0):
-        raise SettingsError(f"steady_speed_m_s must lie in (0, 2) m/s, got {steady_speed_m_s}")
+    step = _check_simulation_settings(n_cells, duration_s, environments, tracking_rate_hz,
+                                      n_phase_cells, lfp_rate_hz, theta_hz, slowdown,
+                                      steady_speed_m_s)
+    # One stream, drawn in a fixed order (behaviour, cell types, cells, tracking): equal seeds
+    # give identical output, and seeded studies depend on that order.
     rng = np.random.default_rng(seed)
     beh = _simulate_behaviour(
         rng, duration_s, tuple(environments), box_size_m, break_s, trial_duration_s,
         steady_speed=steady_speed_m_s, slowdown=slowdown,
     )
     types = _assign_types(rng, n_cells)
-    pool = [v for v, _ in CELL_TYPES]
     unit_ids = tuple(f"c{i:03d}" for i in range(n_cells))
-    rows_by_env = [np.flatnonzero(beh.env == k) for k in range(len(environments))]
-    trains = [[] for _ in range(n_cells)]
-    records = []
-    for i, uid in enumerate(unit_ids):
-        p = _draw_params(rng, box_size_m)
-        rate_target = rng.uniform(*mean_rate_hz)
-        variables = types[i]
-        first = variables
-        for k, name in enumerate(environments):
-            silent = False
-            if k > 0:
-                u = rng.random()
-                if u < p_silent:
-                    silent = True
-                elif u < p_silent + p_change:
-                    others = [v for v in pool if v != first]
-                    variables = others[rng.integers(len(others))]
-                else:
-                    variables = first
-                # place fields remap between environments; other tunings keep their shape
-                p = dict(p, field_x=rng.uniform(0.15, 0.85) * box_size_m,
-                         field_y=rng.uniform(0.15, 0.85) * box_size_m)
-            rows = rows_by_env[k]
-            if silent:
-                spikes = np.zeros(0)
-                mean_rate = 0.0
-            else:
-                g = np.exp(_log_modulation(variables, p, beh, rows))
-                rate = rate_target * g / g.mean()
-                spikes = _thin(rng, beh.t[rows], rate)
-                mean_rate = rate_target
-            trains[i].append(spikes)
-            rec = {
-                "unit": uid,
-                "environment": name,
-                "variables": label(() if silent else variables),
-                "silent": silent,
-                "changed": bool(silent or set(variables) != set(first)),
-                "mean_rate_hz": mean_rate,
-                "n_spikes": int(spikes.size),
-            }
-            for key, val in p.items():
-                rec[key] = np.nan
-            used = set(() if silent else variables)
-            if "position" in used:
-                rec.update(field_x=p["field_x"], field_y=p["field_y"],
-                           field_sigma_m=p["field_sigma_m"], field_gain=p["field_gain"])
-            if "heading" in used:
-                rec.update(pref_heading_rad=p["pref_heading_rad"], heading_kappa=p["heading_kappa"])
-            if "speed" in used:
-                rec.update(speed_slope=p["speed_slope"])
-            if "distance" in used:
-                rec.update(distance_peak_m=p["distance_peak_m"],
-                           distance_width_m=p["distance_width_m"], distance_gain=p["distance_gain"])
-            if "time" in used:
-                rec.update(time_peak_s=p["time_peak_s"], time_width_s=p["time_width_s"],
-                           time_gain=p["time_gain"])
-            records.append(rec)
-
-    # Tracking: subsample, add jitter, lose samples in breaks and dropouts.
-    idx = np.arange(0, beh.t.size, step)
-    ts = beh.t[idx]
-    pos = beh.pos[idx] + tracking_noise_m * rng.standard_normal((idx.size, 2))
-    pos = np.clip(pos, 0.0, box_size_m)
-    heading = beh.heading[idx].copy()
-    lost = beh.env[idx] < 0
-    if dropouts:
-        for a, b, _ in beh.epochs:
-            n_short = rng.poisson((b - a) / 60.0)
-            starts = rng.uniform(a + 1, b - 1, n_short)
-            lens = rng.uniform(0.05, 0.3, n_short)
-            long_start = rng.uniform(a + 0.2 * (b - a), a + 0.8 * (b - a))
-            starts = np.append(starts, long_start)
-            lens = np.append(lens, rng.uniform(1.5, 3.0))
-            for s, d in zip(starts, lens):
-                lost |= (ts >= s) & (ts < s + d)
-    pos[lost] = np.nan
-    heading[lost] = np.nan
+    trains, records = _simulate_cells(rng, beh, unit_ids, types, environments, box_size_m,
+                                      mean_rate_hz, p_change, p_silent)
+    ts, pos, heading = _tracking(rng, beh, step, tracking_noise_m, box_size_m, dropouts)
     lfp = None
     spike_trains = [np.concatenate(tr) for tr in trains]
     if lfp_rate_hz is not None:
-        # Own stream: adding an LFP leaves every other draw of the simulation unchanged.
-        lrng = np.random.default_rng([seed, 8])
-        t_lfp, v_lfp, theta_phase = _simulate_lfp(lrng, float(beh.t[-1]), lfp_rate_hz,
-                                                  theta_hz)
-        lfp = Signal(t_lfp, v_lfp, "interval", "simulated LFP", "volts")
-        for rec in records:
-            rec.update(pref_phase_rad=np.nan, phase_kappa=np.nan)
-        for j in range(n_phase_cells):
-            uid = f"c{n_cells + j:03d}"
-            pref = lrng.uniform(0, 2 * np.pi)
-            kappa = lrng.uniform(0.8, 1.5)
-            r = lrng.uniform(*mean_rate_hz)
-            st = _phase_locked_spikes(lrng, beh.epochs, t_lfp, theta_phase, r, pref, kappa)
-            unit_ids = unit_ids + (uid,)
-            spike_trains.append(st)
-            for a, b, name in beh.epochs:
-                rec = {"unit": uid, "environment": name, "variables": "phase",
-                       "silent": False, "changed": False, "mean_rate_hz": r,
-                       "n_spikes": int(np.count_nonzero((st >= a) & (st < b)))}
-                rec.update({k: np.nan for k in records[0] if k not in rec})
-                rec.update(pref_phase_rad=pref, phase_kappa=kappa)
-                records.append(rec)
+        lfp, phase_ids, phase_trains = _lfp_and_phase_cells(
+            seed, beh, lfp_rate_hz, theta_hz, n_phase_cells, n_cells, mean_rate_hz, records)
+        unit_ids = unit_ids + phase_ids
+        spike_trains += phase_trains
     recording = Recording(
         timestamps=ts,
         position=pos,

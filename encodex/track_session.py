@@ -165,6 +165,84 @@ def find_laps(t, x, track: TrackLayout, jump_times=()) -> np.ndarray:
     return np.array(laps, dtype=float).reshape(-1, 2)
 
 
+def _track_recording(recording: Recording, track: TrackLayout | None,
+                     max_off_track_m: float | None) -> Recording:
+    """The recording along its track: projected onto ``track`` first when one is given."""
+    if track is not None:
+        recording = on_track(recording, track, max_off_track_m)
+    if recording.track is None:
+        raise SettingsError("track options were given for a recording without a track; pass "
+                            "track=TrackLayout(...)")
+    return recording
+
+
+def _track_position(ts, x, centres, tg, xg, seg, max_gap_s):
+    """Unwrapped track position on the bins (NaN outside and in long gaps), and jump bins.
+
+    Position is interpolated within the stretches between jumps only; a bin whose stretch
+    differs from the previous bin's is where a jump happened.
+    """
+    from encodex import session as S
+
+    ok = np.isfinite(x)
+    median_dt = float(np.median(np.diff(ts)))
+    pos_u, bin_seg = _on_bins(centres, tg, xg, seg)
+    outside = (centres < tg[0]) | (centres > tg[-1])
+    gap_mask, n_long, n_short = S._long_gap_mask(ts, ok, centres, max_gap_s, median_dt)
+    pos_u[outside | gap_mask] = np.nan
+    at_jump = np.concatenate([[False], np.diff(bin_seg) != 0])
+    return S._BinnedTracking(pos_u, outside, gap_mask, n_long, n_short), at_jump
+
+
+def _track_velocity(pos_u, at_jump, bin_size, speed_smoothing_s):
+    """Smoothed velocity along the track, m/s, computed within the stretches between jumps.
+
+    The first bin of a stretch breaks the run, so a jump never becomes speed or distance.
+    """
+    from encodex import session as S
+
+    broken = pos_u.copy()
+    broken[at_jump] = np.nan
+    return S._smoothed_velocity(np.column_stack([broken, np.where(np.isfinite(broken), 0.0,
+                                                                  np.nan)]),
+                                bin_size, speed_smoothing_s)[:, 0]
+
+
+def _track_speed(recording, centres, vel, pos_unknown, bin_size, speed_smoothing_s,
+                 max_gap_s):
+    """Speed on the bins (m/s), the bins where the distance run is unknown, and its source.
+
+    From the distance physically run when the recording has one (a virtual corridor's
+    position need not follow the running), otherwise from the track velocity.
+    """
+    from encodex import session as S
+
+    run_unknown = np.zeros(centres.size, dtype=bool)
+    if recording.run_distance is None:
+        return np.abs(vel), run_unknown, "track position"
+    rd = recording.run_distance
+    dist_bins = S._resample(centres, rd.times, rd.values, "interval", max_gap_s)
+    run_unknown = ~np.isfinite(dist_bins) & ~pos_unknown
+    pv = S._smoothed_velocity(np.column_stack([dist_bins, np.where(
+        np.isfinite(dist_bins), 0.0, np.nan)]), bin_size, speed_smoothing_s)[:, 0]
+    return np.abs(pv), run_unknown, f"distance run ({rd.source or 'run_distance'})"
+
+
+def _track_note(layout, jump_times, use_laps, trials, speed_source) -> dict:
+    """``summary["track"]`` of a track session: layout, jumps, where trials and speed came from."""
+    return {**layout.to_dict(), "n_jumps": int(jump_times.size),
+            "trials_from": "laps" if use_laps else "file",
+            "n_laps": int(trials.shape[0]) if use_laps else None, "speed_source": speed_source}
+
+
+def _track_trials(recording, lap_trials, tg, xg, layout, jump_times):
+    """Trials of a track session, (n, 2) s: the file's, or laps; and whether they are laps."""
+    file_trials = recording.trials
+    use_laps = (file_trials.shape[0] == 0) if lap_trials is None else bool(lap_trials)
+    trials = find_laps(tg, xg, layout, jump_times) if use_laps else file_trials
+    return trials, use_laps
+
+
 def build_track_session(recording: Recording, bin_size: float, speed_smoothing_s: float,
                         max_gap_s: float, min_speed: float | None, phase_band, phase_order,
                         direction_speed: float = DEFAULT_DIRECTION_SPEED,
@@ -201,142 +279,69 @@ def build_track_session(recording: Recording, bin_size: float, speed_smoothing_s
     from encodex import session as S
 
     _check_track_settings(direction_speed, jump_speed)
-    if track is not None:
-        recording = on_track(recording, track, max_off_track_m)
+    recording = _track_recording(recording, track, max_off_track_m)
     layout = recording.track
-    if layout is None:
-        raise SettingsError("track options were given for a recording without a track; pass "
-                            "track=TrackLayout(...)")
     ts = recording.timestamps
-    t0 = float(ts[0])
-    n_bins = int(np.floor((float(ts[-1]) - t0) / bin_size + 1e-9))
-    if n_bins < 2:
-        raise InputError(f"the tracking lasts {ts[-1] - t0:.4g} s, shorter than two bins of "
-                         f"{bin_size} s; use a smaller bin_size or a longer recording")
-    centres = t0 + (np.arange(n_bins) + 0.5) * bin_size
+    t0, n_bins, centres = S._bin_grid(ts, bin_size)
     x = recording.position[:, 0]
-    ok = np.isfinite(x)
-    if ok.sum() < 2:
+    if np.isfinite(x).sum() < 2:
         raise InputError("track position has fewer than 2 finite samples; check the tracking")
-    median_dt = float(np.median(np.diff(ts)))
     tg, xg, seg, jump_times = _continuous(ts, x, layout, jump_speed)
-
-    pos_u, bin_seg = _on_bins(centres, tg, xg, seg)
-    outside = (centres < tg[0]) | (centres > tg[-1])
-    gap_mask, n_long, n_short = S._long_gap_mask(ts, ok, centres, max_gap_s, median_dt)
-    pos_unknown = outside | gap_mask
-    pos_u[pos_unknown] = np.nan
-    # Velocity within stretches between jumps: the first bin of a stretch breaks the run.
-    broken = pos_u.copy()
-    at_jump = np.concatenate([[False], np.diff(bin_seg) != 0])
-    broken[at_jump] = np.nan
-    vel = S._smoothed_velocity(np.column_stack([broken, np.where(np.isfinite(broken), 0.0,
-                                                                 np.nan)]),
-                               bin_size, speed_smoothing_s)[:, 0]
+    tracking, at_jump = _track_position(ts, x, centres, tg, xg, seg, max_gap_s)
+    pos_u, pos_unknown = tracking.position, tracking.unknown
+    vel = _track_velocity(pos_u, at_jump, bin_size, speed_smoothing_s)
     direction = np.where(np.abs(vel) >= direction_speed, np.sign(vel), 0.0)
     direction[~np.isfinite(vel)] = np.nan
+    speed, run_unknown, speed_source = _track_speed(recording, centres, vel, pos_unknown,
+                                                    bin_size, speed_smoothing_s, max_gap_s)
 
-    run_unknown = np.zeros(n_bins, dtype=bool)
-    if recording.run_distance is not None:
-        rd = recording.run_distance
-        dist_bins = S._resample(centres, rd.times, rd.values, "interval", max_gap_s)
-        run_unknown = ~np.isfinite(dist_bins) & ~pos_unknown
-        pv = S._smoothed_velocity(np.column_stack([dist_bins, np.where(
-            np.isfinite(dist_bins), 0.0, np.nan)]), bin_size, speed_smoothing_s)[:, 0]
-        speed = np.abs(pv)
-        speed_source = f"distance run ({rd.source or 'run_distance'})"
-    else:
-        speed = np.abs(vel)
-        speed_source = "track position"
-
-    # --- trials: the file's, or laps
-    file_trials = recording.trials
-    use_laps = (file_trials.shape[0] == 0) if lap_trials is None else bool(lap_trials)
-    trials = find_laps(tg, xg, layout, jump_times) if use_laps else file_trials
+    trials, use_laps = _track_trials(recording, lap_trials, tg, xg, layout, jump_times)
     has_trials = trials.shape[0] > 0
     trial = S._assign_intervals(centres, trials)
     elapsed, dist, after_gap = S._trial_clock(centres, trial, trials, speed, bin_size)
-    environment, environments = _environments(recording, centres)
+    environment, environments = S._bin_environments(recording, centres)
 
     position = np.mod(pos_u, layout.length_m) if layout.circular else pos_u
     speed_unknown = ~np.isfinite(speed) & ~pos_unknown & ~run_unknown
     masks = {
-        "outside_tracking": outside,
-        "tracking_gap": gap_mask | (speed_unknown & ~at_jump),
+        "outside_tracking": tracking.outside,
+        "tracking_gap": tracking.gap | (speed_unknown & ~at_jump),
         "track_jump": at_jump & ~pos_unknown,
         "run_distance_unknown": run_unknown,
-        "outside_trials": (trial < 0) if has_trials else np.zeros(n_bins, dtype=bool),
-        "distance_after_gap": after_gap & (trial >= 0) & ~pos_unknown,
-        "outside_epochs": environment < 0,
-        "below_min_speed": ((speed < min_speed) if min_speed is not None
-                            else np.zeros(n_bins, dtype=bool)),
+        **S._trial_and_speed_masks(trial, has_trials, after_gap, pos_unknown, environment,
+                                   speed, min_speed),
     }
     extra_cov, phase_info, user_kinds = S._phase_and_user_variables(
         recording, centres, t0, bin_size, max_gap_s, phase_band, phase_order, masks)
-    valid = np.ones(n_bins, dtype=bool)
-    for m in masks.values():
-        valid &= ~m
     needed = [position, direction, speed] + ([dist, elapsed] if has_trials else [])
-    for v in needed:
-        valid &= np.isfinite(v)
+    valid = S._valid_bins(n_bins, masks, needed)
 
-    counts, drop_before, drop_after = S._bin_spikes(recording, t0, bin_size, n_bins)
+    spikes = S._bin_spikes(recording, t0, bin_size, n_bins)
     covariates = {"position": position, "direction": direction, "speed": speed,
                   "distance": dist, "time": elapsed, **extra_cov}
     covariates = {k: S._frozen(np.asarray(v, dtype=float)) for k, v in covariates.items()}
-    pos_kind = periodic_kind(layout.length_m) if layout.circular else "interval"
-    unavailable = _unavailability(covariates, valid, environment, environments, has_trials)
     summary = {
-        "n_bins": n_bins,
-        "n_valid_bins": int(valid.sum()),
-        "valid_bins_by_environment": {
-            name: int(np.sum(valid & (environment == k))) for k, name in enumerate(environments)},
-        "masked_bins": {**{r: int(m.sum()) for r, m in masks.items()},
-                        "total": int((~valid).sum())},
-        "tracking_gaps": {"interpolated": n_short, "masked": n_long},
-        "dropped_spikes": {"before_start": int(drop_before.sum()),
-                           "after_end": int(drop_after.sum()),
-                           "total": int(drop_before.sum() + drop_after.sum())},
-        "dropped_spikes_by_unit": {u: int(a + b) for u, a, b in
-                                   zip(recording.unit_ids, drop_before, drop_after) if a + b},
-        "units_without_spikes_in_grid": [
-            u for u, c in zip(recording.unit_ids, np.asarray(counts.sum(axis=0)).ravel())
-            if c == 0],
+        **S._grid_summary(recording, valid, environment, environments, masks, tracking, spikes),
         "heading_source": "none (track: running direction instead)",
         "n_trials": int(trials.shape[0]),
         "objects": dict(recording.provenance),
-        "unavailable": unavailable,
-        "track": {**layout.to_dict(), "n_jumps": int(jump_times.size),
-                  "trials_from": "laps" if use_laps else "file", "n_laps": int(
-                      trials.shape[0]) if use_laps else None, "speed_source": speed_source},
-        "settings": {
-            "bin_size": float(bin_size), "speed_smoothing_s": float(speed_smoothing_s),
-            "max_gap_s": float(max_gap_s),
-            "min_speed": None if min_speed is None else float(min_speed),
-            "direction_speed": float(direction_speed), "jump_speed": float(jump_speed),
-            "lap_trials": lap_trials,
-        },
+        "unavailable": _unavailability(covariates, valid, environment, environments,
+                                       has_trials),
+        "track": _track_note(layout, jump_times, use_laps, trials, speed_source),
+        "settings": S._grid_settings(
+            bin_size, speed_smoothing_s, max_gap_s, min_speed,
+            direction_speed=float(direction_speed), jump_speed=float(jump_speed),
+            lap_trials=lap_trials),
     }
     S._note_extra_variables(summary, phase_info, phase_band, user_kinds, extra_cov)
     return S.Session(
         bin_size=float(bin_size), time=S._frozen(centres), covariates=covariates,
-        counts=counts, unit_ids=recording.unit_ids, valid=S._frozen(valid),
+        counts=spikes[0], unit_ids=recording.unit_ids, valid=S._frozen(valid),
         trial=S._frozen(trial), environment=S._frozen(environment.astype(np.int64)),
         environments=tuple(environments), summary=summary,
-        variable_kinds={"position": pos_kind, **user_kinds},
+        variable_kinds={"position": periodic_kind(layout.length_m) if layout.circular
+                        else "interval", **user_kinds},
     )
-
-
-def _environments(recording, centres):
-    from encodex import session as S
-
-    if not recording.epochs:
-        return np.zeros(centres.size, dtype=np.int64), (S.WHOLE_RECORDING,)
-    environments = recording.environments
-    bounds = np.array([[a, b] for a, b, _ in recording.epochs])
-    ep = S._assign_intervals(centres, bounds)
-    names = np.array([environments.index(n) for _, _, n in recording.epochs])
-    return np.where(ep >= 0, names[np.clip(ep, 0, None)], -1).astype(np.int64), environments
 
 
 def _unavailability(cov, valid, environment, environments, has_trials):

@@ -11,7 +11,7 @@ import platform
 import time
 import warnings
 from collections.abc import Iterator, Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -20,7 +20,7 @@ import pandas as pd
 from encodex.compare.folds import chunked_folds
 from encodex.compare.goodness import GOODNESS_COLUMNS, GOODNESS_STATEMENT
 from encodex.compare.selection import describe_test, smallest_p
-from encodex.errors import EncodexError, InputError, SettingsError
+from encodex.errors import InputError, SettingsError
 from encodex.fit.smoothing import CRITERION_STATEMENT
 from encodex.population.checkpoint import (
     atomic_write_text, check_output_folder, data_fingerprint, open_checkpoint, read_unit_record,
@@ -338,6 +338,214 @@ def _execute(tasks: list, jobs: int, cluster: str | None) -> Iterator[UnitOutcom
             lc.close()
 
 
+def _run_settings(jobs, settings: dict) -> RunSettings:
+    """Checked settings of a run; accepts comma-separated variables and a basis-size mapping."""
+    if isinstance(jobs, bool) or not isinstance(jobs, (int, np.integer)) or jobs < 1:
+        raise SettingsError(f"jobs must be a positive integer (got {jobs!r}); use --jobs 1")
+    if "variables" in settings and isinstance(settings["variables"], str):
+        settings["variables"] = tuple(s.strip() for s in settings["variables"].split(",")
+                                      if s.strip())
+    if "basis_sizes" in settings and isinstance(settings["basis_sizes"], Mapping):
+        settings["basis_sizes"] = tuple(settings["basis_sizes"].items())
+    try:
+        return RunSettings(**settings)
+    except TypeError as exc:
+        raise SettingsError(f"unknown setting: {exc}; see help(encodex.run_population)") from None
+
+
+def _selected_units(session, units) -> list[str]:
+    """Unit ids to fit, in session order: all, or those asked for (unknown ids refused)."""
+    unit_ids = list(session.unit_ids)
+    if units is not None:
+        wanted = [str(u) for u in units]
+        unknown = [u for u in wanted if u not in unit_ids]
+        if unknown:
+            raise SettingsError(f"unknown unit id(s) {unknown[:5]}; see session.unit_ids")
+        unit_ids = [u for u in unit_ids if u in set(wanted)]
+    return unit_ids
+
+
+def _check_variables(session, rs: RunSettings) -> None:
+    """Refuse requested variables that the session does not have."""
+    if rs.variables is not None:
+        known = set(VARIABLES) | set(session.covariates)
+        unknown = [v for v in rs.variables if v not in known]
+        if unknown:
+            raise SettingsError(
+                f"unknown variable(s) {unknown}; this session has "
+                f"{', '.join(canonical_order(known & set(session.covariates)))}"
+            )
+
+
+def _check_first_step_reachable(rs: RunSettings, envs: Mapping[str, EnvironmentWork]) -> None:
+    """Refuse fold and alpha settings under which no variable could ever be added."""
+    # With k folds the one-sided signed-rank p-value is at least 2**-k: refuse settings under
+    # which no variable could ever be added (every cell would be "none" whatever its spikes).
+    m = max((len(e.variables) for e in envs.values()), default=0)
+    if m:
+        level = rs.alpha / m if rs.correction == "bonferroni" else rs.alpha
+        reachable = (2.0 ** -rs.folds <= level if rs.correction == "signflip"
+                     else 2.0 ** -rs.folds < level)
+        if not reachable:
+            need = int(np.floor(-np.log2(level))) + 1
+            raise SettingsError(
+                f"with {rs.folds} folds the smallest possible p-value is 2^-{rs.folds} = "
+                f"{2.0 ** -rs.folds:.3g}, which cannot pass the first step's level {level:.3g} "
+                f"(alpha {rs.alpha} over {m} variables); use --folds {need} or more"
+            )
+
+
+def _work_list(session, envs: Mapping[str, EnvironmentWork], unit_ids, rs: RunSettings,
+               out_path: Path | None) -> tuple[dict, list]:
+    """Records of cells already finished (on disk) and tasks of the others.
+
+    Both in deterministic order (environment, then unit), so that results and resumed runs
+    do not depend on how the work is scheduled.
+    """
+    records: dict[tuple[str, str], dict] = {}
+    tasks = []
+    col_rows = {name: np.flatnonzero(np.asarray(session.valid)
+                                     & (np.asarray(session.environment) == k))
+                for k, name in enumerate(session.environments)}
+    counts = session.counts
+    for name in session.environments:
+        sub = counts[col_rows[name], :]
+        if not hasattr(sub, "tocsc"):
+            from scipy import sparse
+
+            sub = sparse.csc_array(np.asarray(sub))
+        sub = sub.tocsc()
+        for unit in unit_ids:
+            if out_path is not None:
+                rec = read_unit_record(unit_path(out_path, name, unit))
+                if rec is not None:
+                    records[(name, unit)] = rec
+                    continue
+            # Sent to the worker by its spike bins only (SpikeColumn), not bins-long.
+            y = SpikeColumn.from_csc(sub, session.unit_index(unit))
+            tasks.append((envs[name], unit, y, rs))
+    return records, tasks
+
+
+def _progress_bar(n_total: int, n_done: int):
+    """Progress bar of the cells (tqdm, on standard error), starting at those already done."""
+    from tqdm import tqdm
+
+    return tqdm(total=n_total, initial=n_done, unit="unit", desc="encodex fit",
+                dynamic_ncols=True)
+
+
+def _fit_cells(tasks: list, jobs: int, cluster: str | None, records: dict,
+             out_path: Path | None, bar, n_total: int) -> tuple[dict, list]:
+    """Fit the cells of ``tasks``, writing each one's file as soon as it is finished.
+
+    Adds every outcome's record to ``records``; returns the chosen-model fits by
+    (environment, unit) and the CPU seconds of each cell. Ctrl-C becomes
+    :class:`RunInterrupted`, whose message says how many cells are saved and how to resume.
+    """
+    fits: dict = {}
+    seconds = []
+    # Cells whose file is on disk (or, without a folder, whose result is in memory): a cell
+    # interrupted while its file was being written is not counted as saved.
+    saved = len(records)
+    try:
+        with warnings.catch_warnings():
+            # joblib warns about the tasks it cancels when Ctrl-C stops the run; the one line
+            # below already says what happened.
+            warnings.filterwarnings("ignore", message=".*still being processed by the workers",
+                                    category=UserWarning)
+            for outcome in _execute(tasks, jobs, cluster):
+                key = (outcome.environment, outcome.unit)
+                records[key] = outcome.record
+                seconds.append(outcome.seconds)
+                if outcome.fit is not None:
+                    fits[key] = outcome.fit
+                if out_path is not None:
+                    write_unit_file(unit_path(out_path, *key), outcome.arrays, outcome.record)
+                saved += 1
+                if bar is not None:
+                    bar.update(1)
+    except KeyboardInterrupt:
+        if bar is not None:
+            bar.close()
+        done = saved
+        where = (f"saved in {out_path}; run the same command again to resume"
+                 if out_path is not None else "lost (no output folder was given)")
+        raise RunInterrupted(f"interrupted: {done} of {n_total} cells finished and {where}") \
+            from None
+    if bar is not None:
+        bar.close()
+    return fits, seconds
+
+
+def _timings(t_start: float, t_compute: float, seconds: list) -> dict:
+    """Wall-clock and CPU timings of a run (``run.json`` timings)."""
+    return {
+        "started_utc": _dt.datetime.fromtimestamp(t_start, _dt.timezone.utc).isoformat(),
+        "finished_utc": _dt.datetime.now(_dt.timezone.utc).isoformat(),
+        "seconds_total": round(time.time() - t_start, 3),
+        "seconds_computing": round(time.time() - t_compute, 3),
+        "cpu_seconds_per_cell_median": float(np.median(seconds)) if seconds else None,
+        "cpu_seconds_cells": round(float(np.sum(seconds)), 3),
+    }
+
+
+def _methods(rs: RunSettings) -> dict:
+    """Methods statements of a run (``run.json`` methods), worded for its settings."""
+    return {"folds": FOLD_STATEMENT, "smoothness": SMOOTHNESS_STATEMENTS[rs.fold_fits],
+            "smoothness_criterion": CRITERION_STATEMENT,
+            "drift": DRIFT_STATEMENT if rs.drift else "no drift term",
+            "selection": ("forward selection from the "
+                          + ("drift-only" if rs.drift else "mean-rate")
+                          + " model; a variable is "
+                          "kept if it improves held-out bits per spike across folds by "
+                          "an " + describe_test(rs.correction, rs.alpha, rs.folds)
+                          + ("; every subset scored (exhaustive)"
+                             if rs.exhaustive else "")),
+            "smallest_p": smallest_p(rs.correction, rs.folds),
+            "goodness_of_fit": GOODNESS_STATEMENT}
+
+
+def _session_record(session) -> dict:
+    """What ``run.json`` keeps of the session: grid, units, environments and its summary."""
+    return {
+        "bin_size_s": float(session.bin_size),
+        "n_bins": int(session.n_bins),
+        "n_units": int(session.n_units),
+        "environments": list(session.environments),
+        "masked_bins": _plain(session.summary.get("masked_bins", {})),
+        "dropped_spikes": _plain(session.summary.get("dropped_spikes", 0)),
+        "summary": _plain(dict(session.summary)),
+    }
+
+
+def _run_record(session, rs: RunSettings, source: str, load_options, fingerprint: str,
+                execution: dict, clock: tuple, env_info: dict, cells: pd.DataFrame) -> dict:
+    """The record of a run (``run.json``): input, settings, versions, timings, methods.
+
+    ``clock`` is ``(t_start, t_compute, seconds)`` for :func:`_timings`, read once the
+    versions are known, so that the run's end time comes last.
+    """
+    return {
+        "format": "encodex-fit-output/1",
+        "statement": LABEL_STATEMENT,
+        "input": source,
+        "load_options": {k: (list(v) if isinstance(v, tuple) else v)
+                         for k, v in dict(load_options or {}).items()},
+        "data_fingerprint": fingerprint,
+        "settings": rs.to_dict(),
+        "execution": execution,
+        "versions": _versions(),
+        "timings": _timings(*clock),
+        "methods": _methods(rs),
+        "session": _session_record(session),
+        "environments": env_info,
+        "counts": {"cells": int(len(cells)),
+                   "by_status": {str(k): int(v) for k, v in
+                                 cells["status"].value_counts().sort_index().items()}},
+    }
+
+
 def run_population(input_or_session, out: str | Path | None = None, *, jobs: int = 1,
                    cluster: str | None = None, progress: bool = False,
                    units=None, load_options=None, overwrite: bool = False,
@@ -376,11 +584,11 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
         session as it will be fitted: environments, variables, objects read, masked bins)
         before fitting; e.g. ``echo=print``.
     **settings
-        Fields of :class:`RunSettings`: ``variables``, ``folds`` (10), ``seed`` (0),
-        ``alpha`` (0.05), ``correction`` ("bonferroni"), ``exhaustive`` (False),
-        ``shuffles`` (0), ``min_shift_s`` (20 s),
+        Fields of :class:`RunSettings`: ``variables``, ``folds`` (20), ``seed`` (0),
+        ``alpha`` (0.05), ``correction`` ("signflip"), ``drift`` (True),
+        ``exhaustive`` (False), ``shuffles`` (0), ``min_shift_s`` (20 s),
         ``min_spikes`` (100), ``bin_size`` (s), ``basis_sizes``, ``chunks_per_fold`` (3),
-        ``fold_fits`` ("one-step"), ``gram_precision`` ("single").
+        ``fold_fits`` ("one-step"), ``gram_precision`` ("double").
 
     Returns
     -------
@@ -399,58 +607,19 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
     Hardcastle, Maheswaranathan, Ganguli & Giocomo (2017), Neuron 94:375 (forward selection of
     variables by cross-validated log-likelihood of Poisson models).
     """
-    if isinstance(jobs, bool) or not isinstance(jobs, (int, np.integer)) or jobs < 1:
-        raise SettingsError(f"jobs must be a positive integer (got {jobs!r}); use --jobs 1")
-    if "variables" in settings and isinstance(settings["variables"], str):
-        settings["variables"] = tuple(s.strip() for s in settings["variables"].split(",")
-                                      if s.strip())
-    if "basis_sizes" in settings and isinstance(settings["basis_sizes"], Mapping):
-        settings["basis_sizes"] = tuple(settings["basis_sizes"].items())
-    try:
-        rs = RunSettings(**settings)
-    except TypeError as exc:
-        raise SettingsError(f"unknown setting: {exc}; see help(encodex.run_population)") from None
+    rs = _run_settings(jobs, settings)
     if out is not None:  # a folder no run could write into is refused before the reading
         check_output_folder(Path(out), overwrite)
     t_start = time.time()
     session, source = _load(input_or_session, rs, load_options)
     fingerprint = _session_fingerprint(session)
-
-    unit_ids = list(session.unit_ids)
-    if units is not None:
-        wanted = [str(u) for u in units]
-        unknown = [u for u in wanted if u not in unit_ids]
-        if unknown:
-            raise SettingsError(f"unknown unit id(s) {unknown[:5]}; see session.unit_ids")
-        unit_ids = [u for u in unit_ids if u in set(wanted)]
-
-    if rs.variables is not None:
-        known = set(VARIABLES) | set(session.covariates)
-        unknown = [v for v in rs.variables if v not in known]
-        if unknown:
-            raise SettingsError(
-                f"unknown variable(s) {unknown}; this session has "
-                f"{', '.join(canonical_order(known & set(session.covariates)))}"
-            )
+    unit_ids = _selected_units(session, units)
+    _check_variables(session, rs)
     envs: dict[str, EnvironmentWork] = {}
     env_info: dict[str, dict] = {}
     for name in session.environments:
         envs[name], env_info[name] = _environment_work(session, name, rs, fingerprint)
-
-    # With k folds the one-sided signed-rank p-value is at least 2**-k: refuse settings under
-    # which no variable could ever be added (every cell would be "none" whatever its spikes).
-    m = max((len(e.variables) for e in envs.values()), default=0)
-    if m:
-        level = rs.alpha / m if rs.correction == "bonferroni" else rs.alpha
-        reachable = (2.0 ** -rs.folds <= level if rs.correction == "signflip"
-                     else 2.0 ** -rs.folds < level)
-        if not reachable:
-            need = int(np.floor(-np.log2(level))) + 1
-            raise SettingsError(
-                f"with {rs.folds} folds the smallest possible p-value is 2^-{rs.folds} = "
-                f"{2.0 ** -rs.folds:.3g}, which cannot pass the first step's level {level:.3g} "
-                f"(alpha {rs.alpha} over {m} variables); use --folds {need} or more"
-            )
+    _check_first_step_reachable(rs, envs)
 
     # Everything is checked: only now is anything written to the output folder.
     out_path = Path(out) if out is not None else None
@@ -460,119 +629,21 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
         resumed = open_checkpoint(out_path, check, fingerprint, overwrite=overwrite)
 
     # Work list in deterministic order; finished units (on disk) are skipped.
-    records: dict[tuple[str, str], dict] = {}
-    tasks = []
-    col_rows = {name: np.flatnonzero(np.asarray(session.valid)
-                                     & (np.asarray(session.environment) == k))
-                for k, name in enumerate(session.environments)}
-    counts = session.counts
-    for name in session.environments:
-        sub = counts[col_rows[name], :]
-        if not hasattr(sub, "tocsc"):
-            from scipy import sparse
-
-            sub = sparse.csc_array(np.asarray(sub))
-        sub = sub.tocsc()
-        for unit in unit_ids:
-            if out_path is not None:
-                rec = read_unit_record(unit_path(out_path, name, unit))
-                if rec is not None:
-                    records[(name, unit)] = rec
-                    continue
-            # Sent to the worker by its spike bins only (SpikeColumn), not bins-long.
-            y = SpikeColumn.from_csc(sub, session.unit_index(unit))
-            tasks.append((envs[name], unit, y, rs))
-
+    records, tasks = _work_list(session, envs, unit_ids, rs, out_path)
     n_total = len(session.environments) * len(unit_ids)
+    n_done = n_total - len(tasks)
     if echo is not None:
-        echo(session_summary(session, env_info, len(tasks), n_total - len(tasks),
+        echo(session_summary(session, env_info, len(tasks), n_done,
                              jobs=int(jobs), out=out_path, source=source))
-    bar = None
-    if progress:
-        from tqdm import tqdm
-
-        bar = tqdm(total=n_total, initial=n_total - len(tasks), unit="unit", desc="encodex fit",
-                   dynamic_ncols=True)
-    fits: dict = {}
-    seconds = []
+    bar = _progress_bar(n_total, n_done) if progress else None
     t_compute = time.time()
-    # Cells whose file is on disk (or, without a folder, whose result is in memory): a cell
-    # interrupted while its file was being written is not counted as saved.
-    saved = len(records)
-    try:
-        with warnings.catch_warnings():
-            # joblib warns about the tasks it cancels when Ctrl-C stops the run; the one line
-            # below already says what happened.
-            warnings.filterwarnings("ignore", message=".*still being processed by the workers",
-                                    category=UserWarning)
-            for outcome in _execute(tasks, int(jobs), cluster):
-                key = (outcome.environment, outcome.unit)
-                records[key] = outcome.record
-                seconds.append(outcome.seconds)
-                if outcome.fit is not None:
-                    fits[key] = outcome.fit
-                if out_path is not None:
-                    write_unit_file(unit_path(out_path, *key), outcome.arrays, outcome.record)
-                saved += 1
-                if bar is not None:
-                    bar.update(1)
-    except KeyboardInterrupt:
-        if bar is not None:
-            bar.close()
-        done = saved
-        where = (f"saved in {out_path}; run the same command again to resume"
-                 if out_path is not None else "lost (no output folder was given)")
-        raise RunInterrupted(f"interrupted: {done} of {n_total} cells finished and {where}") \
-            from None
-    if bar is not None:
-        bar.close()
+    fits, seconds = _fit_cells(tasks, int(jobs), cluster, records, out_path, bar, n_total)
 
     cells, models = _tables(records, session.environments, unit_ids)
-    run = {
-        "format": "encodex-fit-output/1",
-        "statement": LABEL_STATEMENT,
-        "input": source,
-        "load_options": {k: (list(v) if isinstance(v, tuple) else v)
-                         for k, v in dict(load_options or {}).items()},
-        "data_fingerprint": fingerprint,
-        "settings": rs.to_dict(),
-        "execution": {"jobs": int(jobs), "cluster": cluster, "resumed": resumed,
-                      "units_computed": len(tasks), "units_from_checkpoint": n_total - len(tasks)},
-        "versions": _versions(),
-        "timings": {
-            "started_utc": _dt.datetime.fromtimestamp(t_start, _dt.timezone.utc).isoformat(),
-            "finished_utc": _dt.datetime.now(_dt.timezone.utc).isoformat(),
-            "seconds_total": round(time.time() - t_start, 3),
-            "seconds_computing": round(time.time() - t_compute, 3),
-            "cpu_seconds_per_cell_median": float(np.median(seconds)) if seconds else None,
-            "cpu_seconds_cells": round(float(np.sum(seconds)), 3),
-        },
-        "methods": {"folds": FOLD_STATEMENT, "smoothness": SMOOTHNESS_STATEMENTS[rs.fold_fits],
-                    "smoothness_criterion": CRITERION_STATEMENT,
-                    "drift": DRIFT_STATEMENT if rs.drift else "no drift term",
-                    "selection": ("forward selection from the "
-                                  + ("drift-only" if rs.drift else "mean-rate")
-                                  + " model; a variable is "
-                                  "kept if it improves held-out bits per spike across folds by "
-                                  "an " + describe_test(rs.correction, rs.alpha, rs.folds)
-                                  + ("; every subset scored (exhaustive)"
-                                     if rs.exhaustive else "")),
-                    "smallest_p": smallest_p(rs.correction, rs.folds),
-                    "goodness_of_fit": GOODNESS_STATEMENT},
-        "session": {
-            "bin_size_s": float(session.bin_size),
-            "n_bins": int(session.n_bins),
-            "n_units": int(session.n_units),
-            "environments": list(session.environments),
-            "masked_bins": _plain(session.summary.get("masked_bins", {})),
-            "dropped_spikes": _plain(session.summary.get("dropped_spikes", 0)),
-            "summary": _plain(dict(session.summary)),
-        },
-        "environments": env_info,
-        "counts": {"cells": int(len(cells)),
-                   "by_status": {str(k): int(v) for k, v in
-                                 cells["status"].value_counts().sort_index().items()}},
-    }
+    execution = {"jobs": int(jobs), "cluster": cluster, "resumed": resumed,
+                 "units_computed": len(tasks), "units_from_checkpoint": n_done}
+    run = _run_record(session, rs, source, load_options, fingerprint, execution,
+                      (t_start, t_compute, seconds), env_info, cells)
     if out_path is not None:
         _write_tables(out_path, cells, models, run)
     return PopulationResult(cells, models, run, _Fits(fits, envs, session, cells), out_path)
