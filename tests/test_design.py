@@ -109,6 +109,11 @@ def test_sub_designs_share_the_base_plan_and_match_dense_products(names):
                                atol=1e-12)
     np.testing.assert_allclose(sub.linear_predictors(theta), xz @ theta.T, atol=1e-12)
     np.testing.assert_allclose(sub.transpose_dot(r), xz.T @ r, atol=1e-10)
+    # Row quadratic forms x_i' Z M Z' x_i with a symmetric M (not positive: any sign).
+    m = rng.normal(size=(sub.n_theta, sub.n_theta))
+    m = m + m.T
+    np.testing.assert_allclose(sub.row_quadratic_forms(m), np.einsum("ij,jk,ik->i", xz, m, xz),
+                               rtol=1e-10, atol=1e-10)
     by_group = sub.transpose_dot_groups(r, groups, 4)
     for k in range(4):
         np.testing.assert_allclose(by_group[k], xz[groups == k].T @ r[groups == k], atol=1e-10)

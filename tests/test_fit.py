@@ -104,6 +104,22 @@ def test_warm_start_from_parent_model_reaches_the_same_optimum():
     assert warm.laml == pytest.approx(cold.laml, abs=1e-4)
 
 
+def test_warm_start_from_several_fits_reaches_the_same_optimum():
+    design, cov, rng = _design(seed=3)
+    y = rng.poisson(np.exp(0.5 * np.cos(cov["heading"]) + 2 * cov["speed"]) * 0.1)
+    heading = fit_poisson(design.subset(["heading"]), y, np.log(DT))
+    speed = fit_poisson(design.subset(["speed"]), y, np.log(DT))
+    cold = fit_poisson(design, y, np.log(DT))
+    warm = fit_poisson(design, y, np.log(DT), start=(heading, speed))
+    np.testing.assert_allclose(warm.theta, cold.theta, atol=1e-4)
+    np.testing.assert_allclose(np.log(warm.lambdas), np.log(cold.lambdas), atol=0.05)
+    assert warm.laml == pytest.approx(cold.laml, abs=1e-4)
+    # Each term's smoothing parameters start from the first fit that holds it.
+    from encodex.fit.engine import _warm_lambdas
+    start = _warm_lambdas(design, (heading, speed))
+    np.testing.assert_array_equal(start, np.concatenate([heading.lambdas, speed.lambdas]))
+
+
 def test_results_are_complete():
     design, cov, rng = _design()
     y = rng.poisson(np.exp(0.5 * np.cos(cov["heading"])) * 0.1)

@@ -48,8 +48,21 @@ def test_rates_count_false_labels_exact_sets_and_extras(study):
 def test_plan_sizes_and_seeds(study):
     specs = study.plan(True, n_null=5, n_pow=3, n_extra=2, n_null_all=2)
     nulls = [s for s in specs if s["part"] == "null"]
-    assert len(nulls) == 20 and sum(len(s["pipelines"]) == 6 for s in nulls) == 8
+    assert len(nulls) == 20
+    assert sum(s["pipelines"] == list(study.PIPELINES) for s in nulls) == 8
     assert len({s["seed"] for s in specs}) == len(specs)
     assert all(s["truth"] == [] for s in nulls)
     power = [s for s in specs if s["part"] in ("strength", "length", "rate")]
     assert len(power) == 11 * 3 and all(1 <= len(s["truth"]) <= 2 for s in power)
+
+
+def test_plan_sends_only_the_first_extras_cells_through_refit(study):
+    specs = study.plan(True, n_null=1, n_pow=1, n_extra=5, n_null_all=1, n_refit=2)
+    extras = [s for s in specs if s["part"] == "extras"]
+    assert len(extras) == 10
+    for minutes in (30.0, 60.0):
+        here = [s for s in extras if s["point"] == minutes]
+        assert [("new_refit" in s["pipelines"]) for s in here] == [True, True, False, False,
+                                                                   False]
+        # The refit-free cells continue the cycle of cell types instead of restarting it.
+        assert [s["truth"] for s in here] == [list(t) for t in study.TUNED_TYPES[:5]]

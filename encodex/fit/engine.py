@@ -100,16 +100,29 @@ def _check_counts(y, n: int) -> np.ndarray:
     return y
 
 
+def _start_fits(start) -> tuple:
+    """Earlier fits of a warm start, in order of preference (empty for none or an array)."""
+    if isinstance(start, PoissonFit):
+        return (start,)
+    if isinstance(start, (tuple, list)) and all(isinstance(f, PoissonFit) for f in start):
+        return tuple(start)
+    return ()
+
+
 def _warm_theta(design: Design, start, y, mask, offset) -> np.ndarray:
     theta = np.zeros(design.n_theta)
     theta[0] = _log_mean_rate(mask * y, mask, offset)
     if start is None:
         return theta
-    if isinstance(start, PoissonFit):
-        theta[0] = start.theta[0]
-        for t in start.terms:
-            if t.name in design.theta_slices:
-                theta[design.theta_slices[t.name]] = start.theta[t.theta_slice]
+    fits = _start_fits(start)
+    if fits:
+        theta[0] = fits[0].theta[0]
+        filled = set()
+        for fit in fits:  # each term from the first fit that holds it
+            for t in fit.terms:
+                if t.name in design.theta_slices and t.name not in filled:
+                    theta[design.theta_slices[t.name]] = fit.theta[t.theta_slice]
+                    filled.add(t.name)
         return theta
     start = np.asarray(start, dtype=float)
     if start.shape != theta.shape:
@@ -118,15 +131,17 @@ def _warm_theta(design: Design, start, y, mask, offset) -> np.ndarray:
 
 
 def _warm_lambdas(design: Design, start) -> np.ndarray | None:
-    """Smoothing parameters of matching terms from a previous fit; NaN for new ones."""
-    if not isinstance(start, PoissonFit):
+    """Smoothing parameters of matching terms from earlier fits; NaN for new ones."""
+    fits = _start_fits(start)
+    if not fits:
         return None
     known = {}
-    k = 0
-    for t in start.terms:
-        m = len(t.basis.penalties())
-        known[t.name] = start.lambdas[k:k + m]
-        k += m
+    for fit in fits:  # each term from the first fit that holds it
+        k = 0
+        for t in fit.terms:
+            m = len(t.basis.penalties())
+            known.setdefault(t.name, fit.lambdas[k:k + m])
+            k += m
     out = []
     for t in design.terms:
         out.extend(known.get(t.name, [np.nan] * len(t.penalties)))
@@ -159,8 +174,9 @@ def fit_poisson(design: Design, y, offset=0.0, lambdas=None, rows=None, start=No
         the stopping rules and the accuracy they give).
     rows : ndarray of int or bool, optional
         Bins to fit (training folds); all by default. Left-out bins are never looked at.
-    start : PoissonFit or ndarray, optional
-        Warm start: coefficients (and smoothing parameters) of matching terms are reused.
+    start : PoissonFit, sequence of PoissonFit, or ndarray, optional
+        Warm start: coefficients (and smoothing parameters) of matching terms are reused;
+        with several fits, each term (and the intercept) comes from the first that holds it.
     options : FitOptions, optional
 
     Returns
