@@ -623,6 +623,8 @@ def simulate_to_files(
 NULL_KINDS: tuple[str, ...] = ("poisson", "bursty", "drift")
 #: Rate drift of the "drift" kind: a factor of two per this many seconds (log-linear).
 DRIFT_DOUBLING_S = 1200.0
+#: Standard deviation of the wandering log rate of ``binned_counts(..., drift_tau_s=...)``.
+WANDER_SD = 0.5
 
 
 def draw_cell_params(rng: np.random.Generator, covariates) -> dict:
@@ -668,7 +670,8 @@ def draw_cell_params(rng: np.random.Generator, covariates) -> dict:
 
 def binned_counts(covariates, clock_s: np.ndarray, bin_size: float, variables,
                   rng: np.random.Generator, strength: float = 1.0, mean_rate_hz: float = 2.0,
-                  modulation: str = "poisson", params: dict | None = None) -> np.ndarray:
+                  modulation: str = "poisson", params: dict | None = None,
+                  drift_tau_s: float | None = None) -> np.ndarray:
     """Spike counts of one simulated cell on a binned trajectory.
 
     Parameters
@@ -696,6 +699,11 @@ def binned_counts(covariates, clock_s: np.ndarray, bin_size: float, variables,
         :data:`DRIFT_DOUBLING_S` s on the environment's clock ("drift").
     params : dict, optional
         Tuning parameters (default :func:`draw_cell_params`).
+    drift_tau_s : float, optional
+        With ``modulation="drift"``: instead of the steady doubling, the log rate wanders as an
+        Ornstein-Uhlenbeck process with this time constant (s) and sd
+        :data:`WANDER_SD` (the rate within 0.6-1.6x its median about two thirds of the
+        time), drawn after the tuning parameters.
 
     Returns
     -------
@@ -719,6 +727,8 @@ def binned_counts(covariates, clock_s: np.ndarray, bin_size: float, variables,
         log_rate += strength * _log_modulation(variables, p, beh, np.arange(n))
     if modulation == "bursty":
         log_rate += _ou_dt(rng, n, bin_size, 2.0, 0.7)
+    elif modulation == "drift" and drift_tau_s is not None:
+        log_rate += _ou_dt(rng, n, bin_size, float(drift_tau_s), WANDER_SD)
     elif modulation == "drift":
         sign = 1.0 if rng.random() < 0.5 else -1.0
         log_rate += sign * np.log(2.0) * (clock - clock[0]) / DRIFT_DOUBLING_S

@@ -182,3 +182,25 @@ def test_without_compass_sessions_use_movement_direction(tmp_path):
     known = np.isfinite(s.covariates["position"][:, 0])
     expect = int(np.sum(~(s.covariates["speed"] >= 0.03) & known))
     assert s.summary["masked_bins"]["heading_undefined"] == expect > 0.05 * s.n_bins
+
+
+def test_wandering_drift_moves_the_rate_over_minutes_and_is_reproducible():
+    from encodex.simulate import binned_counts
+
+    n, dt = 72_000, 0.05  # one hour
+    clock = np.arange(n) * dt
+    cov = {"speed": np.full(n, 0.2)}
+
+    def log_window_rates(**kw):
+        y = binned_counts(cov, clock, dt, (), np.random.default_rng(4), mean_rate_hz=4.0, **kw)
+        return np.log(y.reshape(-1, 6000).sum(axis=1) / 300.0)  # 5-minute windows
+
+    # Poisson noise alone moves the log of a 5-minute rate by ~0.03; the wander by ~0.5.
+    assert np.std(log_window_rates()) < 0.1
+    assert np.std(log_window_rates(modulation="drift", drift_tau_s=600.0)) > 0.2
+    # Same generator state, same counts.
+    a = binned_counts(cov, clock, dt, (), np.random.default_rng(4), mean_rate_hz=4.0,
+                      modulation="drift", drift_tau_s=600.0)
+    b = binned_counts(cov, clock, dt, (), np.random.default_rng(4), mean_rate_hz=4.0,
+                      modulation="drift", drift_tau_s=600.0)
+    np.testing.assert_array_equal(a, b)

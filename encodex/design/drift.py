@@ -33,19 +33,22 @@ DRIFT_MIN_BASIS = 4
 DRIFT_MAX_BASIS = 12
 
 
-def drift_basis_size(duration_s: float) -> int:
+def drift_basis_size(duration_s: float, spacing_s: float = DRIFT_SPACING_S) -> int:
     """Number of cubic B-splines of the drift term for an environment of ``duration_s`` s."""
-    n = int(round(float(duration_s) / DRIFT_SPACING_S)) + 3
+    n = int(round(float(duration_s) / spacing_s)) + 3
     return int(np.clip(n, DRIFT_MIN_BASIS, DRIFT_MAX_BASIS))
 
 
-def drift_basis(clock_s: np.ndarray) -> IntervalBasis:
+def drift_basis(clock_s: np.ndarray, spacing_s: float = DRIFT_SPACING_S) -> IntervalBasis:
     """P-spline basis of the drift term over the range of the environment's clock.
 
     Parameters
     ----------
     clock_s : ndarray, shape (n_rows,)
         Time of each usable bin on the environment's clock, seconds.
+    spacing_s : float
+        Seconds of environment per basis function (the default is the one measured in
+        ``benchmarks/drift_basis_size.py``; other values are for such studies).
 
     Returns
     -------
@@ -59,4 +62,4 @@ def drift_basis(clock_s: np.ndarray) -> IntervalBasis:
         raise InputError("the environment's clock does not advance; cannot model slow drift "
                          "(switch it off with --no-drift)")
     lo, hi = float(t.min()), float(t.max())
-    return IntervalBasis(drift_basis_size(hi - lo), (lo, hi))
+    return IntervalBasis(drift_basis_size(hi - lo, spacing_s), (lo, hi))
