@@ -232,6 +232,37 @@ def plan(quick: bool, n_null=None, n_pow=None, n_extra=None, n_null_all=None,
     return specs
 
 
+def paired(cells: list[dict], a: str = "new", b: str = "reference") -> str:
+    """Pipeline ``a`` against ``b`` on the same tuned cells, point by point (markdown).
+
+    For each power point: cells exact with ``a`` only, with ``b`` only, and the exact
+    two-sided McNemar p-value (binomial test on the discordant cells; McNemar 1947,
+    Psychometrika 12:153), so that "at least the reference" is read with its uncertainty.
+    """
+    from scipy.stats import binomtest
+
+    from encodex.variables import parse_label
+
+    def exact(c, p):
+        lab = c["labels"].get(p)
+        return lab is not None and set(parse_label(lab)) == set(c["truth"])
+
+    lines = [f"| axis | point | exact with {a} only | exact with {b} only | McNemar p |",
+             "|---|---|---|---|---|"]
+    groups: dict = {}
+    for c in cells:
+        if c["part"] in ("strength", "length", "rate") and a in c["labels"] \
+                and b in c["labels"]:
+            groups.setdefault((c["part"], float(c["point"])), []).append(c)
+    for (part, point), cs in sorted(groups.items()):
+        only_a = sum(exact(c, a) and not exact(c, b) for c in cs)
+        only_b = sum(exact(c, b) and not exact(c, a) for c in cs)
+        n = only_a + only_b
+        pv = binomtest(only_a, n, 0.5).pvalue if n else 1.0
+        lines.append(f"| {part} | {point:g} | {only_a} | {only_b} | {pv:.3g} |")
+    return "\n".join(lines)
+
+
 def summarise(cells: list[dict]) -> dict:
     from encodex.report.tables import wilson_interval
     from encodex.variables import parse_label
@@ -406,6 +437,8 @@ def main(argv=None):
               "jobs": a.jobs, "wall_s": round(time.time() - t0, 1), **summary}
     print(json.dumps(record))
     print(table(summary))
+    print("\nsame tuned cells, new default against the reference pipeline\n")
+    print(paired(cells))
     if a.figure:
         figure(summary, a.figure)
 

@@ -66,3 +66,12 @@ def test_plan_sends_only_the_first_extras_cells_through_refit(study):
                                                                    False]
         # The refit-free cells continue the cycle of cell types instead of restarting it.
         assert [s["truth"] for s in here] == [list(t) for t in study.TUNED_TYPES[:5]]
+
+
+def test_paired_counts_discordant_cells_with_an_exact_mcnemar_p(study):
+    cells = [_cell("strength", 0.5, ["heading"], {"new": "heading", "reference": "none"}, i)
+             for i in range(6)]
+    cells += [_cell("strength", 0.5, ["speed"], {"new": "speed", "reference": "speed"}, 9)]
+    text = study.paired(cells)
+    # 6 cells exact with new only, none with the reference only: p = 2 * 0.5^6.
+    assert "| strength | 0.5 | 6 | 0 | 0.0312 |" in text
