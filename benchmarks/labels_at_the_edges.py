@@ -5,10 +5,11 @@ Simulated cells on simulated trajectories (``encodex.simulate``: the foraging an
 by three pipelines on the same cells:
 
 - ``new``: the defaults of this version: slow-drift term in every model, sign-flip
-  max-statistic step test at alpha (``correction="signflip"``), 20 folds of 3 chunks,
-  smoothness by LAML, one-step fold fits;
-- ``new_k10``: the same with 10 folds of 3 chunks (the defaults of the first round of this
-  study);
+  max-statistic step test at alpha (``correction="signflip"``), effect-size floor of later
+  steps (``min_step_gain`` 0.02), 20 folds of 3 chunks, smoothness by LAML, one-step fold
+  fits;
+- ``new_k10``: drift term and sign-flip test with 10 folds of 3 chunks and no floor (the
+  defaults of the first round of this study);
 - ``old``: the defaults when the study began: no drift term, one-sided Wilcoxon at alpha / m
   (Bonferroni), 10 folds of 3 chunks, same fits;
 - ``reference``: a plain pipeline: no drift term, fixed smoothing (every smoothing
@@ -125,7 +126,7 @@ def run_cell(spec: dict) -> dict:
     from threadpoolctl import threadpool_limits
 
     from encodex.compare.cell import ModelScorer
-    from encodex.compare.selection import select_variables
+    from encodex.compare.selection import MIN_STEP_GAIN, select_variables
     from encodex.design import DRIFT_TERM
     from encodex.simulate import binned_counts
     from encodex.variables import VARIABLES, label
@@ -165,7 +166,10 @@ def run_cell(spec: dict) -> dict:
                 if key not in scorers:
                     scorers[key] = FixedSmoothingScorer(design, y, offset, contiguous)
                 rule = "none"
-            sel = select_variables(VARIABLES, scorers[key], alpha=ALPHA, correction=rule)
+            # The effect-size floor is part of the new defaults only (new, new_refit).
+            floor = MIN_STEP_GAIN if p in ("new", "new_refit") else 0.0
+            sel = select_variables(VARIABLES, scorers[key], alpha=ALPHA, correction=rule,
+                                   min_step_gain=floor)
             labels[p] = label(sel.chosen)
     out["labels"] = labels
     out["cpu_s"] = time.process_time() - t0

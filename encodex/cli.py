@@ -17,7 +17,7 @@ from __future__ import annotations
 import argparse
 import sys
 
-from encodex.defaults import DEFAULT_CHUNKS_PER_FOLD, DEFAULT_FOLDS
+from encodex.defaults import DEFAULT_CHUNKS_PER_FOLD, DEFAULT_FOLDS, MIN_STEP_GAIN
 from encodex.errors import EncodexError, SettingsError
 from encodex.report.options import (add_jobs_option, name_equals_count, non_negative_number,
                                     positive_number, resolve_jobs, whole_number)
@@ -176,6 +176,10 @@ def add_fit_command(subparsers) -> None:
                    help="leave out the slow-drift term (a smooth of time on the environment's "
                         "clock in every model, on by default); the baseline is then the "
                         "mean-rate model")
+    p.add_argument("--min-step-gain", type=float, default=MIN_STEP_GAIN, metavar="F",
+                   help="a variable added after the first must raise the held-out information "
+                        f"by at least this fraction of the current model's (default "
+                        f"{MIN_STEP_GAIN:g}; 0: off)")
     p.add_argument("--min-spikes", type=_positive_int, default=100, metavar="N",
                    help="cells with fewer spikes in an environment are not labelled "
                         "(default 100)")
@@ -286,6 +290,7 @@ def _run_fit(args) -> int:
                     shuffles=args.shuffles, min_shift_s=args.min_shift, alpha=args.alpha,
                     correction=args.correction, fold_fits=args.fold_fits,
                     min_spikes=args.min_spikes, gram_precision=args.gram_precision,
+                    min_step_gain=args.min_step_gain,
                     drift=args.drift)
     if args.bin_size is not None:
         settings["bin_size"] = args.bin_size

@@ -13,3 +13,7 @@ DEFAULT_FOLDS = 20
 
 #: Default number of contiguous chunks of time per fold (see :mod:`encodex.compare.folds`).
 DEFAULT_CHUNKS_PER_FOLD = 3
+
+#: Smallest improvement a later forward step must add, as a fraction of the current model's
+#: held-out information (the effect-size floor of :mod:`encodex.compare.selection`).
+MIN_STEP_GAIN = 0.02

@@ -189,3 +189,25 @@ def test_signflip_equal_differences_reach_the_floor_not_zero():
     p = max_signflip_p(np.c_[np.full(k, 0.01), np.linspace(-1.0, 1.0, k)])
     assert p[0] == pytest.approx(2.0 ** -k)
     assert 0.5 < p[1] <= 1.0
+
+
+def test_effect_size_floor_refuses_a_significant_but_tiny_later_step():
+    z = np.zeros(10)
+    # speed improves on position in every fold (p = 2^-10) but by 0.3% of position's score.
+    tiny = _up(0.30 + z) + 0.0009 + np.linspace(0, 1e-4, 10)
+    table = {(): z, ("position",): _up(0.30 + z), ("speed",): _up(0.01 + z),
+             ("position", "speed"): tiny}
+    score, _ = _scorer(table)
+    sel = select_variables(["position", "speed"], score, alpha=0.05)
+    assert sel.chosen == ("position",)
+    last = sel.steps[-1]
+    assert last.p_value == pytest.approx(2.0**-10) and not last.accepted
+    mean_pos = float(np.mean(table[("position",)]))
+    assert last.min_gain == pytest.approx(0.02 * mean_pos)
+    assert last.mean_improvement < last.min_gain
+    # The first step has no floor; with the floor off the tiny step is taken.
+    assert sel.steps[0].min_gain == 0.0
+    assert select_variables(["position", "speed"], score, alpha=0.05,
+                            min_step_gain=0.0).chosen == ("position", "speed")
+    with pytest.raises(SettingsError):
+        select_variables(["position"], score, min_step_gain=1.0)

@@ -44,7 +44,7 @@ def runs(tmp_path_factory):
                     load_options={"lfp": LFP, "phase_band": (6.0, 10.0)}),
         "user": _fit(user, variables=("speed", "goal_distance")),
         "no_correction": _fit(one["nwb"], variables=("speed", "heading"), correction="none",
-                              alpha=0.01),
+                              alpha=0.01, min_step_gain=0.0),
     }
 
 
@@ -108,6 +108,9 @@ def _check(run, level=0.95):
     assert f"alpha = {st['alpha']:g}" in s["alpha"]
     assert ("Bonferroni" in s["alpha"]) == (st["correction"] == "bonferroni")
     assert ("without correction" in s["alpha"]) == (st["correction"] == "none")
+    floor = st.get("min_step_gain", 0.0)
+    assert (f"at least {100 * floor:g}% of the current model's" in s["alpha"]) == (floor > 0)
+    assert ("of the current model's" in s["alpha"]) == (floor > 0)
     # Smallest p: 2^-k for the Wilcoxon rules and for sign flips enumerated (k <= 16);
     # 1/65536 when 65,535 random sign vectors and the observed one are used.
     sampled = st["correction"] == "signflip" and k > 16

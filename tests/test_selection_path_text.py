@@ -37,3 +37,15 @@ def test_figure_reads_the_path_back():
     # no path at all: the label's variables as accepted steps
     assert [s["variable"] for s in parse_selection_path(float("nan"), "heading+speed")] == \
         ["heading", "speed"]
+
+
+def test_a_step_refused_by_the_effect_size_floor_says_so_and_reads_back():
+    step = SimpleNamespace(base=("position",), best=("position", "heading"), p_value=0.009,
+                           accepted=False, candidates=(("c",),) * 4, level=0.05,
+                           mean_improvement=0.00075, min_gain=0.0078)
+    text = selection_path([_step((), ("position",), 5, 0.001, True), step], 0.05, "signflip")
+    assert text == ("+position(p=0.001<=0.05) > "
+                    "xheading(p=0.009<=0.05)[gain 0.00075<0.0078]")
+    steps = parse_selection_path(text, "position")
+    assert [s["small_gain"] for s in steps] == [False, True]
+    assert steps[1]["p"] == pytest.approx(0.009) and not steps[1]["accepted"]

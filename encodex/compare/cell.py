@@ -33,7 +33,7 @@ import numpy as np
 
 from encodex.compare.folds import Folds
 from encodex.compare.scores import HeldOutScore, heldout_score, mean_rate_counts, pool_scores
-from encodex.compare.selection import Model, Selection, select_variables
+from encodex.compare.selection import MIN_STEP_GAIN, Model, Selection, select_variables
 from encodex.errors import SettingsError
 from encodex.threads import single_threaded
 from encodex.variables import label
@@ -312,6 +312,7 @@ def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
                  shuffles: int = 0, min_shift_bins: int = 0,
                  rng: np.random.Generator | None = None, fit_options=None,
                  refit: bool = True, correction: str = "signflip",
+                 min_step_gain: float = MIN_STEP_GAIN,
                  fold_fits: str = "one-step", nuisance: tuple[str, ...] = (),
                  goodness: bool = True,
                  goodness_rng: np.random.Generator | None = None) -> CellAnalysis:
@@ -336,6 +337,9 @@ def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
     correction : {"signflip", "bonferroni", "none"}
         Step test of forward selection (see
         :func:`encodex.compare.selection.select_variables`).
+    min_step_gain : float
+        Effect-size floor of later steps, a fraction of the current model's held-out
+        information (:data:`encodex.compare.selection.MIN_STEP_GAIN`; 0: off).
     shuffles : int
         Circular shifts of the spike train for the empirical null of the held-out gain of
         the chosen model (of the best single-variable model for "none"); 0 disables.
@@ -368,7 +372,7 @@ def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
     score = ModelScorer(design, y, offset, folds, fit_options, fold_fits, nuisance)
     cvs, full_fits = score.cvs, score.full_fits
     selection = select_variables(variables, score, alpha=alpha, exhaustive=exhaustive,
-                                 correction=correction)
+                                 correction=correction, min_step_gain=min_step_gain)
     notes = []
     n_bad = sum(cv.n_not_converged for cv in cvs.values())
     if n_bad:

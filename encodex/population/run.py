@@ -500,6 +500,9 @@ def _methods(rs: RunSettings) -> dict:
                           + " model; a variable is "
                           "kept if it improves held-out bits per spike across folds by "
                           "an " + describe_test(rs.correction, rs.alpha, rs.folds)
+                          + (f"; after the first step the added variable must also raise the "
+                             f"mean held-out score by at least {rs.min_step_gain:g} of the "
+                             f"current model's" if rs.min_step_gain else "")
                           + ("; every subset scored (exhaustive)"
                              if rs.exhaustive else "")),
             "smallest_p": smallest_p(rs.correction, rs.folds),
@@ -716,7 +719,10 @@ cells.csv   one row per unit and environment:
                   attainable p is run.json methods.smallest_p (Wilcoxon with k folds: 2^-k;
                   sign-flip: 2^-k up to 16 folds, all sign vectors enumerated, and 1/65536
                   above, from 65,535 random sign vectors and the observed one), so a level
-                  below it can never be passed),
+                  below it can never be passed). A step whose test passed but whose mean
+                  gain fell short of the effect-size floor (settings.min_step_gain times the
+                  current model's mean score) reads "xheading(p=0.009<=0.05)[gain
+                  0.00075<0.0078]", gain and floor in bits per spike),
   tied_with (other models with as many variables that the chosen one does not beat
              significantly across folds, ";"-separated labels),
   goodness of fit of the chosen model (the baseline model for "none") on its held-out

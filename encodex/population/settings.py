@@ -13,7 +13,7 @@ import math
 import numbers
 from dataclasses import asdict, dataclass, fields
 
-from encodex.defaults import DEFAULT_CHUNKS_PER_FOLD, DEFAULT_FOLDS
+from encodex.defaults import DEFAULT_CHUNKS_PER_FOLD, DEFAULT_FOLDS, MIN_STEP_GAIN
 from encodex.errors import SettingsError
 from encodex.variables import VARIABLES, canonical_order
 
@@ -80,6 +80,10 @@ class RunSettings:
         environment's clock (:mod:`encodex.design.drift`), so the baseline is the drift-only
         model and gains and bits per spike are relative to it; False: the baseline is the
         mean-rate model.
+    min_step_gain : float
+        Effect-size floor of forward steps after the first: the added variable must raise
+        the held-out information by at least this fraction of the current model's (default
+        0.02; 0 switches it off; :mod:`encodex.compare.selection`).
     """
 
     variables: tuple[str, ...] | None = None
@@ -98,6 +102,7 @@ class RunSettings:
     fold_fits: str = "one-step"
     gram_precision: str = "double"
     drift: bool = True
+    min_step_gain: float = MIN_STEP_GAIN
 
     def __post_init__(self):
         if self.variables is not None:
@@ -122,6 +127,9 @@ class RunSettings:
         _int_at_least("min_spikes", self.min_spikes, 1, "100")
         if not (isinstance(self.alpha, (int, float)) and 0 < self.alpha < 1):
             raise SettingsError(f"alpha must be between 0 and 1 (got {self.alpha}); use 0.05")
+        if not (isinstance(self.min_step_gain, (int, float)) and 0 <= self.min_step_gain < 1):
+            raise SettingsError(f"min_step_gain must be in [0, 1) (got {self.min_step_gain}); "
+                                f"use --min-step-gain {MIN_STEP_GAIN} (0 switches it off)")
         if self.correction not in ("signflip", "bonferroni", "none"):
             raise SettingsError(f"correction must be 'signflip', 'bonferroni' or 'none' (got "
                                 f"{self.correction!r}); use --correction signflip")

@@ -246,6 +246,7 @@ def _analyse_cell(env, unit, y, settings, n_spikes, rate, arrays):
     a = analyse_cell(
         design, y, offset, folds, env.variables, alpha=settings.alpha,
         exhaustive=settings.exhaustive, correction=settings.correction,
+        min_step_gain=settings.min_step_gain,
         shuffles=settings.shuffles, min_shift_bins=min_shift,
         rng=stream(settings.seed, env.name, unit, PURPOSE_SHUFFLES),
         fold_fits=settings.fold_fits,
@@ -306,6 +307,9 @@ def _analyse_cell(env, unit, y, settings, n_spikes, rate, arrays):
 def selection_path(steps, alpha: float, correction: str) -> str:
     """The forward steps as text: ``+position(p=0.002<=0.05) > xspeed(p=0.0244>0.0167)``.
 
+    A step whose test passed but whose mean improvement (bits per spike) fell short of the
+    effect-size floor is written ``xheading(p=0.009<=0.05)[gain 0.00075<0.0078]``.
+
     ``+`` a variable was added, ``x`` the step's best candidate was rejected; each p-value is
     shown against the level its step was tested at (the step's own record; for steps written
     before steps recorded it: alpha, divided by the step's number of candidates under the
@@ -321,8 +325,12 @@ def selection_path(steps, alpha: float, correction: str) -> str:
             sign = "<=" if s.p_value <= level else ">"
         else:
             sign = "<" if s.p_value < level else ">="
-        out.append(f"{'+' if s.accepted else 'x'}{label(set(s.best) - set(s.base))}"
-                   f"(p={s.p_value:.3g}{sign}{level:.3g})")
+        text = (f"{'+' if s.accepted else 'x'}{label(set(s.best) - set(s.base))}"
+                f"(p={s.p_value:.3g}{sign}{level:.3g})")
+        passed = s.p_value <= level if correction == "signflip" else s.p_value < level
+        if passed and not s.accepted:  # refused by the effect-size floor
+            text += f"[gain {s.mean_improvement:.3g}<{getattr(s, 'min_gain', 0.0):.3g}]"
+        out.append(text)
     return " > ".join(out)
 
 

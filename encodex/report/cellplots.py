@@ -32,7 +32,8 @@ __all__ = ["response_terms", "term_rate", "parse_selection_path", "draw_cell",
 Z95 = 1.959963984540054
 #: Bins (spatial or along a variable) visited for less than this are not given a rate.
 MIN_BIN_OCCUPANCY_S = MIN_OCCUPANCY_S
-_PATH_STEP = re.compile(r"([+x])([^(]+)\(p=([^<>=)]+)(?:(<=|<|>=|>)([^)]+))?\)")
+_PATH_STEP = re.compile(r"([+x])([^(]+)\(p=([^<>=)]+)(?:(<=|<|>=|>)([^)]+))?\)"
+                        r"(?:\[gain ([^<\]]+)<([^\]]+)\])?")
 _NAMES = {"distance": "distance since trial start", "time": "time since trial start",
           "drift": "time in the environment (slow drift, s)"}
 
@@ -196,10 +197,11 @@ def parse_selection_path(path, chosen_label: str) -> list[dict]:
         for m in _PATH_STEP.finditer(path):
             steps.append({"variable": m.group(2).strip(), "accepted": m.group(1) == "+",
                           "p": float(m.group(3)),
-                          "level": float(m.group(5)) if m.group(5) else np.nan})
+                          "level": float(m.group(5)) if m.group(5) else np.nan,
+                          "small_gain": m.group(6) is not None})
         return steps
-    return [{"variable": v, "accepted": True, "p": np.nan, "level": np.nan}
-            for v in carried(chosen_label)]
+    return [{"variable": v, "accepted": True, "p": np.nan, "level": np.nan,
+             "small_gain": False} for v in carried(chosen_label)]
 
 
 def _fold_scores(models: pd.DataFrame) -> dict[str, np.ndarray]:
@@ -238,8 +240,8 @@ def _draw_path(ax_gain, ax_p, steps: list[dict], models: pd.DataFrame) -> None:
     ax_p.set_yscale("log")
     ax_p.set_ylabel("p-value")
     ax_p.set_xticks(xs)
-    ax_p.set_xticklabels([("+ " if s["accepted"] else "rejected: ") + s["variable"]
-                          for s in steps], fontsize=8)
+    ax_p.set_xticklabels([("+ " if s["accepted"] else "too small: " if s.get("small_gain")
+                           else "rejected: ") + s["variable"] for s in steps], fontsize=8)
     for a in (ax_gain, ax_p):
         a.set_xlim(-0.6, max(len(steps), 1) - 0.4)
     ax_p.text(0.99, 0.04, "bar: level of the step (added when p reached it)",

@@ -558,6 +558,13 @@ def _selection(m: MethodsInput):
                                                                     dict) else None
     if low is None and k:
         low = smallest_p(corr, int(k))
+    floor = m.get("min_step_gain", 0.0) or 0.0
+    if floor:
+        text += (f". Every step after the first was also required to raise the mean held-out "
+                 f"score by at least {_num(100 * floor)}% of the current model's, so that a "
+                 f"variable correlated with the carried ones is not added for the small "
+                 f"remainder left when their tuning is not fitted exactly, which long "
+                 f"recordings make significant")
     text += (". A cell whose first step failed was labelled \"none\"; with "
              f"{k} folds the smallest attainable p-value is {low:.3g}."
              if k else ". A cell whose first step failed was labelled \"none\".")
