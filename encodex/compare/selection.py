@@ -35,8 +35,9 @@ by at least this fraction of the current model's (default :data:`MIN_STEP_GAIN`,
 long recordings a tiny improvement becomes significant when the true terms are not fitted
 exactly (a field or a tuning curve smoothed a little, a shape the basis cannot follow) and a
 correlated variable takes up the remainder: in the labels-at-the-edges study such extras
-added 0.2-1.1% of the current model's information, while true second variables added 7-60%
-(benchmarks/RESULTS.md). The first step has no floor (the baseline carries no information).
+added 0.2-1.1% of the current model's information, while true second variables that passed
+the test added 22-62% (benchmarks/RESULTS.md). The first step has no floor (the baseline
+carries no information).
 
 Exhaustive mode scores every subset of the variables first, then applies the same rule on the
 whole lattice. Because the rule only reads scores, both modes give the same label; exhaustive

@@ -1,0 +1,84 @@
+"""CPU per cell of this round's two changes to the smoothness selection, on the same cells.
+
+- ``traces by one pass``: the weight-derivative traces of the exact LAML gradient from one pass
+  over the bins (``Design.row_quadratic_forms``) instead of one X'WX pass per penalty (the
+  previous implementation is kept below, for this comparison only);
+- ``both (current)``: and each model's new terms warm-started from an earlier fit holding
+  them (``encodex.compare.cell.warm_start_fits``).
+
+Cells are simulated (``encodex.simulate``, one environment, 20 ms bins, default settings) and
+labelled through ``analyse_unit`` by each variant in turn (interleaved). Prints the labels
+and a table of CPU seconds per cell with ratios to the previous implementation.
+
+Usage::
+
+    nice -n 10 .venv/bin/python benchmarks/bench_cell_levers.py CELLS MINUTES
+"""
+
+import json
+import sys
+
+import numpy as np
+
+import encodex.compare.cell as C
+import encodex.fit.smoothing as S
+from encodex.fit.smoothing import NEGLIGIBLE_TRACE
+from encodex.population.run import _environment_work
+from encodex.population.settings import RunSettings
+from encodex.population.work import analyse_unit, environment_design
+from encodex.session import build_session
+from encodex.simulate import simulate_recording
+
+
+def old_traces(design, w, gram, a_inv, dtheta):
+    """The previous implementation: one X'WX pass per penalty (dH is linear in the weights)."""
+    eta = design.linear_predictors(dtheta)
+    out = np.zeros(dtheta.shape[0])
+    for k in range(dtheta.shape[0]):
+        scale = float(np.max(np.abs(eta[:, k] * (w > 0)), initial=0.0))
+        if scale * a_inv.shape[0] <= NEGLIGIBLE_TRACE:
+            continue
+        c = 0.5 / scale
+        dh = (design.weighted_gram(w * (1.0 + c * eta[:, k])) - gram) / c
+        out[k] = float(np.sum(a_inv * dh))
+    return out
+
+
+NEW_TRACES = S._weight_derivative_traces
+VARIANTS = {"before (trace per penalty, parent-only start)": (old_traces, False),
+            "traces by one pass": (NEW_TRACES, False),
+            "both (current)": (NEW_TRACES, True)}
+
+
+def main(n: int, minutes: float) -> None:
+    rec, _ = simulate_recording(seed=17, n_cells=n, duration_s=minutes * 60,
+                                environments=("box",))
+    s = build_session(rec, bin_size=0.02)
+    rows = np.flatnonzero(np.asarray(s.valid) & (np.asarray(s.environment) == 0))
+    rs = RunSettings()
+    env, _ = _environment_work(s, "box", rs, "x")
+    environment_design(env)
+    tot = {k: 0.0 for k in VARIANTS}
+    labels_by_unit = {}
+    for u in s.unit_ids:
+        y = s.unit_counts(u)[rows]
+        labels = []
+        for name, (fn, warm) in VARIANTS.items():
+            S._weight_derivative_traces, C.WARM_NEW_TERMS = fn, warm
+            o = analyse_unit(env, u, y, rs)
+            tot[name] += o.seconds
+            labels.append(o.record["cell"]["variables"])
+        labels_by_unit[u] = labels
+    S._weight_derivative_traces, C.WARM_NEW_TERMS = NEW_TRACES, True
+    first = next(iter(tot.values()))
+    print(json.dumps({"benchmark": "cell_levers", "cells": n, "minutes": minutes,
+                      "cpu_s_per_cell": {k: round(v / n, 3) for k, v in tot.items()},
+                      "ratio_to_before": {k: round(v / first, 3) for k, v in tot.items()},
+                      "labels": labels_by_unit}))
+    print("| variant | CPU s per cell | ratio to before |\n|---|---|---|")
+    for k, v in tot.items():
+        print(f"| {k} | {v / n:.2f} | {v / first:.3f} |")
+
+
+if __name__ == "__main__":
+    main(int(sys.argv[1]), float(sys.argv[2]))
