@@ -133,6 +133,16 @@ def test_incompatible_folders_are_refused_with_one_line(folders, tmp_path, capsy
     err = capsys.readouterr().err
     assert code == 2
     assert err.count("\n") == 1 and "different variables" in err
+    # A folder fitted without the effect-size floor (or from before it existed) is refused.
+    run["environments"]["day2"]["variables"] = ["position", "heading"]
+    run["settings"]["min_step_gain"] = 0.0
+    (other / "run.json").write_text(json.dumps(run))
+    with pytest.raises(SettingsError, match="different effect-size floor of later steps"):
+        compare_recordings(root / "a", other, matching=root / "match.csv")
+    del run["settings"]["min_step_gain"]
+    (other / "run.json").write_text(json.dumps(run))
+    with pytest.raises(SettingsError, match="different effect-size floor of later steps"):
+        compare_recordings(root / "a", other, matching=root / "match.csv")
 
 
 def test_bad_matching_tables(folders, tmp_path):

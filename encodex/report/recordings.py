@@ -60,7 +60,12 @@ COMPATIBLE_SETTINGS = {
     "fold_fits": "fold fits",
     "basis_sizes": "basis sizes",
     "min_spikes": "minimum spikes",
+    "drift": "slow-drift term",
+    "min_step_gain": "effect-size floor of later steps",
 }
+
+#: What a setting missing from an older run.json meant (it did not exist then).
+_BEFORE_SETTING = {"drift": False, "min_step_gain": 0.0}
 
 #: Column names accepted for the matching table (first two columns otherwise).
 _MATCH_COLUMNS = ("unit_a", "unit_b")
@@ -162,6 +167,8 @@ def _setting_value(run: RunFolder, env: str, key: str):
     if key == "variables":
         return _env_variables(run, env)
     v = setting(run.run, key)
+    if v is None and key in _BEFORE_SETTING:
+        v = _BEFORE_SETTING[key]
     if key == "basis_sizes" and isinstance(v, dict):
         return tuple(sorted((str(k), v[k]) for k in v))
     if isinstance(v, list):
