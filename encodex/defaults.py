@@ -17,4 +17,4 @@ DEFAULT_CHUNKS_PER_FOLD = 3
 
 #: Smallest improvement a later forward step must add, as a fraction of the current model's
 #: held-out information (the effect-size floor of :mod:`encodex.compare.selection`).
-MIN_STEP_GAIN = 0.02
+MIN_STEP_GAIN = 0.01

@@ -671,7 +671,8 @@ def draw_cell_params(rng: np.random.Generator, covariates) -> dict:
 def binned_counts(covariates, clock_s: np.ndarray, bin_size: float, variables,
                   rng: np.random.Generator, strength: float = 1.0, mean_rate_hz: float = 2.0,
                   modulation: str = "poisson", params: dict | None = None,
-                  drift_tau_s: float | None = None) -> np.ndarray:
+                  drift_tau_s: float | None = None,
+                  strengths: dict | None = None) -> np.ndarray:
     """Spike counts of one simulated cell on a binned trajectory.
 
     Parameters
@@ -704,6 +705,10 @@ def binned_counts(covariates, clock_s: np.ndarray, bin_size: float, variables,
         Ornstein-Uhlenbeck process with this time constant (s) and sd
         :data:`WANDER_SD` (the rate within 0.6-1.6x its median about two thirds of the
         time), drawn after the tuning parameters.
+    strengths : dict, optional
+        Tuning strength of single variables (name -> multiplier), overriding ``strength`` for
+        them: e.g. ``{"speed": 0.25}`` with ``strength=1`` makes speed modulate the rate a
+        quarter as deeply as the other variables (the log gains add over variables).
 
     Returns
     -------
@@ -724,7 +729,12 @@ def binned_counts(covariates, clock_s: np.ndarray, bin_size: float, variables,
                          _cov(covariates, "heading", n), _cov(covariates, "speed", n),
                          _cov(covariates, "distance", n), _cov(covariates, "time", n),
                          np.zeros(n, dtype=np.int64), np.zeros((0, 2)), ())
-        log_rate += strength * _log_modulation(variables, p, beh, np.arange(n))
+        if strengths:
+            for v in variables:
+                log_rate += strengths.get(v, strength) * _log_modulation((v,), p, beh,
+                                                                         np.arange(n))
+        else:
+            log_rate += strength * _log_modulation(variables, p, beh, np.arange(n))
     if modulation == "bursty":
         log_rate += _ou_dt(rng, n, bin_size, 2.0, 0.7)
     elif modulation == "drift" and drift_tau_s is not None:

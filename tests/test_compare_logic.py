@@ -5,7 +5,7 @@ import pytest
 
 from encodex.compare.folds import chunked_folds
 from encodex.compare.scores import heldout_score, mean_rate_counts, poisson_loglik
-from encodex.compare.selection import improvement_p, select_variables
+from encodex.compare.selection import MIN_STEP_GAIN, improvement_p, select_variables
 from encodex.errors import SettingsError
 
 
@@ -203,7 +203,7 @@ def test_effect_size_floor_refuses_a_significant_but_tiny_later_step():
     last = sel.steps[-1]
     assert last.p_value == pytest.approx(2.0**-10) and not last.accepted
     mean_pos = float(np.mean(table[("position",)]))
-    assert last.min_gain == pytest.approx(0.02 * mean_pos)
+    assert last.min_gain == pytest.approx(MIN_STEP_GAIN * mean_pos)
     assert last.mean_improvement < last.min_gain
     # The first step has no floor; with the floor off the tiny step is taken.
     assert sel.steps[0].min_gain == 0.0

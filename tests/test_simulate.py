@@ -204,3 +204,26 @@ def test_wandering_drift_moves_the_rate_over_minutes_and_is_reproducible():
     b = binned_counts(cov, clock, dt, (), np.random.default_rng(4), mean_rate_hz=4.0,
                       modulation="drift", drift_tau_s=600.0)
     np.testing.assert_array_equal(a, b)
+
+
+def test_per_variable_strengths_scale_each_log_gain():
+    from encodex.simulate import binned_counts
+
+    n, dt = 2000, 0.05
+    rng = np.random.default_rng(0)
+    cov = {"speed": rng.uniform(0, 0.4, n), "heading": rng.uniform(0, 2 * np.pi, n)}
+    clock = np.arange(n) * dt
+
+    def counts(**kw):
+        return binned_counts(cov, clock, dt, ("heading", "speed"), np.random.default_rng(9),
+                             mean_rate_hz=3.0, **kw)
+
+    # Equal strengths given per variable: the same counts as one strength for all.
+    np.testing.assert_array_equal(counts(strength=0.5),
+                                  counts(strengths={"heading": 0.5, "speed": 0.5}))
+    # Speed switched off: the counts no longer follow speed.
+    y = counts(strength=1.0, strengths={"speed": 0.0})
+    fast = cov["speed"] > 0.3
+    slow = cov["speed"] < 0.1
+    z = counts(strength=1.0)
+    assert abs(y[fast].mean() - y[slow].mean()) < abs(z[fast].mean() - z[slow].mean())

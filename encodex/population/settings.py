@@ -83,7 +83,7 @@ class RunSettings:
     min_step_gain : float
         Effect-size floor of forward steps after the first: the added variable must raise
         the held-out information by at least this fraction of the current model's (default
-        0.02; 0 switches it off; :mod:`encodex.compare.selection`).
+        0.01; 0 switches it off; :mod:`encodex.compare.selection`).
     """
 
     variables: tuple[str, ...] | None = None
