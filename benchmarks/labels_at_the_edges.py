@@ -333,7 +333,7 @@ def figure(summary: dict, path: str) -> None:
     import matplotlib.pyplot as plt
 
     fig, axes = plt.subplots(1, 4, figsize=(15, 3.6))
-    styles = {"new": ("C0", "drift + sign-flip + floor, 20 folds (new default)"),
+    styles = {"new": ("C0", "drift + sign-flip + 1% floor, 20 folds (new default)"),
               "new_k10": ("C3", "drift + sign-flip, 10 folds"),
               "old": ("C1", "Wilcoxon + Bonferroni, 10 folds (earlier default)"),
               "reference": ("C2", "fixed smoothing, uncorrected (reference)")}
