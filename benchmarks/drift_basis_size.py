@@ -124,27 +124,13 @@ def main(argv=None):
     p.add_argument("--cells-out", default=None, help="write every cell's result (JSON lines)")
     a = p.parse_args(argv)
 
-    from joblib import Parallel, delayed
-
-    here = os.path.dirname(os.path.abspath(__file__))
-    os.environ["PYTHONPATH"] = os.pathsep.join(
-        [here] + [x for x in os.environ.get("PYTHONPATH", "").split(os.pathsep) if x])
-    sys.path.insert(0, here)
-    from drift_basis_size import run_cell as worker
+    sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+    from _cells import import_worker, run_cells
     from labels_at_the_edges import summarise, table
 
     t0 = time.time()
-    specs = plan(a.null_cells, a.power_cells)
-    fh = open(a.cells_out, "w") if a.cells_out else None
-    cells = []
-    for c in Parallel(n_jobs=a.jobs, batch_size=2, return_as="generator_unordered")(
-            delayed(worker)(s) for s in specs):
-        cells.append(c)
-        if fh:
-            fh.write(json.dumps(c) + "\n")
-            fh.flush()
-    if fh:
-        fh.close()
+    cells = run_cells(import_worker("drift_basis_size"), plan(a.null_cells, a.power_cells),
+                      a.jobs, a.cells_out)
     summary = summarise(sorted(cells, key=lambda c: c["seed"]))
     print(json.dumps({"benchmark": "drift_basis_size", "n_cells": len(cells),
                       "wall_s": round(time.time() - t0, 1), **summary}))

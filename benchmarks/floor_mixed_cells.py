@@ -101,17 +101,11 @@ def main(argv=None):
     p.add_argument("--jobs", type=int, default=2)
     a = p.parse_args(argv)
 
-    from joblib import Parallel, delayed
-
-    here = os.path.dirname(os.path.abspath(__file__))
-    os.environ["PYTHONPATH"] = os.pathsep.join(
-        [here] + [x for x in os.environ.get("PYTHONPATH", "").split(os.pathsep) if x])
-    sys.path.insert(0, here)
-    from floor_mixed_cells import run_cell as worker
+    sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+    from _cells import import_worker, run_cells
 
     t0 = time.time()
-    cells = list(Parallel(n_jobs=a.jobs, batch_size=2)(delayed(worker)(s)
-                                                       for s in plan(a.cells, a.second)))
+    cells = run_cells(import_worker("floor_mixed_cells"), plan(a.cells, a.second), a.jobs)
     summary = summarise(cells)
     print(json.dumps({"benchmark": "floor_mixed_cells", "second": a.second,
                       "cells": len(cells), "wall_s": round(time.time() - t0, 1),

@@ -401,14 +401,8 @@ def main(argv=None):
     import os
     import sys
 
-    from joblib import Parallel, delayed
-
-    # Workers import this file as a module (its per-trajectory cache must live in the worker).
-    here = os.path.dirname(os.path.abspath(__file__))
-    os.environ["PYTHONPATH"] = os.pathsep.join(
-        [here] + [x for x in os.environ.get("PYTHONPATH", "").split(os.pathsep) if x])
-    sys.path.insert(0, here)
-    from labels_at_the_edges import run_cell as worker
+    sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+    from _cells import import_worker, run_cells
 
     t0 = time.time()
     if a.summarise:
@@ -422,16 +416,8 @@ def main(argv=None):
         # Round robin over the points of the study, so that a run cut short still covers all
         # of them (results are streamed to --cells-out).
         order = sorted(range(len(specs)), key=lambda i: (specs[i]["rank"], i))
-        cells = []
-        fh = open(a.cells_out, "w") if a.cells_out else None
-        for c in Parallel(n_jobs=a.jobs, batch_size=4, return_as="generator_unordered")(
-                delayed(worker)(specs[i]) for i in order):
-            cells.append(c)
-            if fh:
-                fh.write(json.dumps(c) + "\n")
-                fh.flush()
-        if fh:
-            fh.close()
+        cells = run_cells(import_worker("labels_at_the_edges"), [specs[i] for i in order],
+                          a.jobs, a.cells_out, batch_size=4)
     cells = sorted(cells, key=lambda c: c["seed"])
     summary = summarise(cells)
     record = {"benchmark": "labels_at_the_edges", "quick": a.quick, "n_cells": len(cells),
