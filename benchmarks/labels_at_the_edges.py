@@ -5,9 +5,11 @@ Simulated cells on simulated trajectories (``encodex.simulate``: the foraging an
 by three pipelines on the same cells:
 
 - ``new``: the defaults of this version: slow-drift term in every model, sign-flip
-  max-statistic step test at alpha (``correction="signflip"``), effect-size floor of later
-  steps (``min_step_gain`` 0.02), 20 folds of 3 chunks, smoothness by LAML, one-step fold
-  fits;
+  max-statistic step test of the mean improvements at alpha (``correction="signflip"``),
+  effect-size floor of later steps (``min_step_gain`` 0.01), 20 folds of 3 chunks,
+  smoothness by LAML, one-step fold fits;
+- ``new_t``: the same fits and floor with the studentised sign-flip test
+  (``correction="signflip-t"``, the default of the second round of this study);
 - ``new_k10``: drift term and sign-flip test with 10 folds of 3 chunks and no floor (the
   defaults of the first round of this study);
 - ``old``: the defaults when the study began: no drift term, one-sided Wilcoxon at alpha / m
@@ -154,12 +156,12 @@ def run_cell(spec: dict) -> dict:
                 if key not in scorers:
                     scorers[key] = ModelScorer(design, y, offset, folds[k], fold_fits=fits,
                                                nuisance=(DRIFT_TERM,))
-                rule = "bonferroni" if p == "new_bonferroni" else "signflip"
+                rule = {"new_bonferroni": "bonferroni", "new_t": "signflip-t"}.get(p, "signflip")
             elif p.startswith("old"):
                 key = ("plain", "one-step")
                 if key not in scorers:
                     scorers[key] = ModelScorer(design, y, offset, folds[10])
-                rule = {"old": "bonferroni", "old_signflip": "signflip",
+                rule = {"old": "bonferroni", "old_signflip": "signflip-t",
                         "old_none": "none"}[p]
             else:
                 key = ("reference",)
@@ -167,7 +169,7 @@ def run_cell(spec: dict) -> dict:
                     scorers[key] = FixedSmoothingScorer(design, y, offset, contiguous)
                 rule = "none"
             # The effect-size floor is part of the new defaults only (new, new_refit).
-            floor = MIN_STEP_GAIN if p in ("new", "new_refit") else 0.0
+            floor = MIN_STEP_GAIN if p in ("new", "new_refit", "new_t") else 0.0
             sel = select_variables(VARIABLES, scorers[key], alpha=ALPHA, correction=rule,
                                    min_step_gain=floor)
             labels[p] = label(sel.chosen)
@@ -176,7 +178,7 @@ def run_cell(spec: dict) -> dict:
     return out
 
 
-PIPELINES = ("new", "new_k10", "old", "reference")
+PIPELINES = ("new", "new_t", "new_k10", "old", "reference")
 
 
 def plan(quick: bool, n_null=None, n_pow=None, n_extra=None, n_null_all=None,
@@ -187,6 +189,8 @@ def plan(quick: bool, n_null=None, n_pow=None, n_extra=None, n_null_all=None,
     n_extra = n_extra or (18 if quick else 100)
     n_refit = n_extra if n_refit is None else min(n_refit, n_extra)
     main = list(pipelines)
+    # Test variants that share the new default's fits ride along on its own cells.
+    shared = [p for p in main if p in ("new_t", "new_bonferroni")]
     specs = []
 
     def add(part, n, duration, slowdown, truth_fn, strength, rate_fn, modulation, pipelines,
@@ -215,7 +219,7 @@ def plan(quick: bool, n_null=None, n_pow=None, n_extra=None, n_null_all=None,
                                  ("short 5 min", 300.0, None, "poisson")):
         add("null", n_all, dur, slow, untuned, 0.0, rate_1_4, mod, main, kind)
         add("null", n_null - n_all, dur, slow, lambda i, n=n_all: (), 0.0,
-            lambda i, n=n_all: rate_1_4(i + n), mod, ["new"], kind)
+            lambda i, n=n_all: rate_1_4(i + n), mod, ["new"] + shared, kind)
     for g in (0.25, 0.5, 0.75, 1.0):
         add("strength", n_pow, 1800.0, None, tuned, g, rate_1_4, "poisson", main, g)
     for d in (300.0, 900.0, 3600.0):  # 30 min is the strength axis' 0.5 point
@@ -225,9 +229,9 @@ def plan(quick: bool, n_null=None, n_pow=None, n_extra=None, n_null_all=None,
     for d in (1800.0, 3600.0):
         # The first n_refit cells of each length also through refit fold fits (slow).
         add("extras", n_refit, d, None, tuned, 1.0, rate_1_4, "poisson",
-            ["new", "new_refit"], d / 60)
+            ["new", "new_refit"] + shared, d / 60)
         add("extras", n_extra - n_refit, d, None, lambda i, n=n_refit: tuned(i + n), 1.0,
-            lambda i, n=n_refit: rate_1_4(i + n), "poisson", ["new"], d / 60)
+            lambda i, n=n_refit: rate_1_4(i + n), "poisson", ["new"] + shared, d / 60)
     for i, s in enumerate(specs):
         s["seed"] = 10_000 + i
         s["truth"] = list(s["truth"])

@@ -17,7 +17,7 @@ from __future__ import annotations
 import argparse
 import sys
 
-from encodex.defaults import DEFAULT_CHUNKS_PER_FOLD, DEFAULT_FOLDS, MIN_STEP_GAIN
+from encodex.defaults import CORRECTIONS, DEFAULT_CHUNKS_PER_FOLD, DEFAULT_FOLDS, MIN_STEP_GAIN
 from encodex.errors import EncodexError, SettingsError
 from encodex.report.options import (add_jobs_option, name_equals_count, non_negative_number,
                                     positive_number, resolve_jobs, whole_number)
@@ -157,10 +157,11 @@ def add_fit_command(subparsers) -> None:
                    help="smallest circular shift in seconds (default 20)")
     p.add_argument("--alpha", type=float, default=0.05, metavar="A",
                    help="level of the test of each added variable (default 0.05)")
-    p.add_argument("--correction", choices=("signflip", "bonferroni", "none"),
-                   default="signflip",
+    p.add_argument("--correction", choices=CORRECTIONS,
+                   default=CORRECTIONS[0],
                    help="step test: signflip (default; exact sign-flip test of the largest "
-                        "candidate statistic over the folds, at alpha), bonferroni (Wilcoxon at "
+                        "mean improvement among the candidates, over the folds, at alpha), "
+                        "signflip-t (the same with studentised means), bonferroni (Wilcoxon at "
                         "alpha/m for m candidates) or none (Wilcoxon at alpha)")
     p.add_argument("--fold-fits", choices=("one-step", "refit"), default="one-step",
                    help="one-step (default): one fit per model to all bins, smoothness by "

@@ -5,8 +5,8 @@ reading the same values as :class:`encodex.population.settings.RunSettings`.
 """
 
 #: Default number of cross-validation folds. Why 20 rather than 10: the step test works on the
-#: k fold-wise differences; with 10 folds its studentised statistic has 9 degrees of freedom
-#: and its p-values come in steps of 2^-10. On the same simulated cells 20 folds found more
+#: k fold-wise differences; with 10 folds its p-values come in steps of 2^-10 and a
+#: studentised statistic has 9 degrees of freedom. On the same simulated cells 20 folds found more
 #: weakly tuned cells (0.25x tuning: 36 against 32 of 54; 1 Hz: 49 against 44) with 1 false
 #: label in 1000 untuned cells (``benchmarks/labels_at_the_edges.py``, benchmarks/RESULTS.md),
 #: for about 1.15x the CPU per cell (one-step fold fits keep the extra folds cheap).
@@ -18,3 +18,12 @@ DEFAULT_CHUNKS_PER_FOLD = 3
 #: Smallest improvement a later forward step must add, as a fraction of the current model's
 #: held-out information (the effect-size floor of :mod:`encodex.compare.selection`).
 MIN_STEP_GAIN = 0.01
+
+#: Step tests of forward selection (:mod:`encodex.compare.selection`); the first is the default.
+#: "signflip": sign-flip max-statistic test of the largest mean improvement; "signflip-t":
+#: the same with studentised means (the default before the sparse-cell study); "bonferroni"
+#: and "none": one-sided Wilcoxon at alpha / m and at alpha.
+CORRECTIONS = ("signflip", "signflip-t", "bonferroni", "none")
+
+#: The step tests that are sign-flip randomisation tests (p-values compared with ``<=``).
+SIGNFLIP_TESTS = ("signflip", "signflip-t")

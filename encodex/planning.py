@@ -25,6 +25,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from encodex.defaults import CORRECTIONS
 from encodex.errors import InputError, SettingsError
 
 #: Detection probability for which the minutes are reported.
@@ -288,7 +289,7 @@ def register_planning_command(subparsers) -> None:
     p.add_argument("--seed", type=_count, default=0, metavar="S")
     p.add_argument("--no-drift", dest="drift", action="store_false",
                    help="plan for runs without the slow-drift term")
-    p.add_argument("--correction", choices=("signflip", "bonferroni", "none"),
+    p.add_argument("--correction", choices=CORRECTIONS,
                    default="signflip", help="step test of the runs planned for")
     p.add_argument("--jobs", type=_positive_int, default=1, metavar="N")
     p.set_defaults(func=_run_plan)

@@ -12,30 +12,45 @@ from scipy import stats
 from encodex.compare.selection import max_signflip_p, paired_p, select_variables
 
 
-def _brute_force(d: np.ndarray) -> np.ndarray:
+def _clip(x: np.ndarray, c: float = 3.0) -> np.ndarray:
+    """Huber-type clip of each column at c times its median absolute value (Huber 1964,
+    Ann. Math. Stat. 35:73), written out here independently of encodex."""
+    bound = c * np.median(np.abs(x), axis=0)
+    return np.minimum(np.maximum(x, -bound), bound)
+
+
+def _brute_force(d: np.ndarray, statistic: str) -> np.ndarray:
     """Westfall & Young (1993, Resampling-Based Multiple Testing, Wiley, sec. 2.6) single-step
-    max-T adjusted p-values, by looping over every sign vector; the t statistic of each
-    candidate from scipy.stats.ttest_1samp (an implementation independent of encodex)."""
+    max-statistic adjusted p-values, by looping over every sign vector; the t statistic of
+    each candidate from scipy.stats.ttest_1samp and the mean from numpy (implementations
+    independent of encodex)."""
+    def stat(x):
+        if statistic == "t":
+            return stats.ttest_1samp(x, 0.0, axis=0).statistic
+        return np.mean(_clip(x) if statistic == "clipped" else x, axis=0)
+
     k, m = d.shape
-    t_obs = stats.ttest_1samp(d, 0.0, axis=0).statistic
+    obs = stat(d)
     counts = np.zeros(m)
     total = 0
     for signs in itertools.product((1.0, -1.0), repeat=k):
-        t = stats.ttest_1samp(d * np.array(signs)[:, None], 0.0, axis=0).statistic
-        counts += t.max() >= t_obs - 1e-9 * np.maximum(1, np.abs(t_obs))
+        t = stat(d * np.array(signs)[:, None])
+        counts += t.max() >= obs - 1e-9 * np.maximum(1, np.abs(obs))
         total += 1
     return counts / total
 
 
+@pytest.mark.parametrize("statistic", ["clipped", "mean", "t"])
 @pytest.mark.parametrize("k,m,seed", [(5, 1, 0), (6, 3, 1), (8, 4, 2), (9, 5, 3)])
-def test_max_statistic_p_equals_brute_force(k, m, seed):
+def test_max_statistic_p_equals_brute_force(k, m, seed, statistic):
     rng = np.random.default_rng(seed)
     # Correlated candidates (a shared fold effect) with one carrying a real improvement.
     common = rng.normal(size=(k, 1))
     d = 0.6 * common + rng.normal(size=(k, m)) * rng.uniform(0.5, 2.0, m)
     d[:, 0] += 0.8
-    got = max_signflip_p(d)
-    want = _brute_force(d)
+    d[1, -1] = -25.0  # one wild fold, which the clipped statistic bounds
+    got = max_signflip_p(d, statistic)
+    want = _brute_force(d, statistic)
     np.testing.assert_array_equal(got * 2**k, np.round(want * 2**k))
     assert np.all(got >= 2.0**-k)
 
@@ -46,8 +61,13 @@ def test_single_candidate_matches_scipy_permutation_test():
     rng = np.random.default_rng(7)
     for _ in range(5):
         d = rng.normal(0.3, 1.0, 10)
+        d[3] = 9.0  # a wild fold: clipped by the default statistic, not by the plain mean
         ref = stats.permutation_test((d,), np.mean, permutation_type="samples",
                                      alternative="greater", n_resamples=np.inf).pvalue
+        assert paired_p(d, np.zeros(10), "signflip-t") == pytest.approx(ref, rel=1e-12)
+        ref = stats.permutation_test((d,), lambda x, axis: np.mean(_clip(x.T).T, axis=axis),
+                                     permutation_type="samples", alternative="greater",
+                                     n_resamples=np.inf).pvalue
         assert paired_p(d, np.zeros(10)) == pytest.approx(ref, rel=1e-12)
 
 
@@ -62,7 +82,8 @@ def test_worked_example_by_hand():
     assert paired_p(d, np.zeros(10)) == pytest.approx(56 / 1024)
 
 
-def test_max_statistic_keeps_the_false_label_rate_on_symmetric_nulls():
+@pytest.mark.parametrize("statistic", ["clipped", "mean", "t"])
+def test_max_statistic_keeps_the_false_label_rate_on_symmetric_nulls(statistic):
     # Ground-truth simulation: 4000 steps with five correlated candidates and no improvement;
     # the best candidate is accepted at most at rate alpha (binomial 99.9% bound above 0.05).
     rng = np.random.default_rng(11)
@@ -70,7 +91,7 @@ def test_max_statistic_keeps_the_false_label_rate_on_symmetric_nulls():
     n = 4000
     for _ in range(n):
         d = 0.8 * rng.normal(size=(10, 1)) + rng.normal(size=(10, 5)) * [1, 2, 0.5, 1, 3]
-        hits += max_signflip_p(d)[int(np.argmax(d.mean(axis=0)))] <= 0.05
+        hits += max_signflip_p(d, statistic)[int(np.argmax(d.mean(axis=0)))] <= 0.05
     assert hits / n <= 0.05 + 3.1 * np.sqrt(0.05 * 0.95 / n)
     # ... and is not trivially conservative (a test that never rejects would fail here).
     assert hits / n >= 0.03

@@ -34,7 +34,13 @@ def test_circular_track_direction_cells_and_untuned_cells():
     # direction term must show in most direction cells and in no other cell
     assert np.mean(["direction" in g for g in got[has_dir]]) >= 0.5
     assert not any("direction" in g for g in got[~has_dir])
-    assert all(g == "none" for g in got[true == "none"])
+    # Untuned cells: each is labelled with probability at most alpha = 0.05, so requiring all
+    # of them to stay "none" would fail a correct test on about one seed in five (5 cells);
+    # two or more labelled has probability 0.023 at alpha (binomial). (Seed 6 labels one, at
+    # p = 0.023, with the clipped sign-flip test; benchmarks/track_recovery.py measures the
+    # rate on hundreds of untuned track cells.)
+    untuned = got[true == "none"]
+    assert untuned.size >= 4 and np.sum(untuned != "none") <= 1
 
 
 def test_gain_corridor_tells_position_from_distance():

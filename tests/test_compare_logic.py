@@ -186,9 +186,33 @@ def test_signflip_equal_differences_reach_the_floor_not_zero():
     from encodex.compare.selection import max_signflip_p
 
     k = 10
-    p = max_signflip_p(np.c_[np.full(k, 0.01), np.linspace(-1.0, 1.0, k)])
+    p = max_signflip_p(np.c_[np.full(k, 0.01), np.linspace(-1.0, 1.0, k)], "t")
     assert p[0] == pytest.approx(2.0 ** -k)
     assert 0.5 < p[1] <= 1.0
+    # With the mean as statistic equal differences reach the floor too (ties count).
+    assert max_signflip_p(np.full((k, 1), 0.01))[0] == pytest.approx(2.0 ** -k)
+
+
+def test_signflip_mean_statistic_weighs_candidates_by_their_spread():
+    # A spread-out real improvement beside four tight null candidates: the mean statistic's
+    # maximum under flips is carried by the real candidate, so it pays little for the other
+    # four; the studentised statistic puts all five on one footing and pays for each.
+    from encodex.compare.selection import max_signflip_p
+
+    rng = np.random.default_rng(4)
+    d = np.c_[0.8 + rng.normal(0.0, 1.0, 12), rng.normal(0.0, 0.05, (12, 4))]
+    p_clip, p_mean, p_t = (max_signflip_p(d, s)[0] for s in ("clipped", "mean", "t"))
+    alone = max_signflip_p(d[:, :1], "mean")[0]
+    assert p_mean < p_t and p_clip < p_t
+    assert p_mean <= 1.2 * alone
+    # One wild fold in a null candidate (a refit that lost the only visits to a corner):
+    # on the plain mean it dominates the maximum under flips and the real candidate is lost;
+    # the clipped statistic bounds its pull.
+    d[5, 3] = -40.0
+    assert max_signflip_p(d, "mean")[0] > 0.2
+    assert max_signflip_p(d)[0] <= 0.05
+    with pytest.raises(SettingsError):
+        max_signflip_p(d, "median")
 
 
 def test_effect_size_floor_refuses_a_significant_but_tiny_later_step():

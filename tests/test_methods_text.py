@@ -45,6 +45,8 @@ def runs(tmp_path_factory):
         "user": _fit(user, variables=("speed", "goal_distance")),
         "no_correction": _fit(one["nwb"], variables=("speed", "heading"), correction="none",
                               alpha=0.01, min_step_gain=0.0),
+        "studentised": _fit(one["npz"], variables=("speed", "heading"),
+                            correction="signflip-t"),
     }
 
 
@@ -113,7 +115,12 @@ def _check(run, level=0.95):
     assert ("of the current model's" in s["alpha"]) == (floor > 0)
     # Smallest p: 2^-k for the Wilcoxon rules and for sign flips enumerated (k <= 16);
     # 1/65536 when 65,535 random sign vectors and the observed one are used.
-    sampled = st["correction"] == "signflip" and k > 16
+    signflip = st["correction"] in ("signflip", "signflip-t")
+    assert ("sign-flip" in s["alpha"]) == signflip
+    assert ("studentised mean" in s["alpha"]) == (st["correction"] == "signflip-t")
+    assert ("largest mean fold-wise improvement in bits per spike, each fold's improvement "
+            "clipped at 3 times" in s["alpha"]) == (st["correction"] == "signflip")
+    sampled = signflip and k > 16
     low = 1 / 65536 if sampled else 2.0 ** -k
     assert run["methods"]["smallest_p"] == low
     assert f"smallest attainable p-value is {low:.3g}." in s["alpha"]
@@ -136,7 +143,7 @@ def _check(run, level=0.95):
 
 
 @pytest.mark.parametrize("name", ["nwb", "npz", "two_env_refit", "no_trials", "lfp", "user",
-                                  "no_correction"])
+                                  "no_correction", "studentised"])
 def test_every_sentence_matches_run_json(runs, name):
     _check(runs[name])
     if name == "lfp":  # the paragraph of a phase-only run, printed for reading with -s

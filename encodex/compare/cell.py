@@ -334,7 +334,7 @@ def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
         Level of the test of each added variable (see ``correction``).
     exhaustive : bool
         Score every subset (same decision rule).
-    correction : {"signflip", "bonferroni", "none"}
+    correction : {"signflip", "signflip-t", "bonferroni", "none"}
         Step test of forward selection (see
         :func:`encodex.compare.selection.select_variables`).
     min_step_gain : float

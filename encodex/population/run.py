@@ -20,6 +20,7 @@ import pandas as pd
 from encodex.compare.folds import chunked_folds
 from encodex.compare.goodness import GOODNESS_COLUMNS, GOODNESS_STATEMENT
 from encodex.compare.selection import describe_test, smallest_p
+from encodex.defaults import SIGNFLIP_TESTS
 from encodex.errors import InputError, SettingsError
 from encodex.fit.smoothing import CRITERION_STATEMENT
 from encodex.population.checkpoint import (
@@ -384,7 +385,7 @@ def _check_first_step_reachable(rs: RunSettings, envs: Mapping[str, EnvironmentW
     m = max((len(e.variables) for e in envs.values()), default=0)
     if m:
         level = rs.alpha / m if rs.correction == "bonferroni" else rs.alpha
-        reachable = (2.0 ** -rs.folds <= level if rs.correction == "signflip"
+        reachable = (2.0 ** -rs.folds <= level if rs.correction in SIGNFLIP_TESTS
                      else 2.0 ** -rs.folds < level)
         if not reachable:
             need = int(np.floor(-np.log2(level))) + 1
@@ -713,7 +714,8 @@ cells.csv   one row per unit and environment:
                   step test's p-value across folds (run.json settings.correction:
                   "signflip", the default, an exact sign-flip test of the largest
                   candidate's mean fold difference, candidates flipped together, adjusted
-                  for the step's candidates, added when p <= level = alpha; "bonferroni",
+                  for the step's candidates, added when p <= level = alpha; "signflip-t",
+                  the same with studentised means; "bonferroni",
                   one-sided Wilcoxon signed-rank p against alpha / number of candidates,
                   added when p < level; "none", Wilcoxon against alpha). The smallest
                   attainable p is run.json methods.smallest_p (Wilcoxon with k folds: 2^-k;

@@ -13,7 +13,8 @@ import math
 import numbers
 from dataclasses import asdict, dataclass, fields
 
-from encodex.defaults import DEFAULT_CHUNKS_PER_FOLD, DEFAULT_FOLDS, MIN_STEP_GAIN
+from encodex.defaults import (CORRECTIONS, DEFAULT_CHUNKS_PER_FOLD, DEFAULT_FOLDS,
+                              MIN_STEP_GAIN)
 from encodex.errors import SettingsError
 from encodex.variables import VARIABLES, canonical_order
 
@@ -42,8 +43,9 @@ class RunSettings:
         Score every subset of the variables (same decision rule as forward selection).
     correction : str
         Step test of forward selection (:mod:`encodex.compare.selection`): "signflip"
-        (default), an exact sign-flip max-statistic test over the candidates of the step at
-        alpha; "bonferroni": one-sided Wilcoxon test of the best of m candidates at alpha / m;
+        (default), an exact sign-flip max-statistic test of the mean improvements of the
+        step's candidates at alpha; "signflip-t": the same with studentised means;
+        "bonferroni": one-sided Wilcoxon test of the best of m candidates at alpha / m;
         "none": Wilcoxon at alpha.
     shuffles : int
         Number of circular shifts of each spike train for the empirical null (0: off).
@@ -130,8 +132,8 @@ class RunSettings:
         if not (isinstance(self.min_step_gain, (int, float)) and 0 <= self.min_step_gain < 1):
             raise SettingsError(f"min_step_gain must be in [0, 1) (got {self.min_step_gain}); "
                                 f"use --min-step-gain {MIN_STEP_GAIN} (0 switches it off)")
-        if self.correction not in ("signflip", "bonferroni", "none"):
-            raise SettingsError(f"correction must be 'signflip', 'bonferroni' or 'none' (got "
+        if self.correction not in CORRECTIONS:
+            raise SettingsError(f"correction must be one of {', '.join(CORRECTIONS)} (got "
                                 f"{self.correction!r}); use --correction signflip")
         if self.fold_fits not in ("refit", "one-step"):
             raise SettingsError(f"fold_fits must be 'refit' or 'one-step' (got "

@@ -15,6 +15,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from encodex.defaults import SIGNFLIP_TESTS
 from encodex.population.settings import RunSettings
 from encodex.variables import VARIABLES, canonical_order, label
 
@@ -321,13 +322,13 @@ def selection_path(steps, alpha: float, correction: str) -> str:
         level = getattr(s, "level", float("nan"))
         if not np.isfinite(level):
             level = alpha / max(1, len(s.candidates)) if correction == "bonferroni" else alpha
-        if correction == "signflip":
+        if correction in SIGNFLIP_TESTS:
             sign = "<=" if s.p_value <= level else ">"
         else:
             sign = "<" if s.p_value < level else ">="
         text = (f"{'+' if s.accepted else 'x'}{label(set(s.best) - set(s.base))}"
                 f"(p={s.p_value:.3g}{sign}{level:.3g})")
-        passed = s.p_value <= level if correction == "signflip" else s.p_value < level
+        passed = s.p_value <= level if correction in SIGNFLIP_TESTS else s.p_value < level
         if passed and not s.accepted:  # refused by the effect-size floor
             text += f"[gain {s.mean_improvement:.3g}<{getattr(s, 'min_gain', 0.0):.3g}]"
         out.append(text)

@@ -171,7 +171,22 @@ def comparison_stem(a, b) -> str:
 
 
 def setting(run: dict, key: str, default=None):
-    """Look a setting up in ``run.json``: under ``settings`` first, then at the top level."""
+    """Look a setting up in ``run.json``: under ``settings`` first, then at the top level.
+
+    ``correction`` is read as the test that was run: runs written before the sign-flip test's
+    statistic became the mean recorded "signflip" for the studentised test, and say so in
+    their methods (``methods.selection``); they read as "signflip-t".
+    """
+    value = _raw_setting(run, key, default)
+    if key == "correction" and value == "signflip":
+        methods = run.get("methods", {}) if isinstance(run, dict) else {}
+        text = methods.get("selection", "") if isinstance(methods, dict) else ""
+        if isinstance(text, str) and "studentised" in text:
+            return "signflip-t"
+    return value
+
+
+def _raw_setting(run, key, default):
     settings = run.get("settings", {}) if isinstance(run, dict) else {}
     if isinstance(settings, dict) and key in settings:
         return settings[key]

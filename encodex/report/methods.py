@@ -14,7 +14,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import PurePath
 
-from encodex.compare.selection import n_sign_vectors, smallest_p
+from encodex.compare.selection import CLIP_MEDIANS, n_sign_vectors, smallest_p
 from encodex.report.load import setting
 from encodex.report.wording import label_caveat
 from encodex.variables import KINDS, canonical_order
@@ -531,16 +531,20 @@ def _selection(m: MethodsInput):
             f"mean held-out score was added only if its improvement over the current model "
             f"across folds was significant ")
     cites = ("Hardcastle et al. 2017",)
-    if corr == "signflip":
+    if corr in ("signflip", "signflip-t"):
+        what = ("mean fold-wise improvement in bits per spike, each fold's improvement "
+                f"clipped at {CLIP_MEDIANS:g} times the candidate's median absolute "
+                "improvement (a Huber-type bound that sign flips leave unchanged, so the "
+                "test stays exact)" if corr == "signflip" else
+                "studentised mean fold-wise improvement")
         exact = bool(k) and n_sign_vectors(int(k)) == 2 ** int(k)
         how = ("enumerated by flipping" if exact or not k else
                f"estimated from the observed and {n_sign_vectors(int(k)) - 1:,} random sign "
                f"vectors (fixed seed; the observed one counted, Phipson & Smyth 2010), "
                f"flipping")
         text += (f"by an exact sign-flip randomisation test at alpha = {_num(alpha)}: the "
-                 f"statistic was the largest studentised mean fold-wise improvement among the "
-                 f"step's candidates, and its null distribution was {how} the "
-                 f"signs of the folds' differences for all candidates together, so that the "
+                 f"statistic was the largest {what} among the step's candidates, and its "
+                 f"null distribution was {how} the signs of the folds' differences for all candidates together, so that the "
                  f"p-value is adjusted for the number of candidates while keeping their "
                  f"correlation (max-statistic; Westfall & Young 1993)")
         cites += ("Westfall & Young 1993",) + (() if exact or not k else
