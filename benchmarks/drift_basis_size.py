@@ -69,7 +69,7 @@ def run_cell(spec: dict) -> dict:
     """Simulate one cell and label it with every drift spacing (and without the term)."""
     from threadpoolctl import threadpool_limits
 
-    from encodex.compare.cell import ModelScorer
+    from encodex.compare.cell import ModelScorer, fold_spikes
     from encodex.compare.selection import select_variables
     from encodex.design import DRIFT_TERM
     from encodex.simulate import binned_counts
@@ -92,7 +92,8 @@ def run_cell(spec: dict) -> dict:
                 continue
             scorer = ModelScorer(design, y, offset, folds,
                                  nuisance=() if sp is None else (DRIFT_TERM,))
-            labels[name] = label(select_variables(VARIABLES, scorer).chosen)
+            labels[name] = label(select_variables(
+                VARIABLES, scorer, fold_weights=fold_spikes(y, folds)).chosen)
     return dict(spec, labels=labels, pipelines=list(labels), n_spikes=int(y.sum()),
                 cpu_s=time.process_time() - t0)
 

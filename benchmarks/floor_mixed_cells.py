@@ -34,7 +34,7 @@ PAIRS = (("position", "speed"), ("heading", "speed"), ("position", "heading"), (
 def run_cell(spec: dict) -> dict:
     from threadpoolctl import threadpool_limits
 
-    from encodex.compare.cell import ModelScorer
+    from encodex.compare.cell import ModelScorer, fold_spikes
     from encodex.compare.selection import select_variables
     from encodex.design import DRIFT_TERM
     from encodex.simulate import binned_counts
@@ -52,7 +52,8 @@ def run_cell(spec: dict) -> dict:
     with threadpool_limits(limits=1):
         scorer = ModelScorer(design, y, offset, folds[20], nuisance=(DRIFT_TERM,))
         for floor in FLOORS:
-            sel = select_variables(VARIABLES, scorer, min_step_gain=floor)
+            sel = select_variables(VARIABLES, scorer, min_step_gain=floor,
+                                   fold_weights=fold_spikes(y, folds[20]))
             labels[f"{floor:g}"] = label(sel.chosen)
             if floor == 0.0 and len(sel.steps) > 1 and sel.steps[0].mean_improvement > 0:
                 share = sel.steps[1].mean_improvement / sel.steps[0].mean_improvement

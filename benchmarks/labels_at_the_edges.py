@@ -5,7 +5,8 @@ Simulated cells on simulated trajectories (``encodex.simulate``: the foraging an
 by three pipelines on the same cells:
 
 - ``new``: the defaults of this version: slow-drift term in every model, sign-flip
-  max-statistic step test of the mean improvements at alpha (``correction="signflip"``),
+  max-statistic step test of the clipped, spike-weighted mean improvements at alpha
+  (``correction="signflip"``),
   effect-size floor of later steps (``min_step_gain`` 0.01), 20 folds of 3 chunks,
   smoothness by LAML, one-step fold fits;
 - ``new_t``: the same fits and floor with the studentised sign-flip test
@@ -127,7 +128,7 @@ def run_cell(spec: dict) -> dict:
     """Simulate one cell and label it by every pipeline of ``spec["pipelines"]``."""
     from threadpoolctl import threadpool_limits
 
-    from encodex.compare.cell import ModelScorer
+    from encodex.compare.cell import ModelScorer, fold_spikes
     from encodex.compare.selection import MIN_STEP_GAIN, select_variables
     from encodex.design import DRIFT_TERM
     from encodex.simulate import binned_counts
@@ -171,7 +172,8 @@ def run_cell(spec: dict) -> dict:
             # The effect-size floor is part of the new defaults only (new, new_refit).
             floor = MIN_STEP_GAIN if p in ("new", "new_refit", "new_t") else 0.0
             sel = select_variables(VARIABLES, scorers[key], alpha=ALPHA, correction=rule,
-                                   min_step_gain=floor)
+                                   min_step_gain=floor,
+                                   fold_weights=fold_spikes(y, scorers[key].folds))
             labels[p] = label(sel.chosen)
     out["labels"] = labels
     out["cpu_s"] = time.process_time() - t0

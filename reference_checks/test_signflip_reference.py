@@ -55,6 +55,23 @@ def test_max_statistic_p_equals_brute_force(k, m, seed, statistic):
     assert np.all(got >= 2.0**-k)
 
 
+@pytest.mark.parametrize("seed", [5, 6])
+def test_spike_weighted_statistic_equals_brute_force(seed):
+    # Fold weights (spikes held out per fold) scale each fold's clipped differences by
+    # w / mean(w): brute force over every sign vector of the mean of the clipped, weighted
+    # differences.
+    rng = np.random.default_rng(seed)
+    d = rng.normal(0.2, 1.0, size=(9, 4))
+    d[2, 1] = 12.0
+    w = rng.integers(1, 30, size=9).astype(float)
+    got = max_signflip_p(d, "clipped", weights=w)
+    want = _brute_force(_clip(d) * (w / w.mean())[:, None], "mean")
+    np.testing.assert_array_equal(got * 2**9, np.round(want * 2**9))
+    # Equal weights change nothing.
+    np.testing.assert_array_equal(max_signflip_p(d, "clipped", weights=np.full(9, 7.0)),
+                                  max_signflip_p(d, "clipped"))
+
+
 def test_single_candidate_matches_scipy_permutation_test():
     # Source: scipy.stats.permutation_test, one sample with permutation_type="samples", which
     # flips the signs of the observations (exact when n_resamples >= 2**k).

@@ -235,3 +235,27 @@ def test_effect_size_floor_refuses_a_significant_but_tiny_later_step():
                             min_step_gain=0.0).chosen == ("position", "speed")
     with pytest.raises(SettingsError):
         select_variables(["position"], score, min_step_gain=1.0)
+
+
+def test_fold_weights_reach_the_signflip_test_only():
+    # Two folds hold most of the spikes and carry the improvement; weighted by spikes the
+    # step passes, unweighted (every fold's ratio counted alike) it does not.
+    from encodex.compare.selection import max_signflip_p
+
+    k = 12
+    d = np.array([0.30, 0.28, -0.05, 0.04, -0.06, 0.03, -0.04, 0.05, -0.03, 0.02, -0.02, 0.01])
+    w = np.array([40, 38, 3, 3, 3, 3, 3, 3, 3, 3, 3, 3], dtype=float)
+    table = {(): np.zeros(k), ("speed",): d, ("heading",): -0.01 * np.ones(k)}
+    score = lambda m: table.get(m, np.full(k, -0.05))  # noqa: E731
+    vars_ = ("heading", "speed")
+    weighted = select_variables(vars_, score, fold_weights=w)
+    plain = select_variables(vars_, score)
+    assert weighted.steps[0].p_value < plain.steps[0].p_value
+    assert weighted.steps[0].p_value == pytest.approx(
+        max_signflip_p(np.c_[-0.01 * np.ones(k), d], weights=w)[1])
+    # The studentised and Wilcoxon rules ignore the weights.
+    for corr in ("signflip-t", "bonferroni", "none"):
+        assert (select_variables(vars_, score, correction=corr, fold_weights=w).steps[0].p_value
+                == select_variables(vars_, score, correction=corr).steps[0].p_value)
+    with pytest.raises(SettingsError):
+        max_signflip_p(np.c_[d], weights=np.ones(3))

@@ -306,6 +306,13 @@ class ModelScorer:
                               nuisance=self.nuisance)
 
 
+def fold_spikes(y: np.ndarray, folds: Folds) -> np.ndarray:
+    """Spikes held out in each fold, shape (k,): the step test's fold weights."""
+    y = np.asarray(y, dtype=float)
+    inside = folds.fold >= 0
+    return np.bincount(folds.fold[inside], weights=y[inside], minlength=folds.k)[:folds.k]
+
+
 @single_threaded
 def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
                  variables, alpha: float = 0.05, exhaustive: bool = False,
@@ -372,7 +379,8 @@ def analyse_cell(design, y: np.ndarray, offset: np.ndarray, folds: Folds,
     score = ModelScorer(design, y, offset, folds, fit_options, fold_fits, nuisance)
     cvs, full_fits = score.cvs, score.full_fits
     selection = select_variables(variables, score, alpha=alpha, exhaustive=exhaustive,
-                                 correction=correction, min_step_gain=min_step_gain)
+                                 correction=correction, min_step_gain=min_step_gain,
+                                 fold_weights=fold_spikes(y, folds))
     notes = []
     n_bad = sum(cv.n_not_converged for cv in cvs.values())
     if n_bad:
