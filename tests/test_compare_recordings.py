@@ -147,8 +147,9 @@ def test_incompatible_folders_are_refused_with_one_line(folders, tmp_path, capsy
     # for the studentised test (its methods say so) and is read as signflip-t.
     run["settings"]["min_step_gain"] = 0.01
     run["methods"]["selection"] = run["methods"]["selection"].replace(
-        "largest mean improvement (each fold's clipped at 3 times the candidate's median "
-        "absolute improvement)", "largest studentised mean improvement")
+        "largest pooled improvement (each fold's improvement clipped at 3 times the "
+        "candidate's median absolute improvement, then weighted by the fold's held-out "
+        "spikes)", "largest studentised mean improvement")
     (other / "run.json").write_text(json.dumps(run))
     with pytest.raises(SettingsError, match="correction: signflip in .* and signflip-t in "):
         compare_recordings(root / "a", other, matching=root / "match.csv")

@@ -15,15 +15,17 @@ it had been the only one. Four step tests (``correction``):
   statistic (the max-statistic method of Westfall & Young 1993, *Resampling-Based Multiple
   Testing*, Wiley, ch. 2 and 4). The statistic of candidate c is the mean of its fold-wise
   differences ``d_c = score(c) - score(current)`` (bits per spike), each clipped at three
-  times the candidate's median absolute difference (:func:`max_signflip_p`). Under the null hypothesis that no
-  candidate improves on the current model the differences of a fold are symmetric about zero
-  jointly, so flipping the sign of whole folds (all candidates together, which keeps their
-  correlation) leaves their distribution unchanged; the p-value of the best candidate is the
-  share of the 2^k sign vectors whose largest statistic reaches the observed one of that
-  candidate (enumerated exactly for k <= :data:`EXACT_MAX_FOLDS`, else a seeded sample). It is
-  tested at ``alpha`` and the reported step p-value is this adjusted one. The correlation of
-  the candidates (they share the folds and the current model) makes it less strict than
-  Bonferroni at the same false-label rate.
+  times the candidate's median absolute difference and, when the spikes held out in each
+  fold are given (``fold_weights``; :func:`encodex.compare.cell.analyse_cell` always gives
+  them), weighted by them: the pooled improvement (:func:`max_signflip_p`). Under the null
+  hypothesis that no candidate improves on the current model the differences of a fold are
+  symmetric about zero jointly, so flipping the sign of whole folds (all candidates
+  together, which keeps their correlation) leaves their distribution unchanged; the p-value
+  of the best candidate is the share of the 2^k sign vectors whose largest statistic reaches
+  the observed one of that candidate (enumerated exactly for k <= :data:`EXACT_MAX_FOLDS`,
+  else a seeded sample). It is tested at ``alpha`` and the reported step p-value is this
+  adjusted one. The correlation of the candidates (they share the folds and the current
+  model) makes it less strict than Bonferroni at the same false-label rate.
 * ``"signflip-t"``: the same test with each candidate's mean studentised (its t statistic);
   the default until sparse cells showed it pays for every candidate (see
   :func:`max_signflip_p`).
@@ -288,8 +290,9 @@ def describe_test(correction: str, alpha: float, k: int | None = None) -> str:
         elif k is not None:
             how = (f", the observed and {SIGNFLIP_SAMPLES} random sign vectors of the {k} "
                    f"folds (fixed seed)")
-        what = ("mean improvement (each fold's clipped at "
-                f"{CLIP_MEDIANS:g} times the candidate's median absolute improvement)"
+        what = ("pooled improvement (each fold's improvement clipped at "
+                f"{CLIP_MEDIANS:g} times the candidate's median absolute improvement, then "
+                "weighted by the fold's held-out spikes)"
                 if correction == "signflip" else "studentised mean improvement")
         return (f"exact sign-flip randomisation test of the largest {what} "
                 "among the candidates of the step, folds flipped for all "

@@ -66,6 +66,8 @@ REFERENCES: dict[str, str] = {
                              "rescaling theorem: determining goodness of fit for discrete time "
                              "statistical models of neural spiking. Neural Computation "
                              "22:2477-2506.",
+    "Huber 1964": "Huber, P. J. (1964). Robust estimation of a location parameter. Annals "
+                  "of Mathematical Statistics 35, 73-101.",
     "Westfall & Young 1993": "Westfall, P. H. & Young, S. S. (1993). Resampling-Based "
                              "Multiple Testing: Examples and Methods for p-Value Adjustment. "
                              "Wiley.",
@@ -532,10 +534,11 @@ def _selection(m: MethodsInput):
             f"across folds was significant ")
     cites = ("Hardcastle et al. 2017",)
     if corr in ("signflip", "signflip-t"):
-        what = ("mean fold-wise improvement in bits per spike, each fold's improvement "
-                f"clipped at {CLIP_MEDIANS:g} times the candidate's median absolute "
-                "improvement (a Huber-type bound that sign flips leave unchanged, so the "
-                "test stays exact)" if corr == "signflip" else
+        what = ("pooled improvement in bits per spike: each fold's improvement clipped at "
+                f"{CLIP_MEDIANS:g} times the candidate's median absolute improvement (a "
+                "Huber-type bound that sign flips leave unchanged, so the test stays exact; "
+                "Huber 1964) and weighted by the spikes held out in the fold"
+                if corr == "signflip" else
                 "studentised mean fold-wise improvement")
         exact = bool(k) and n_sign_vectors(int(k)) == 2 ** int(k)
         how = ("enumerated by flipping" if exact or not k else
@@ -544,11 +547,12 @@ def _selection(m: MethodsInput):
                f"flipping")
         text += (f"by an exact sign-flip randomisation test at alpha = {_num(alpha)}: the "
                  f"statistic was the largest {what} among the step's candidates, and its "
-                 f"null distribution was {how} the signs of the folds' differences for all candidates together, so that the "
-                 f"p-value is adjusted for the number of candidates while keeping their "
-                 f"correlation (max-statistic; Westfall & Young 1993)")
-        cites += ("Westfall & Young 1993",) + (() if exact or not k else
-                                               ("Phipson & Smyth 2010",))
+                 f"null distribution was {how} the signs of the folds' differences for all "
+                 f"candidates together, so that the p-value is adjusted for the number of "
+                 f"candidates while keeping their correlation (max-statistic; Westfall & "
+                 f"Young 1993)")
+        cites += ("Westfall & Young 1993",) + (("Huber 1964",) if corr == "signflip" else ())
+        cites += (() if exact or not k else ("Phipson & Smyth 2010",))
     elif corr == "bonferroni":
         text += (f"by a one-sided Wilcoxon signed-rank test (Wilcoxon 1945) at level alpha / m "
                  f"with alpha = {_num(alpha)} and m the number of candidates of the step "
