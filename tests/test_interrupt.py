@@ -38,9 +38,12 @@ def data(tmp_path_factory):
 
 def _start(npz: Path, out: Path, extra=()) -> subprocess.Popen:
     env = dict(os.environ, PYTHONUNBUFFERED="1")
+    # A shell's background jobs (`make test &`) start with SIGINT ignored, and Python keeps an
+    # inherited SIG_IGN; the run must see Ctrl-C as a user's terminal delivers it.
     return subprocess.Popen([sys.executable, "-m", "encodex", "fit", str(npz), "--out",
                              str(out), *ARGS, *extra], stdout=subprocess.PIPE,
-                            stderr=subprocess.PIPE, text=True, env=env)
+                            stderr=subprocess.PIPE, text=True, env=env,
+                            preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
 
 
 def _wait_for_first_unit(proc: subprocess.Popen, out: Path, timeout_s: float = 120.0) -> int:
