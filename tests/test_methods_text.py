@@ -118,8 +118,8 @@ def _check(run, level=0.95):
     signflip = st["correction"] in ("signflip", "signflip-t")
     assert ("sign-flip" in s["alpha"]) == signflip
     assert ("studentised mean" in s["alpha"]) == (st["correction"] == "signflip-t")
-    assert ("largest pooled improvement in bits per spike: each fold's improvement clipped "
-            "at 3 times" in s["alpha"]) == (st["correction"] == "signflip")
+    assert ("the largest pooled improvement in bits per spike (each fold's improvement "
+            "clipped at 3 times" in s["alpha"]) == (st["correction"] == "signflip")
     assert ("weighted by the spikes held out" in s["alpha"]) == (st["correction"]
                                                                   == "signflip")
     sampled = signflip and k > 16

@@ -534,10 +534,10 @@ def _selection(m: MethodsInput):
             f"across folds was significant ")
     cites = ("Hardcastle et al. 2017",)
     if corr in ("signflip", "signflip-t"):
-        what = ("pooled improvement in bits per spike: each fold's improvement clipped at "
-                f"{CLIP_MEDIANS:g} times the candidate's median absolute improvement (a "
-                "Huber-type bound that sign flips leave unchanged, so the test stays exact; "
-                "Huber 1964) and weighted by the spikes held out in the fold"
+        what = ("pooled improvement in bits per spike (each fold's improvement clipped at "
+                f"{CLIP_MEDIANS:g} times the candidate's median absolute improvement, a "
+                "Huber-type bound that sign flips leave unchanged so that the test stays "
+                "exact, Huber 1964, then weighted by the spikes held out in the fold)"
                 if corr == "signflip" else
                 "studentised mean fold-wise improvement")
         exact = bool(k) and n_sign_vectors(int(k)) == 2 ** int(k)
@@ -546,7 +546,7 @@ def _selection(m: MethodsInput):
                f"vectors (fixed seed; the observed one counted, Phipson & Smyth 2010), "
                f"flipping")
         text += (f"by an exact sign-flip randomisation test at alpha = {_num(alpha)}: the "
-                 f"statistic was the largest {what} among the step's candidates, and its "
+                 f"statistic was, among the step's candidates, the largest {what}, and its "
                  f"null distribution was {how} the signs of the folds' differences for all "
                  f"candidates together, so that the p-value is adjusted for the number of "
                  f"candidates while keeping their correlation (max-statistic; Westfall & "
