@@ -160,7 +160,8 @@ def add_fit_command(subparsers) -> None:
     p.add_argument("--correction", choices=CORRECTIONS,
                    default=CORRECTIONS[0],
                    help="step test: signflip (default; exact sign-flip test of the largest "
-                        "mean improvement among the candidates, over the folds, at alpha), "
+                        "pooled improvement among the candidates: fold-wise gains clipped at "
+                        "3x their median, weighted by held-out spikes; at alpha), "
                         "signflip-t (the same with studentised means), bonferroni (Wilcoxon at "
                         "alpha/m for m candidates) or none (Wilcoxon at alpha)")
     p.add_argument("--fold-fits", choices=("one-step", "refit"), default="one-step",

@@ -290,7 +290,7 @@ def register_planning_command(subparsers) -> None:
     p.add_argument("--no-drift", dest="drift", action="store_false",
                    help="plan for runs without the slow-drift term")
     p.add_argument("--correction", choices=CORRECTIONS,
-                   default="signflip", help="step test of the runs planned for")
+                   default=CORRECTIONS[0], help="step test of the runs planned for")
     p.add_argument("--jobs", type=_positive_int, default=1, metavar="N")
     p.set_defaults(func=_run_plan)
 

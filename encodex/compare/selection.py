@@ -409,9 +409,9 @@ def select_variables(
     exhaustive : bool
         Score every subset before deciding (same rule, whole lattice kept).
     correction : {"signflip", "signflip-t", "bonferroni", "none"}
-        Step test (module docstring): sign-flip max-statistic test of the mean (default) or
-        studentised mean improvement at ``alpha``, Wilcoxon at ``alpha / m``, or Wilcoxon at
-        ``alpha``.
+        Step test (module docstring): sign-flip max-statistic test of the pooled clipped
+        (default) or studentised mean improvement at ``alpha``, Wilcoxon at ``alpha / m``,
+        or Wilcoxon at ``alpha``.
     min_step_gain : float
         A step is also refused unless its mean improvement is at least this fraction of the
         current model's mean held-out score (module docstring; 0 switches the floor off).

@@ -713,8 +713,10 @@ cells.csv   one row per unit and environment:
                   "+" the step's best candidate was added, "x" it was rejected; p is the
                   step test's p-value across folds (run.json settings.correction:
                   "signflip", the default, an exact sign-flip test of the largest
-                  candidate's mean fold difference, candidates flipped together, adjusted
-                  for the step's candidates, added when p <= level = alpha; "signflip-t",
+                  candidate's pooled fold difference (each fold's clipped at 3 times the
+                  candidate's median, weighted by its spikes), candidates flipped
+                  together, adjusted for the step's candidates, added when p <= level =
+                  alpha; "signflip-t",
                   the same with studentised means; "bonferroni",
                   one-sided Wilcoxon signed-rank p against alpha / number of candidates,
                   added when p < level; "none", Wilcoxon against alpha). The smallest

@@ -43,8 +43,9 @@ class RunSettings:
         Score every subset of the variables (same decision rule as forward selection).
     correction : str
         Step test of forward selection (:mod:`encodex.compare.selection`): "signflip"
-        (default), an exact sign-flip max-statistic test of the mean improvements of the
-        step's candidates at alpha; "signflip-t": the same with studentised means;
+        (default), an exact sign-flip max-statistic test of the pooled improvements of
+        the step's candidates (clipped fold-wise gains weighted by held-out spikes) at
+        alpha; "signflip-t": the same with studentised means;
         "bonferroni": one-sided Wilcoxon test of the best of m candidates at alpha / m;
         "none": Wilcoxon at alpha.
     shuffles : int

@@ -174,7 +174,8 @@ def setting(run: dict, key: str, default=None):
     """Look a setting up in ``run.json``: under ``settings`` first, then at the top level.
 
     ``correction`` is read as the test that was run: runs written before the sign-flip test's
-    statistic became the mean recorded "signflip" for the studentised test, and say so in
+    statistic became the pooled clipped improvement recorded "signflip" for the studentised
+    test, and say so in
     their methods (``methods.selection``); they read as "signflip-t".
     """
     value = _raw_setting(run, key, default)
