@@ -279,6 +279,10 @@ def _add_model_size_options(p) -> None:
                    help="basis functions of a variable (position: per axis), e.g. speed=8; "
                         "repeatable (defaults: " + ", ".join(
                             f"{k} {v}" for k, v in DEFAULT_SIZES.items()) + ")")
+    g.add_argument("--knots", choices=("quantile", "even"), default="quantile",
+                   help="knot placement: quantile (default; the knots of distance and time "
+                        "since trial start sit at quantiles of their values, dense early in "
+                        "trials where most bins lie) or even (evenly spaced for every variable)")
     g.add_argument("--chunks-per-fold", type=_positive_int, default=DEFAULT_CHUNKS_PER_FOLD,
                    metavar="N", help=f"contiguous chunks of time per fold (default "
                                      f"{DEFAULT_CHUNKS_PER_FOLD})")
@@ -299,6 +303,7 @@ def _run_fit(args) -> int:
     if args.variables is not None:
         settings["variables"] = args.variables
     settings["chunks_per_fold"] = args.chunks_per_fold
+    settings["knots"] = args.knots
     if args.basis_size:
         sizes = dict(args.basis_size)
         if len(sizes) != len(args.basis_size):

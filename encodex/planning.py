@@ -127,7 +127,7 @@ def _length_work(session, spec: PlanSpec, settings, minutes: float):
     work = EnvironmentWork(spec.environment, token, cov, tuple(spec.variables),
                            float(session.bin_size), fold, settings.folds, settings.basis_sizes,
                            kinds, None, None, "", gram_precision=settings.gram_precision,
-                           clock=clock if settings.drift else None)
+                           clock=clock if settings.drift else None, knots=settings.knots)
     return work, clock, repeated
 
 

@@ -44,6 +44,17 @@ def test_interval_basis_equals_scipy_design_matrix(n_basis, degree):
     np.testing.assert_allclose(ours, ref, atol=1e-12, rtol=0)
 
 
+# Source: scipy.interpolate.BSpline.design_matrix with the same uneven knot vector (knots at
+# quantiles of skewed values, as default_bases places them for distance and time); 1e-12.
+def test_interval_basis_with_quantile_knots_equals_scipy_design_matrix():
+    x = np.random.default_rng(5).exponential(2.0, 3000)
+    basis = default_bases({"distance": x})["distance"]
+    assert basis.breaks and np.ptp(np.diff(basis.breaks)) > 1.0  # really uneven
+    ours = basis.evaluate(x).toarray()
+    ref = BSpline.design_matrix(x, basis.knots, 3).toarray()
+    np.testing.assert_allclose(ours, ref, atol=1e-12, rtol=0)
+
+
 # Source: scipy.interpolate.BSpline.design_matrix on the extended periodic knots, columns
 # folded modulo n (definition of a periodic B-spline basis, de Boor 2001, ch. IX).
 def test_circular_basis_is_periodic_and_sums_to_one():

@@ -29,6 +29,7 @@ def test_fit_writes_folder_resumes_and_refuses_other_settings(files, tmp_path, c
     assert len(cells) == 3 and (out / "models.csv").exists()
     run = json.loads((out / "run.json").read_text())
     assert run["settings"]["variables"] == ["heading", "speed"]
+    assert run["settings"]["knots"] == "quantile"
     assert run["settings"]["bin_size"] == 0.1
     assert run["input"].endswith(".nwb")
 
@@ -45,6 +46,9 @@ def test_fit_writes_folder_resumes_and_refuses_other_settings(files, tmp_path, c
     assert code == 2
     assert len(err.splitlines()) == 1 and "other settings" in err and "min_spikes" in err
     assert "--overwrite" in err
+    code = main(["fit", str(files["nwb"]), "--out", str(out), *ARGS, "--knots", "even"])
+    err = capsys.readouterr().err.strip()
+    assert code == 2 and "other settings" in err and "knots" in err
 
 
 def test_npz_bundle_gives_same_results_as_nwb(files, tmp_path):

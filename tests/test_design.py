@@ -5,7 +5,7 @@ import pytest
 
 from encodex.design import (CircularBasis, IntervalBasis, PlanarBasis, build_design,
                             default_bases)
-from encodex.design.bsplines import difference_matrix
+from encodex.design.bsplines import difference_matrix, quantile_breaks
 from encodex.errors import InputError, SettingsError
 
 
@@ -18,6 +18,40 @@ def test_interval_basis_clips_and_counts_out_of_range_values():
     np.testing.assert_allclose(dense[0], dense[1])
     np.testing.assert_allclose(dense[4], dense[3])
     np.testing.assert_allclose(dense.sum(axis=1), 1.0)
+
+
+def test_quantile_breaks_follow_the_values_and_never_tie():
+    rng = np.random.default_rng(3)
+    d = np.concatenate([np.zeros(4000), rng.exponential(2.0, 6000)])  # many ties at 0
+    b = quantile_breaks(d, 7)
+    assert b.size == 8 and b[0] == 0.0 and b[-1] == d.max()
+    even = d.max() / 7
+    assert np.all(np.diff(b) >= 0.1 * even * (1 - 1e-12))  # the even share keeps gaps open
+    # the breaks are the blend of the quantiles with even spacing
+    q = np.quantile(d, np.linspace(0, 1, 8))
+    np.testing.assert_allclose(b, 0.9 * q + 0.1 * np.linspace(0, d.max(), 8))
+    with pytest.raises(ValueError, match="distinct"):
+        quantile_breaks(np.ones(10), 3)
+
+
+def test_default_bases_put_trial_clock_knots_at_quantiles():
+    rng = np.random.default_rng(4)
+    cov = {"distance": rng.exponential(2.0, 5000), "time": rng.exponential(15.0, 5000),
+           "speed": rng.gamma(2.0, 0.1, 5000)}
+    bases = default_bases(cov)
+    for v in ("distance", "time"):
+        breaks = np.asarray(bases[v].breaks)
+        assert breaks.size == bases[v].n_basis - 2
+        np.testing.assert_array_equal(breaks, quantile_breaks(cov[v], bases[v].n_basis - 3))
+        block = bases[v].evaluate(cov[v]).toarray()
+        np.testing.assert_allclose(block.sum(axis=1), 1.0, atol=1e-12)
+        assert bases[v].describe()["breaks"] == list(bases[v].breaks)
+    assert bases["speed"].breaks == ()
+    assert all(b.breaks == () for b in default_bases(cov, knots="even").values())
+    with pytest.raises(SettingsError, match="knots must be one of"):
+        default_bases(cov, knots="uneven")
+    with pytest.raises(SettingsError, match="breaks must be"):
+        IntervalBasis(5, (0.0, 1.0), breaks=(0.0, 0.6, 0.5))
 
 
 def test_block_has_fixed_non_zeros_per_row():

@@ -47,6 +47,7 @@ def runs(tmp_path_factory):
                               alpha=0.01, min_step_gain=0.0),
         "studentised": _fit(one["npz"], variables=("speed", "heading"),
                             correction="signflip-t"),
+        "even_knots": _fit(one["npz"], variables=("distance", "time"), knots="even"),
     }
 
 
@@ -99,6 +100,15 @@ def _check(run, level=0.95):
     assert ("tensor product" in s["basis_sizes"]) == ("position" in analysed)
     assert ("periodic" in s["basis_sizes"]) == bool({"heading", "phase"} & analysed)
     assert "range of the variable observed" in s["basis_sizes"]
+    # knot placement: quantiles for the trial clocks only when the run placed them so (runs
+    # written before the setting existed have no "knots" and had even knots)
+    clocks = sorted({"distance", "time"} & analysed)
+    at_quantiles = st.get("knots", "even") == "quantile" and bool(clocks)
+    assert ("equally spaced quantiles" in s["basis_sizes"]) == at_quantiles
+    assert ("; knots were evenly spaced" in s["basis_sizes"]) == (not at_quantiles)
+    if at_quantiles:
+        clause = s["basis_sizes"].partition("interior knots of ")[2].partition(" (since")[0]
+        assert clause == " and ".join(clocks)
     # smoothness: the criterion and the optimiser, and how folds were fitted
     assert "restricted marginal likelihood" in s["fold_fits"]
     assert "Wood & Fasiolo 2017" in s["fold_fits"]
@@ -145,7 +155,7 @@ def _check(run, level=0.95):
 
 
 @pytest.mark.parametrize("name", ["nwb", "npz", "two_env_refit", "no_trials", "lfp", "user",
-                                  "no_correction", "studentised"])
+                                  "no_correction", "studentised", "even_knots"])
 def test_every_sentence_matches_run_json(runs, name):
     _check(runs[name])
     if name == "lfp":  # the paragraph of a phase-only run, printed for reading with -s
@@ -164,6 +174,15 @@ def test_specific_runs_say_what_differs(runs):
     assert "goal_distance" in _check(runs["user"])["user_variables"]
     assert "phase" in _check(runs["lfp"])["variables"]
     assert "environments" in _check(runs["two_env_refit"])
+
+
+def test_knot_placement_follows_the_run(runs):
+    quantile = _check(runs["nwb"])["basis_sizes"]
+    assert "interior knots of distance and time (since trial start" in quantile
+    assert "; knots were evenly spaced" in _check(runs["even_knots"])["basis_sizes"]
+    legacy = {**runs["nwb"], "settings": {k: v for k, v in runs["nwb"]["settings"].items()
+                                          if k != "knots"}}
+    assert "; knots were evenly spaced" in _check(legacy)["basis_sizes"]
 
 
 def test_table_level_reaches_the_paragraph(runs):

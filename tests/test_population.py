@@ -171,6 +171,8 @@ def test_bad_settings_are_one_line_errors(session):
         run_population(session, None, jobs=0)
     with pytest.raises(SettingsError, match="unknown setting"):
         run_population(session, None, fold=3)
+    with pytest.raises(SettingsError, match="use --knots quantile"):
+        run_population(session, None, knots="uneven")
     # 5 folds cannot give p < 0.05 / 2: refused instead of labelling every cell "none"
     with pytest.raises(SettingsError, match="use --folds 6 or more"):
         run_population(session, None, **{**SETTINGS, "folds": 5, "correction": "bonferroni"})

@@ -31,7 +31,8 @@ import numpy as np
 from encodex.errors import InputError, SettingsError
 from encodex.variables import KINDS, parse_kind
 
-from .bsplines import bspline_nonzeros, difference_penalty, uniform_knots
+from .bsplines import (breaks_knots, bspline_nonzeros, difference_penalty, quantile_breaks,
+                       uniform_knots)
 
 TWO_PI = 2.0 * np.pi
 
@@ -98,13 +99,19 @@ class IntervalBasis:
         Spline degree; 3 (cubic) by default.
     penalty_order : int
         Order of the difference penalty on adjacent coefficients; 2 by default (Eilers & Marx
-        1996), whose unpenalised functions are the straight lines.
+        1996), whose unpenalised functions are the straight lines (with ``breaks``: straight
+        in the knot-index scale).
+    breaks : tuple of float
+        Ends of the ``n_basis - degree`` knot intervals, from ``range[0]`` to ``range[1]``
+        (e.g. :func:`~encodex.design.bsplines.quantile_breaks`); empty (default) for evenly
+        spaced knots.
     """
 
     n_basis: int = 10
     range: tuple[float, float] = (0.0, 1.0)
     degree: int = 3
     penalty_order: int = 2
+    breaks: tuple[float, ...] = ()
 
     def __post_init__(self):
         lo, hi = self.range
@@ -117,6 +124,14 @@ class IntervalBasis:
             )
         if not 0 <= self.penalty_order < self.n_basis:
             raise SettingsError(f"penalty_order must lie in [0, n_basis); got {self.penalty_order}")
+        if self.breaks:
+            b = np.asarray(self.breaks, dtype=float)
+            if (b.size != self.n_basis - self.degree + 1 or not np.all(np.diff(b) > 0)
+                    or b[0] != lo or b[-1] != hi):
+                raise SettingsError(
+                    f"breaks must be {self.n_basis - self.degree + 1} increasing values from "
+                    f"{lo:g} to {hi:g} (got {list(self.breaks)}); leave them empty for evenly "
+                    "spaced knots")
 
     kind = "interval"
 
@@ -126,6 +141,8 @@ class IntervalBasis:
 
     @property
     def knots(self) -> np.ndarray:
+        if self.breaks:
+            return breaks_knots(np.asarray(self.breaks), self.degree)
         return uniform_knots(self.range[0], self.range[1], self.n_basis, self.degree)
 
     def evaluate(self, x: np.ndarray) -> Block:
@@ -148,8 +165,11 @@ class IntervalBasis:
         return np.linspace(self.range[0], self.range[1], n)
 
     def describe(self) -> dict:
-        return {"kind": self.kind, "n_basis": self.n_basis, "range": list(self.range),
-                "degree": self.degree, "penalty_order": self.penalty_order}
+        out = {"kind": self.kind, "n_basis": self.n_basis, "range": list(self.range),
+               "degree": self.degree, "penalty_order": self.penalty_order}
+        if self.breaks:
+            out["breaks"] = list(self.breaks)
+        return out
 
 
 @dataclass(frozen=True)
@@ -364,6 +384,19 @@ DEFAULT_SIZES: dict[str, int] = {"position": 10, "heading": 12, "speed": 8, "dis
                                  "time": 10, "phase": 12, "direction": 10}
 
 
+#: Variables whose knots sit at quantiles of their values by default (``knots="quantile"``).
+#: Distance and time since trial start restart at 0 every trial, so most bins lie early in
+#: trials and a long tail reaches far: evenly spaced knots over the whole range (0-17 m,
+#: 0-60 s in the simulated open field) were 2.4 m and 8.5 s apart, too coarse for fields
+#: 0.2-0.3 m or 1.5-2.5 s wide, and the misfit was taken up by the other clock (distance
+#: cells labelled distance+time: 10 of 32 at 60 min; 0 of 32 with knots at quantiles,
+#: benchmarks/RESULTS.md, "Knots of the trial clocks").
+QUANTILE_KNOT_VARIABLES = ("distance", "time")
+
+#: Knot placements of :func:`default_bases`.
+KNOT_PLACEMENTS = ("quantile", "even")
+
+
 def _data_range(values: np.ndarray, name: str) -> tuple[float, float]:
     v = np.asarray(values, dtype=float)
     v = v[np.isfinite(v)]
@@ -380,7 +413,8 @@ def _data_range(values: np.ndarray, name: str) -> tuple[float, float]:
 
 def default_bases(covariates: Mapping[str, np.ndarray], variables=None,
                   sizes: Mapping[str, int] | None = None,
-                  kinds: Mapping[str, str] | None = None) -> dict[str, Basis]:
+                  kinds: Mapping[str, str] | None = None,
+                  knots: str = "quantile") -> dict[str, Basis]:
     """Bases for the given variables, with ranges taken from the data.
 
     Parameters
@@ -395,7 +429,15 @@ def default_bases(covariates: Mapping[str, np.ndarray], variables=None,
     kinds : mapping, optional
         Basis kind (``"interval"``, ``"circular"``, ``"planar"``) of variables not in
         :data:`encodex.variables.KINDS` (user-defined variables).
+    knots : str
+        "quantile" (default): the interior knots of :data:`QUANTILE_KNOT_VARIABLES` (distance
+        and time since trial start) sit at quantiles of their values
+        (:func:`~encodex.design.bsplines.quantile_breaks`); "even": every basis has evenly
+        spaced knots.
     """
+    if knots not in KNOT_PLACEMENTS:
+        raise SettingsError(f"knots must be one of {', '.join(KNOT_PLACEMENTS)} (got "
+                            f"{knots!r}); use knots='quantile'")
     sizes = {**DEFAULT_SIZES, **(sizes or {})}
     kinds = {**KINDS, **(kinds or {})}
     variables = list(covariates) if variables is None else list(variables)
@@ -416,11 +458,12 @@ def default_bases(covariates: Mapping[str, np.ndarray], variables=None,
             track = _single_basis("position", covariates["position"], pos_kind, n)
             out[name] = DirectionCurveBasis(track)
             continue
-        out[name] = _single_basis(name, covariates[name], kind, n)
+        out[name] = _single_basis(name, covariates[name], kind, n,
+                                  knots == "quantile" and name in QUANTILE_KNOT_VARIABLES)
     return out
 
 
-def _single_basis(name, values, kind, n) -> Basis:
+def _single_basis(name, values, kind, n, at_quantiles: bool = False) -> Basis:
     v = np.asarray(values, dtype=float)
     base, period = parse_kind(kind)
     if base == "planar":
@@ -429,6 +472,10 @@ def _single_basis(name, values, kind, n) -> Basis:
     if base == "circular":
         return CircularBasis(n) if period is None else CircularBasis(n, period=period)
     if base == "interval":
-        return IntervalBasis(n, _data_range(v, name))
+        lo, hi = _data_range(v, name)
+        if at_quantiles:
+            breaks = quantile_breaks(v, n - IntervalBasis.degree)
+            return IntervalBasis(n, (lo, hi), breaks=tuple(float(b) for b in breaks))
+        return IntervalBasis(n, (lo, hi))
     raise SettingsError(f"unknown basis kind '{kind}' for '{name}'; use interval, "
                         "circular or planar")

@@ -9,6 +9,7 @@ References
 de Boor, C. (2001). *A Practical Guide to Splines*, revised ed., Springer (Cox-de Boor recursion).
 Eilers, P. H. C. & Marx, B. D. (1996). Flexible smoothing with B-splines and penalties.
 *Statistical Science* 11:89-121.
+Wood, S. N. (2017). *Generalized Additive Models: An Introduction with R*, 2nd ed., CRC Press.
 """
 
 from __future__ import annotations
@@ -27,6 +28,61 @@ def uniform_knots(lo: float, hi: float, n_basis: int, degree: int) -> np.ndarray
         raise ValueError(f"n_basis ({n_basis}) must exceed the degree ({degree})")
     h = (hi - lo) / n_intervals
     return lo + h * np.arange(-degree, n_intervals + degree + 1, dtype=float)
+
+
+def quantile_breaks(values: np.ndarray, n_intervals: int, even_share: float = 0.1) -> np.ndarray:
+    """Interval ends for B-splines dense where ``values`` are dense.
+
+    The ``n_intervals + 1`` breaks are equally spaced quantiles of ``values`` blended with
+    even spacing over their range, ``(1 - even_share) * quantile + even_share * even``: the
+    blend keeps every interval at least ``even_share`` times the even width long, so ties
+    (e.g. many zeros) never give empty intervals.
+
+    Parameters
+    ----------
+    values : ndarray
+        Observed values (non-finite values are ignored).
+    n_intervals : int
+        Number of knot intervals (``n_basis - degree``).
+    even_share : float
+        Weight of even spacing in the blend, in (0, 1].
+
+    Returns
+    -------
+    ndarray, shape (n_intervals + 1,)
+        Strictly increasing breaks from the smallest to the largest value.
+
+    Notes
+    -----
+    Knots placed evenly through the covariate's values (at its quantiles) are the usual
+    choice for regression splines (Wood 2017, ch. 5, cubic regression splines; cited from
+    memory); with a difference penalty on the coefficients (Eilers & Marx 1996) smoothness
+    is then measured on the knot-index (roughly quantile) scale.
+    """
+    v = np.asarray(values, dtype=float).ravel()
+    v = v[np.isfinite(v)]
+    if v.size == 0 or n_intervals < 1 or not 0 < even_share <= 1:
+        raise ValueError("quantile_breaks needs finite values, n_intervals >= 1 and "
+                         "0 < even_share <= 1")
+    lo, hi = float(v.min()), float(v.max())
+    if hi <= lo:
+        raise ValueError("quantile_breaks needs at least two distinct values")
+    share = np.linspace(0.0, 1.0, n_intervals + 1)
+    breaks = (1.0 - even_share) * np.quantile(v, share) + even_share * (lo + share * (hi - lo))
+    breaks[0], breaks[-1] = lo, hi
+    return breaks
+
+
+def breaks_knots(breaks: np.ndarray, degree: int) -> np.ndarray:
+    """Knot vector from interval ends, extended ``degree`` steps beyond each end.
+
+    The steps outside repeat the first and the last interval's width, as
+    :func:`uniform_knots` does for even spacing.
+    """
+    b = np.asarray(breaks, dtype=float)
+    steps = np.arange(1, degree + 1, dtype=float)
+    return np.concatenate([b[0] - (b[1] - b[0]) * steps[::-1], b,
+                           b[-1] + (b[-1] - b[-2]) * steps])
 
 
 def bspline_nonzeros(x: np.ndarray, knots: np.ndarray, degree: int) -> tuple[np.ndarray, np.ndarray]:

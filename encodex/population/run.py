@@ -251,7 +251,8 @@ def _environment_work(session, env_name: str, settings: RunSettings,
     clock = _drift_clock(session, k, rows, settings, variables, info)
     work = EnvironmentWork(env_name, token, cov, variables, float(session.bin_size), fold,
                            settings.folds, settings.basis_sizes, kinds, ex, ey, note,
-                           gram_precision=settings.gram_precision, clock=clock)
+                           gram_precision=settings.gram_precision, clock=clock,
+                           knots=settings.knots)
     return work, info
 
 

@@ -59,6 +59,11 @@ class RunSettings:
         default); ignored when a ready session is given.
     basis_sizes : tuple of (str, int) pairs
         Number of basis functions per variable (planar: per axis), overriding the defaults.
+    knots : str
+        "quantile" (default): the interior knots of distance and time since trial start sit
+        at quantiles of their values in the environment
+        (:data:`encodex.design.bases.QUANTILE_KNOT_VARIABLES`); "even": evenly spaced knots
+        for every variable (the only placement before this setting existed).
     ratemap_bin_m : float
         Side of the spatial bins of the occupancy map saved per unit, in metres.
     fold_fits : str
@@ -101,6 +106,7 @@ class RunSettings:
     min_spikes: int = 100
     bin_size: float | None = None
     basis_sizes: tuple[tuple[str, int], ...] = ()
+    knots: str = "quantile"
     ratemap_bin_m: float = 0.05
     fold_fits: str = "one-step"
     gram_precision: str = "double"
@@ -139,6 +145,9 @@ class RunSettings:
         if self.fold_fits not in ("refit", "one-step"):
             raise SettingsError(f"fold_fits must be 'refit' or 'one-step' (got "
                                 f"{self.fold_fits!r}); use --fold-fits refit")
+        if self.knots not in ("quantile", "even"):
+            raise SettingsError(f"knots must be 'quantile' or 'even' (got {self.knots!r}); "
+                                "use --knots quantile")
         if self.gram_precision not in ("single", "double"):
             raise SettingsError(f"gram_precision must be 'single' or 'double' (got "
                                 f"{self.gram_precision!r}); use --gram-precision double")

@@ -71,6 +71,8 @@ class EnvironmentWork:
         Why the environment cannot be analysed ("" when it can).
     gram_precision : str
         Arithmetic of the design's X'WX (:func:`encodex.design.build_design`).
+    knots : str
+        Knot placement of the bases (:func:`encodex.design.default_bases`).
     clock : ndarray or None
         Seconds since the environment's first bin, per usable bin: the covariate of the slow
         drift term (:mod:`encodex.design.drift`); None when the drift term is off.
@@ -90,6 +92,7 @@ class EnvironmentWork:
     note: str = ""
     gram_precision: str = "double"
     clock: np.ndarray | None = None
+    knots: str = "quantile"
 
     @property
     def n_rows(self) -> int:
@@ -155,7 +158,7 @@ def environment_design(env: EnvironmentWork):
     # a direction term is evaluated on the track position too (its factor-by-curve input)
     cov = {v: env.covariates[v] for v in set(env.variables) | ({"position"} & set(env.covariates))}
     bases = default_bases(cov, env.variables, sizes=dict(env.basis_sizes),
-                          kinds=dict(env.kinds))
+                          kinds=dict(env.kinds), knots=env.knots)
     if env.clock is not None:
         cov[DRIFT_TERM] = env.clock
         bases[DRIFT_TERM] = drift_basis(env.clock)

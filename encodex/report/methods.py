@@ -423,12 +423,28 @@ def _bases(m: MethodsInput):
         return None
     extent = (" (for position, the tracked extent on each axis)"
               if "position" in m.analysed and not isinstance(track, dict) else "")
+    try:
+        from encodex.design.bases import QUANTILE_KNOT_VARIABLES
+    except ImportError:  # pragma: no cover - design stage always present in a package
+        QUANTILE_KNOT_VARIABLES = ()
+    # Runs written before the knots setting existed had evenly spaced knots throughout.
+    clocks = [v for v in m.analysed if v in QUANTILE_KNOT_VARIABLES
+              and kinds.get(v, "interval") == "interval"]
+    placement = ""
+    if m.get("knots", "even") == "quantile" and clocks:
+        which = " and ".join(clocks)
+        placement = (f"; the interior knots of {which} (since trial start, restarting at every "
+                     "trial) sat at equally spaced quantiles of the observed values, blended "
+                     "one part in ten with even spacing, so that they are densest early in "
+                     "trials where most bins lie; all other knots were evenly spaced")
+    else:
+        placement = "; knots were evenly spaced"
     return Sentence(
         "Terms were penalised regression splines (P-splines; Eilers & Marx 1996) with a "
         "second-order difference penalty: " + "; ".join(parts) + ". The knots of each term "
         f"spanned the range of the variable observed in the environment's usable bins{extent}"
-        ", and each term was constrained to sum to zero over those bins (Wood 2017, sec. "
-        "5.4).", ("Eilers & Marx 1996", "Wood 2017"))
+        f"{placement}, and each term was constrained to sum to zero over those bins (Wood "
+        "2017, sec. 5.4).", ("Eilers & Marx 1996", "Wood 2017"))
 
 
 @register_sentence("drift")
