@@ -389,7 +389,7 @@ DEFAULT_SIZES: dict[str, int] = {"position": 10, "heading": 12, "speed": 8, "dis
 #: trials and a long tail reaches far: evenly spaced knots over the whole range (0-17 m,
 #: 0-60 s in the simulated open field) were 2.4 m and 8.5 s apart, too coarse for fields
 #: 0.2-0.3 m or 1.5-2.5 s wide, and the misfit was taken up by the other clock (distance
-#: cells labelled distance+time: 10 of 32 at 60 min; 0 of 32 with knots at quantiles,
+#: cells labelled distance+time: 10 of 30 at 60 min; 0 of 30 with knots at quantiles,
 #: benchmarks/RESULTS.md, "Knots of the trial clocks").
 QUANTILE_KNOT_VARIABLES = ("distance", "time")
 
