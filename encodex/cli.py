@@ -170,10 +170,11 @@ def add_fit_command(subparsers) -> None:
                         "fold's models fitted to its training bins with their own smoothness "
                         "selection (strict: held-out bins never touch the smoothing; about 4x "
                         "slower)")
-    p.add_argument("--gram-precision", choices=("single", "double"), default="double",
-                   help="arithmetic of the Hessian pieces X'WX: double (default) or single "
-                        "(float32 chunks summed in float64, about 1.5x faster X'WX; scores "
-                        "agree with double to about 1e-5 bits per spike)")
+    p.add_argument("--gram-precision", choices=("single", "double"), default="single",
+                   help="arithmetic of the Hessian pieces X'WX: single (default; float32 "
+                        "chunks summed in float64, about 1.5x faster X'WX, gradients and "
+                        "likelihoods in float64) or double (float64 throughout; scores agree "
+                        "with single to about 1e-5 bits per spike)")
     p.add_argument("--no-drift", dest="drift", action="store_false",
                    help="leave out the slow-drift term (a smooth of time on the environment's "
                         "clock in every model, on by default); the baseline is then the "

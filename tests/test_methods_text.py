@@ -44,7 +44,7 @@ def runs(tmp_path_factory):
                     load_options={"lfp": LFP, "phase_band": (6.0, 10.0)}),
         "user": _fit(user, variables=("speed", "goal_distance")),
         "no_correction": _fit(one["nwb"], variables=("speed", "heading"), correction="none",
-                              alpha=0.01, min_step_gain=0.0),
+                              alpha=0.01, min_step_gain=0.0, gram_precision="double"),
         "studentised": _fit(one["npz"], variables=("speed", "heading"),
                             correction="signflip-t"),
         "even_knots": _fit(one["npz"], variables=("distance", "time"), knots="even"),
@@ -139,6 +139,10 @@ def _check(run, level=0.95):
     assert ("65,535 random sign vectors" in s["alpha"]) == sampled
     assert ("Phipson & Smyth 2010" in s["alpha"]) == sampled
     assert f"fewer than {st['min_spikes']} spikes" in s["min_spikes"]
+    # arithmetic of the Hessian pieces: said only when it was single precision
+    assert ("gram_precision" in s) == (st.get("gram_precision") == "single")
+    if "gram_precision" in s:
+        assert "single-precision blocks summed in double precision" in s["gram_precision"]
     assert ("shuffles" in s) == bool(st["shuffles"])
     assert ("ratemap_bin_m" in s) == ("position" in analysed)
     if "ratemap_bin_m" in s:

@@ -57,5 +57,5 @@ def test_unknown_gram_precision_is_a_settings_error():
     with pytest.raises(SettingsError, match="gram_precision"):
         build_design({"speed": np.linspace(0, 1, 50)}, {"speed": IntervalBasis(6, (0.0, 1.0))},
                      gram_precision="half")
-    with pytest.raises(SettingsError, match="--gram-precision double"):
+    with pytest.raises(SettingsError, match="--gram-precision single"):
         RunSettings(gram_precision="quad")

@@ -76,13 +76,14 @@ class RunSettings:
         smoothness selection (strict, about four times slower). See
         :func:`encodex.compare.cell.cross_validate`.
     gram_precision : str
-        "double" (default): float64 throughout. "single": the Hessian pieces X'WX are formed
-        from float32 chunks summed in
-        float64 (1.5x faster X'WX, half its memory); gradients, objectives and scores stay
-        float64, so every fit converges to the same optimum.
+        "single" (default): the Hessian pieces X'WX are formed from float32 chunks summed in
+        float64 (1.5x faster X'WX, half its memory; the whole 300-unit job 1.17x faster with
+        the same labels, benchmarks/RESULTS.md); gradients, objectives and scores stay
+        float64, so every fit at given smoothing converges to the same optimum.
         ``reference_checks/test_single_precision_gram.py`` bounds the effect on
         coefficients, scores and labels (scores agree to about 1e-5 bits per spike, not exactly:
-        the smoothing parameters move with the Hessian's rounding).
+        the smoothing parameters move with the Hessian's rounding). "double": float64
+        throughout (the engine API's default, :func:`encodex.design.build_design`).
     drift : bool
         True (default): every model, the baseline included, holds a smooth of time on the
         environment's clock (:mod:`encodex.design.drift`), so the baseline is the drift-only
@@ -109,7 +110,7 @@ class RunSettings:
     knots: str = "quantile"
     ratemap_bin_m: float = 0.05
     fold_fits: str = "one-step"
-    gram_precision: str = "double"
+    gram_precision: str = "single"
     drift: bool = True
     min_step_gain: float = MIN_STEP_GAIN
 
@@ -150,7 +151,7 @@ class RunSettings:
                                 "use --knots quantile")
         if self.gram_precision not in ("single", "double"):
             raise SettingsError(f"gram_precision must be 'single' or 'double' (got "
-                                f"{self.gram_precision!r}); use --gram-precision double")
+                                f"{self.gram_precision!r}); use --gram-precision single")
         if not isinstance(self.drift, bool):
             raise SettingsError(f"drift must be True or False (got {self.drift!r})")
         if not (math.isfinite(self.min_shift_s) and self.min_shift_s >= 0):
