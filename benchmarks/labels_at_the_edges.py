@@ -47,10 +47,13 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import time
 from functools import lru_cache
 
 import numpy as np
+
+from encodex.population.settings import RunSettings
 
 #: Smoothing parameter of every penalty in the reference pipeline (fixed, not selected): a
 #: middle value of those LAML selects on simulated cells (3 for position, 23 for speed,
@@ -62,6 +65,11 @@ TUNED_TYPES = (("position",), ("heading",), ("speed",), ("distance",), ("time",)
                ("position", "heading"), ("position", "speed"), ("heading", "speed"),
                ("speed", "time"))
 
+
+#: Arithmetic of X'WX in every pipeline's design: the default of population runs, unless the
+#: environment variable ENCODEX_STUDY_GRAM_PRECISION says "single" or "double" (read by the
+#: workers too; the fifth run was made in double, before single became the default).
+GRAM_PRECISION = os.environ.get("ENCODEX_STUDY_GRAM_PRECISION", RunSettings().gram_precision)
 
 #: Time bin of the study, s (the run's default is 0.02; 0.05 s makes the study 2.5x cheaper
 #: and changes neither the smooths at these time scales nor the step test).
@@ -86,7 +94,8 @@ def scenario(duration_s: float, slowdown: float | None, seed: int):
     clock = t[rows] - t[np.flatnonzero(np.asarray(s.environment) == 0)[0]]
     bases = default_bases(cov, VARIABLES)
     bases[DRIFT_TERM] = drift_basis(clock)
-    design = build_design({**cov, DRIFT_TERM: clock}, bases)
+    # the arithmetic of X'WX that runs use by default (RunSettings; single since the fifth run)
+    design = build_design({**cov, DRIFT_TERM: clock}, bases, gram_precision=GRAM_PRECISION)
     folds = {k: chunked_folds(rows.size, k, 3, seed) for k in (10, 20)}
     contiguous = chunked_folds(rows.size, 10, 1, seed)
     return cov, clock, design, folds, contiguous, float(s.bin_size)
@@ -404,7 +413,6 @@ def main(argv=None):
     p.add_argument("--figure", default=None, help="PNG of the power curves and null rates")
     a = p.parse_args(argv)
 
-    import os
     import sys
 
     sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
