@@ -248,20 +248,6 @@ class Design:
             cache[key] = (order.astype(np.int64), indptr.astype(np.int64))
         return cache[key]
 
-    def _row_layout(self) -> tuple[np.ndarray, np.ndarray]:
-        """Every row's non-zeros (intercept included) as (values, columns in beta layout).
-
-        Built when a Gram plan is made and not kept (n x 37 values and columns, ~106 MB at
-        180,000 bins for the default design).
-        """
-        n = self.n_rows
-        vals = [np.ones((n, 1))]
-        cols = [np.zeros((n, 1), dtype=np.int32)]
-        for t in self.terms:
-            vals.append(t.block.values)
-            cols.append(t.block.columns + np.int32(self.beta_slices[t.name].start))
-        return np.hstack(vals), np.hstack(cols).astype(np.intp)
-
     @cached_property
     def _local_term(self) -> Term | None:
         """The term worth handling by row groups: the widest, if much wider than its support."""
@@ -561,7 +547,6 @@ class _GramPlan:
     def build(cls, design: "Design", groups: np.ndarray | None,
               dtype=np.float64) -> "_GramPlan":
         n = design.n_rows
-        vals, cols = design._row_layout()
         local = design._local_term
         g = np.zeros(n, dtype=np.int64) if groups is None else np.asarray(groups, dtype=np.int64)
         if local is None:
@@ -592,22 +577,28 @@ class _GramPlan:
         compact_of[other_cols] = 1 + q + np.arange(int(other_cols.sum()))
         other_beta = np.flatnonzero(other_cols)
         width = 1 + q + other_beta.size
-        v = vals[order]
-        c = cols[order]
-        chunk_cols = compact_of[c]
-        chunk_cols[:, 0] = 0
-        columns = []
+        # Filled one term at a time: the rows in every term's layout at once (n x 37 values
+        # and columns, and their reordered copies) took ~240 MB above the plan at 180,000
+        # bins, twice over when both workers start together.
+        by_row = np.zeros((width, order.size), dtype=dtype)
+        by_row[0] = 1.0
+        at = np.arange(order.size)[:, None]
+        for t in design.terms:
+            values = t.block.values[order]
+            if t is local:
+                # The local term's k-th non-zero of a row goes to slot 1 + k.
+                by_row[1:1 + q] = values.T
+            else:
+                cols = t.block.columns[order].astype(np.intp) + design.beta_slices[t.name].start
+                by_row[compact_of[cols], at] = values
+            del values
         if local is not None:
-            # Non-zeros of the local term sit at positions lo_pos .. lo_pos + q in each row.
-            lo_pos = 1 + sum(t.block.values.shape[1]
-                             for t in design.terms[:design.terms.index(local)])
-            chunk_cols[:, lo_pos:lo_pos + q] = 1 + np.arange(q)
-            for s0 in starts:
-                columns.append(np.concatenate([[0], c[s0, lo_pos:lo_pos + q], other_beta]))
+            # each run's local columns: those of its first row (all its rows share them)
+            local_cols = local.block.columns[order[starts]].astype(np.intp)
+            local_cols += design.beta_slices[local.name].start
+            columns = [np.concatenate([[0], c, other_beta]) for c in local_cols]
         else:
             full = np.concatenate([[0], other_beta]).astype(np.intp)
             columns = [full] * len(starts)
-        by_row = np.zeros((width, order.size), dtype=dtype)
-        by_row[chunk_cols, np.arange(order.size)[:, None]] = v
         return cls(order, starts, stops, group_ids, columns, by_row, width,
                    None if local is None else local.name, compact_of)
