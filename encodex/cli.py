@@ -17,7 +17,8 @@ from __future__ import annotations
 import argparse
 import sys
 
-from encodex.defaults import CORRECTIONS, DEFAULT_CHUNKS_PER_FOLD, DEFAULT_FOLDS, MIN_STEP_GAIN
+from encodex.defaults import (CORRECTIONS, DEFAULT_CHUNKS_PER_FOLD, DEFAULT_FOLDS, KNOT_PLACEMENTS,
+                              MIN_STEP_GAIN)
 from encodex.errors import EncodexError, SettingsError
 from encodex.report.options import (add_jobs_option, name_equals_count, non_negative_number,
                                     positive_number, resolve_jobs, whole_number)
@@ -280,7 +281,7 @@ def _add_model_size_options(p) -> None:
                    help="basis functions of a variable (position: per axis), e.g. speed=8; "
                         "repeatable (defaults: " + ", ".join(
                             f"{k} {v}" for k, v in DEFAULT_SIZES.items()) + ")")
-    g.add_argument("--knots", choices=("quantile", "even"), default="quantile",
+    g.add_argument("--knots", choices=KNOT_PLACEMENTS, default=KNOT_PLACEMENTS[0],
                    help="knot placement: quantile (default; the knots of distance and time "
                         "since trial start sit at quantiles of their values, dense early in "
                         "trials where most bins lie) or even (evenly spaced for every variable)")

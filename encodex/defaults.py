@@ -26,5 +26,10 @@ MIN_STEP_GAIN = 0.01
 #: and "none": one-sided Wilcoxon at alpha / m and at alpha.
 CORRECTIONS = ("signflip", "signflip-t", "bonferroni", "none")
 
+#: Knot placements of the bases; the first is the default ("quantile": distance and time since
+#: trial start get knots at quantiles of their values; "even": evenly spaced for every
+#: variable). See :data:`encodex.design.bases.QUANTILE_KNOT_VARIABLES`.
+KNOT_PLACEMENTS = ("quantile", "even")
+
 #: The step tests that are sign-flip randomisation tests (p-values compared with ``<=``).
 SIGNFLIP_TESTS = ("signflip", "signflip-t")

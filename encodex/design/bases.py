@@ -28,6 +28,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from encodex.defaults import KNOT_PLACEMENTS
 from encodex.errors import InputError, SettingsError
 from encodex.variables import KINDS, parse_kind
 
@@ -392,9 +393,6 @@ DEFAULT_SIZES: dict[str, int] = {"position": 10, "heading": 12, "speed": 8, "dis
 #: cells labelled distance+time: 10 of 30 at 60 min; 0 of 30 with knots at quantiles,
 #: benchmarks/RESULTS.md, "Knots of the trial clocks").
 QUANTILE_KNOT_VARIABLES = ("distance", "time")
-
-#: Knot placements of :func:`default_bases`.
-KNOT_PLACEMENTS = ("quantile", "even")
 
 
 def _data_range(values: np.ndarray, name: str) -> tuple[float, float]:

@@ -593,7 +593,7 @@ def run_population(input_or_session, out: str | Path | None = None, *, jobs: int
         ``alpha`` (0.05), ``correction`` ("signflip"), ``drift`` (True),
         ``exhaustive`` (False), ``shuffles`` (0), ``min_shift_s`` (20 s),
         ``min_spikes`` (100), ``bin_size`` (s), ``basis_sizes``, ``chunks_per_fold`` (3),
-        ``fold_fits`` ("one-step"), ``gram_precision`` ("single").
+        ``fold_fits`` ("one-step"), ``gram_precision`` ("single"), ``knots`` ("quantile").
 
     Returns
     -------

@@ -13,7 +13,7 @@ import math
 import numbers
 from dataclasses import asdict, dataclass, fields
 
-from encodex.defaults import (CORRECTIONS, DEFAULT_CHUNKS_PER_FOLD, DEFAULT_FOLDS,
+from encodex.defaults import (CORRECTIONS, DEFAULT_CHUNKS_PER_FOLD, DEFAULT_FOLDS, KNOT_PLACEMENTS,
                               MIN_STEP_GAIN)
 from encodex.errors import SettingsError
 from encodex.variables import VARIABLES, canonical_order
@@ -146,9 +146,9 @@ class RunSettings:
         if self.fold_fits not in ("refit", "one-step"):
             raise SettingsError(f"fold_fits must be 'refit' or 'one-step' (got "
                                 f"{self.fold_fits!r}); use --fold-fits refit")
-        if self.knots not in ("quantile", "even"):
-            raise SettingsError(f"knots must be 'quantile' or 'even' (got {self.knots!r}); "
-                                "use --knots quantile")
+        if self.knots not in KNOT_PLACEMENTS:
+            raise SettingsError(f"knots must be one of {', '.join(KNOT_PLACEMENTS)} (got "
+                                f"{self.knots!r}); use --knots {KNOT_PLACEMENTS[0]}")
         if self.gram_precision not in ("single", "double"):
             raise SettingsError(f"gram_precision must be 'single' or 'double' (got "
                                 f"{self.gram_precision!r}); use --gram-precision single")

@@ -430,7 +430,6 @@ def _bases(m: MethodsInput):
     # Runs written before the knots setting existed had evenly spaced knots throughout.
     clocks = [v for v in m.analysed if v in QUANTILE_KNOT_VARIABLES
               and kinds.get(v, "interval") == "interval"]
-    placement = ""
     if m.get("knots", "even") == "quantile" and clocks:
         which = " and ".join(clocks)
         placement = (f"; the interior knots of {which} (since trial start, restarting at every "
