@@ -50,7 +50,7 @@ def _load_options(args) -> dict:
     if args.drop_empty_units:
         opts["drop_empty_units"] = True
     for name, option in (("min_speed", "min_speed"), ("speed_smoothing_s", "speed_smoothing"),
-                         ("max_gap_s", "max_gap")):
+                         ("velocity_smoothing_s", "velocity_smoothing"), ("max_gap_s", "max_gap")):
         if getattr(args, option) is not None:
             opts[name] = getattr(args, option)
     paths = {role: getattr(args, f"nwb_{role}") for role in _NWB_OBJECTS
@@ -236,7 +236,8 @@ def _add_folder_options(p) -> None:
 
 def _add_tracking_options(p) -> None:
     """How the tracking becomes covariates (encodex.session.build_session)."""
-    from encodex.session import DEFAULT_MAX_GAP_S, DEFAULT_SPEED_SMOOTHING_S
+    from encodex.session import (DEFAULT_MAX_GAP_S, DEFAULT_SPEED_SMOOTHING_S,
+                                 DEFAULT_VELOCITY_SMOOTHING_S)
 
     g = p.add_argument_group("tracking")
     g.add_argument("--min-speed", type=non_negative_number("m/s"), default=None,
@@ -245,8 +246,13 @@ def _add_tracking_options(p) -> None:
                         "all)")
     g.add_argument("--speed-smoothing", type=non_negative_number("seconds"), default=None,
                    metavar="SECONDS",
-                   help="s.d. of the Gaussian smoothing of velocity in seconds (default "
+                   help="s.d. of the Gaussian smoothing of speed in seconds (default "
                         f"{DEFAULT_SPEED_SMOOTHING_S:g}; 0: none)")
+    g.add_argument("--velocity-smoothing", type=non_negative_number("seconds"), default=None,
+                   metavar="SECONDS",
+                   help="open field: s.d. of the Gaussian smoothing of velocity before its norm "
+                        f"is taken, in seconds (default {DEFAULT_VELOCITY_SMOOTHING_S:g}; 0: "
+                        "none)")
     g.add_argument("--max-gap", type=non_negative_number("seconds"), default=None,
                    metavar="SECONDS",
                    help="longest tracking gap bridged by interpolation in seconds; bins in "

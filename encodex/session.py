@@ -8,9 +8,16 @@ How each covariate is made (all on the bin grid, bin centres ``t0 + (k + 1/2) * 
 * position: tracked samples linearly interpolated to bin centres. Tracking gaps (runs of NaN
   samples, or missing samples) no longer than ``max_gap_s`` are bridged; bins inside longer
   gaps are masked (reason ``tracking_gap``).
-* speed: the velocity (central differences of position on the grid) is smoothed with a
-  Gaussian kernel of standard deviation ``speed_smoothing_s`` (normalised over the bins where
-  velocity is known), and speed is its norm, m/s. Smoothing the velocity rather than the
+* speed, in two stages (m/s): the velocity (central differences of position on the grid) is
+  smoothed with a Gaussian kernel of standard deviation ``velocity_smoothing_s``, which
+  averages out tracking jitter; its norm is then smoothed with a Gaussian kernel of standard
+  deviation ``speed_smoothing_s``. Both kernels are normalised over the bins where the value
+  is known. Why two stages: smoothing the velocity *vector* averages opposite directions
+  wherever the path turns, so the longer the vector kernel, the more a turning animal looks
+  slow; paths turn most at the walls, so that error is a function of position, and a speed
+  cell then looks as if it carried position too (measured in benchmarks/RESULTS.md: 0.2 s on
+  the vector read 30% slow within 2 cm of a wall and made 6 of 24 redrawn speed cells gain
+  position; 0.1 s then 0.2 s on the norm: 0 of 24). Smoothing the velocity rather than the
   position keeps a constant velocity exactly constant up to the edges of every tracked
   stretch.
 * heading: the file's head direction (compass), interpolated on the circle; with no compass,
@@ -49,6 +56,11 @@ DEFAULT_BIN_SIZE = 0.02
 #: otherwise read as 0.05-0.2 m/s of spurious speed when the animal sits still) while keeping
 #: the stop/run transitions of a rodent, which take about half a second or more.
 DEFAULT_SPEED_SMOOTHING_S = 0.2
+#: Default Gaussian standard deviation of the velocity smoothing before its norm is taken, s.
+#: Long enough to average a few frames of tracking jitter (its speed bias at rest: about
+#: 0.004 m/s at 1 mm of jitter, 0.02 m/s at 1 cm, measured at 50 Hz), short enough that a
+#: turning path keeps its speed (a turn at 2 rad/s reads 2% slow, against 8% at 0.2 s).
+DEFAULT_VELOCITY_SMOOTHING_S = 0.1
 #: Default longest tracking gap bridged by interpolation, s. Half a second is a couple of
 #: strides at running speed: the linear bridge stays within a few cm of the true path.
 DEFAULT_MAX_GAP_S = 0.5
@@ -471,19 +483,37 @@ def _smoothed_velocity(pos: np.ndarray, bin_size: float, sigma_s: float) -> np.n
         if b - a >= 2:
             vel[a:b] = np.gradient(pos[a:b], bin_size, axis=0)
         # single isolated bins keep NaN velocity: speed is undefined there
-    have = np.isfinite(vel[:, 0])
+    return _normalised_smooth(vel, bin_size, sigma_s)
+
+
+def _normalised_smooth(values: np.ndarray, bin_size: float, sigma_s: float) -> np.ndarray:
+    """Gaussian smoothing (s.d. ``sigma_s``, s) of the columns of ``values`` over known bins.
+
+    The kernel is normalised over the bins where the value is known (finite), so unknown bins
+    neither contribute nor get values; ``sigma_s <= 0`` returns the input.
+    """
     if sigma_s <= 0:
-        return vel
+        return values
+    flat = values.reshape(values.shape[0], -1)
+    have = np.isfinite(flat[:, 0])
     sigma_bins = sigma_s / bin_size
     w = gaussian_filter1d(have.astype(float), sigma_bins, mode="constant", truncate=4.0)
-    out = np.empty_like(vel)
-    filled = np.where(have[:, None], vel, 0.0)
-    for c in range(2):
+    out = np.empty_like(flat)
+    filled = np.where(have[:, None], flat, 0.0)
+    for c in range(flat.shape[1]):
         num = gaussian_filter1d(filled[:, c], sigma_bins, mode="constant", truncate=4.0)
         with np.errstate(invalid="ignore", divide="ignore"):
             out[:, c] = num / w
     out[~have] = np.nan
-    return out
+    return out.reshape(values.shape)
+
+
+def _two_stage_speed(pos: np.ndarray, bin_size: float, velocity_smoothing_s: float,
+                     speed_smoothing_s: float) -> np.ndarray:
+    """Speed (m/s): the norm of the velocity smoothed at ``velocity_smoothing_s``, smoothed
+    at ``speed_smoothing_s`` (see the module docstring for why two stages)."""
+    vel = _smoothed_velocity(pos, bin_size, velocity_smoothing_s)
+    return _normalised_smooth(np.hypot(vel[:, 0], vel[:, 1]), bin_size, speed_smoothing_s)
 
 
 def _assign_intervals(centres: np.ndarray, bounds: np.ndarray) -> np.ndarray:
@@ -554,7 +584,8 @@ def _bin_spikes(recording: Recording, t0: float, bin_size: float, n_bins: int):
     return counts, drop_before, drop_after
 
 
-def _check_settings(bin_size, speed_smoothing_s, max_gap_s, min_speed, heading_speed_threshold):
+def _check_settings(bin_size, speed_smoothing_s, max_gap_s, min_speed, heading_speed_threshold,
+                    velocity_smoothing_s=DEFAULT_VELOCITY_SMOOTHING_S):
     if not (np.isfinite(bin_size) and bin_size > 0):
         raise SettingsError(f"bin_size must be a positive number of seconds, got {bin_size}")
     if bin_size > 1.0:
@@ -565,6 +596,11 @@ def _check_settings(bin_size, speed_smoothing_s, max_gap_s, min_speed, heading_s
         raise SettingsError(
             f"speed_smoothing_s must be >= 0 s, got {speed_smoothing_s}; default "
             f"{DEFAULT_SPEED_SMOOTHING_S}"
+        )
+    if not (np.isfinite(velocity_smoothing_s) and velocity_smoothing_s >= 0):
+        raise SettingsError(
+            f"velocity_smoothing_s must be >= 0 s, got {velocity_smoothing_s}; default "
+            f"{DEFAULT_VELOCITY_SMOOTHING_S}"
         )
     if not (np.isfinite(max_gap_s) and max_gap_s >= 0):
         raise SettingsError(f"max_gap_s must be >= 0 s, got {max_gap_s}")
@@ -828,6 +864,7 @@ def build_session(
     heading_speed_threshold: float = DEFAULT_HEADING_SPEED_THRESHOLD,
     phase_band: tuple[float, float] = DEFAULT_PHASE_BAND,
     phase_order: int = 3,
+    velocity_smoothing_s: float | None = None,
     **track_options,
 ) -> Session:
     """Bin a recording on a regular grid and compute the behavioural covariates.
@@ -838,8 +875,10 @@ def build_session(
     bin_size : float
         Bin width, seconds (default 0.02).
     speed_smoothing_s : float
-        Standard deviation of the Gaussian kernel smoothing the velocity, seconds (default
-        0.2: removes tracking jitter, keeps stop/run transitions). 0 disables smoothing.
+        Standard deviation of the Gaussian kernel smoothing the speed (the norm of the
+        velocity), seconds (default 0.2: removes what jitter is left, keeps stop/run
+        transitions). On a track it smooths the velocity along the track. 0 disables it.
+        With no compass, heading is the direction of the velocity smoothed by this kernel.
     max_gap_s : float
         Longest tracking gap bridged by interpolation, seconds (default 0.5); bins inside
         longer gaps are masked.
@@ -854,6 +893,12 @@ def build_session(
         Bins must not span more than half a cycle of ``high``.
     phase_order : int
         Butterworth order of the band-pass filter (default 3).
+    velocity_smoothing_s : float, optional
+        Open field: standard deviation of the Gaussian kernel smoothing the velocity before
+        its norm is taken, seconds (default 0.1; see the module docstring). 0 disables it;
+        ``velocity_smoothing_s=0.2, speed_smoothing_s=0`` gives the one-stage speed of
+        encodex before two-stage speed. Refused on a track, whose velocity is
+        one-dimensional (``speed_smoothing_s`` smooths it).
     **track_options
         For a recording on a track (``recording.track`` set, or a ``track=TrackLayout``
         here to project 2-D tracking onto it): options of
@@ -873,8 +918,15 @@ def build_session(
     encodex.errors.InputError
         When the recording is shorter than one bin.
     """
-    _check_settings(bin_size, speed_smoothing_s, max_gap_s, min_speed, heading_speed_threshold)
-    if recording.track is not None or track_options:
+    is_track = recording.track is not None or bool(track_options)
+    if is_track and velocity_smoothing_s is not None:
+        raise SettingsError("velocity_smoothing_s applies to open-field tracking; on a track the "
+                            "velocity is one-dimensional: set speed_smoothing_s instead")
+    if velocity_smoothing_s is None:
+        velocity_smoothing_s = DEFAULT_VELOCITY_SMOOTHING_S
+    _check_settings(bin_size, speed_smoothing_s, max_gap_s, min_speed, heading_speed_threshold,
+                    velocity_smoothing_s)
+    if is_track:
         from encodex.track_session import build_track_session
 
         return build_track_session(
@@ -884,8 +936,8 @@ def build_session(
     t0, n_bins, centres = _bin_grid(recording.timestamps, bin_size)
     tracking = _binned_position(recording.timestamps, recording.position, centres, max_gap_s)
     pos, pos_unknown = tracking.position, tracking.unknown
-    vel = _smoothed_velocity(pos, bin_size, speed_smoothing_s)
-    speed = np.hypot(vel[:, 0], vel[:, 1])
+    vel = _smoothed_velocity(pos, bin_size, speed_smoothing_s)  # its direction: heading
+    speed = _two_stage_speed(pos, bin_size, velocity_smoothing_s, speed_smoothing_s)
     heading, heading_undefined, heading_source = _binned_heading(
         recording, centres, vel, speed, pos_unknown, max_gap_s, heading_speed_threshold)
     # speed unknown (isolated single bins) also makes movement heading unknown
@@ -928,6 +980,7 @@ def build_session(
                                        has_trials),
         "settings": _grid_settings(
             bin_size, speed_smoothing_s, max_gap_s, min_speed,
+            velocity_smoothing_s=float(velocity_smoothing_s),
             heading_speed_threshold=float(heading_speed_threshold)),
     }
     _note_extra_variables(summary, phase_info, phase_band, user_kinds, extra_cov)

@@ -147,6 +147,7 @@ def test_refused_run_writes_nothing_and_replaces_an_empty_checkpoint(work):
          "data_fingerprint": "0"}))
     res = encodex("fit", "two.nwb", "--out", "B", *FIT, "--jobs", "1",
                   "--min-speed", "0.04", "--speed-smoothing", "0.3", "--max-gap", "1",
+                  "--velocity-smoothing", "0.05",
                   "--nwb-position", "processing/tracking/Position/led",
                   "--nwb-epochs", "intervals/epochs", "--basis-size", "speed=6", "--basis-size",
                   "heading=8", "--chunks-per-fold", "2", cwd=work)
@@ -155,8 +156,8 @@ def test_refused_run_writes_nothing_and_replaces_an_empty_checkpoint(work):
     assert run["settings"]["basis_sizes"] == {"heading": 8, "speed": 6}
     assert run["settings"]["chunks_per_fold"] == 2
     built = run["session"]["summary"]["settings"]
-    assert (built["min_speed"], built["speed_smoothing_s"], built["max_gap_s"]) == (0.04, 0.3,
-                                                                                   1.0)
+    assert (built["min_speed"], built["speed_smoothing_s"], built["max_gap_s"],
+            built["velocity_smoothing_s"]) == (0.04, 0.3, 1.0, 0.05)
     assert run["load_options"]["object_paths"] == {
         "position": "processing/tracking/Position/led", "epochs": "intervals/epochs"}
     objects = run["session"]["summary"]["objects"]

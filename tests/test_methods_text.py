@@ -72,6 +72,11 @@ def _check(run, level=0.95):
     assert ("speed" in s) == bool({"speed", "heading", "distance"} & analysed)
     if "speed" in s:
         assert f"{summ['settings']['speed_smoothing_s']:g} s standard deviation" in s["speed"]
+        vs = summ["settings"].get("velocity_smoothing_s")
+        # two stages where the session made them (open field), one where it did not (track)
+        assert ("two stages" in s["speed"]) == bool(vs and summ["settings"]["speed_smoothing_s"])
+        if vs:
+            assert f"{vs:g} s standard deviation" in s["speed"]
     assert ("heading" in s) == ("heading" in analysed)
     if "heading" in s:
         assert ("recorded in the file" in s["heading"]) == (summ["heading_source"] == "compass")

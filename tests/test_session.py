@@ -197,7 +197,7 @@ def test_bad_settings_and_too_short():
     t, pos = _line(duration=2.0)
     rec = make_recording(t, pos, {"a": [1.0]})
     for kw in ({"bin_size": 0}, {"bin_size": -0.1}, {"bin_size": 5.0},
-               {"speed_smoothing_s": -1}, {"max_gap_s": np.nan}, {"min_speed": -0.1},
+               {"speed_smoothing_s": -1}, {"velocity_smoothing_s": np.inf}, {"max_gap_s": np.nan}, {"min_speed": -0.1},
                {"heading_speed_threshold": -1}):
         with pytest.raises(SettingsError) as exc:
             build_session(rec, **kw)

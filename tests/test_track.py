@@ -70,6 +70,9 @@ def test_shuttle_laps_directions_and_no_heading():
     assert "heading" in s.unavailable_variables(0) and "heading" not in s.covariates
     assert s.summary["track"]["trials_from"] == "laps"
     assert s.available_variables(0) == ("position", "speed", "distance", "time", "direction")
+    # the open field's two-stage speed has no meaning on a one-dimensional velocity
+    with pytest.raises(SettingsError, match="velocity_smoothing_s applies to open-field"):
+        build_session(rec, velocity_smoothing_s=0.1)
 
 
 def test_circular_laps_and_periodic_position():

@@ -289,8 +289,20 @@ def _speed(m: MethodsInput):
     sd = m.session_settings.get("speed_smoothing_s")
     if sd is None or not ({"speed", "distance", "heading"} & set(m.analysed)):
         return None
-    text = (f"Running speed was the norm of the velocity (central differences of position) "
-            f"smoothed with a Gaussian kernel of {_num(sd)} s standard deviation")
+    vs = m.session_settings.get("velocity_smoothing_s")
+    if vs is None or not sd:
+        # one stage: runs before two-stage speed, a track, or no smoothing of the norm
+        vsd = sd if vs is None else vs
+        text = (f"Running speed was the norm of the velocity (central differences of "
+                f"position) smoothed with a Gaussian kernel of {_num(vsd)} s standard "
+                f"deviation")
+    else:
+        first = (f"the velocity (central differences of position) smoothed with a Gaussian "
+                 f"kernel of {_num(vs)} s standard deviation" if vs
+                 else "the velocity (central differences of position)")
+        text = (f"Running speed was the norm of {first}, itself smoothed with a Gaussian "
+                f"kernel of {_num(sd)} s standard deviation (two stages, so that turns, most "
+                f"of them at the walls, do not read as slowing down)")
     ms = m.session_settings.get("min_speed")
     if ms is not None:
         text += f"; bins slower than {_num(ms)} m/s were excluded"

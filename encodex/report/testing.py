@@ -148,7 +148,7 @@ def write_example_run(
         "input": "example.nwb",
         "session": {"bin_size_s": 0.02, "environments": envs,
                     "summary": {"heading_source": "compass", "settings": {
-                        "speed_smoothing_s": 0.2, "max_gap_s": 0.5,
+                        "speed_smoothing_s": 0.2, "velocity_smoothing_s": 0.1, "max_gap_s": 0.5,
                         "heading_speed_threshold": 0.03}, "masked_bins": {"tracking_gap": 10}}},
         "environments": {e: {"variables": list(VARIABLES), "unavailable": {}} for e in envs},
         "timings": {"total_s": 1.0},
