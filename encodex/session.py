@@ -15,9 +15,9 @@ How each covariate is made (all on the bin grid, bin centres ``t0 + (k + 1/2) * 
   is known. Why two stages: smoothing the velocity *vector* averages opposite directions
   wherever the path turns, so the longer the vector kernel, the more a turning animal looks
   slow; paths turn most at the walls, so that error is a function of position, and a speed
-  cell then looks as if it carried position too (measured in benchmarks/RESULTS.md: 0.2 s on
-  the vector read 30% slow within 2 cm of a wall and made 6 of 24 redrawn speed cells gain
-  position; 0.1 s then 0.2 s on the norm: 0 of 24). Smoothing the velocity rather than the
+  cell then looks as if it carried position too (benchmarks/speed_at_walls.py: 0.2 s on the
+  vector read 33% slow within 2 cm of a wall and 13 of 60 redrawn speed cells gained
+  position; 0.1 s then 0.2 s on the norm: 12% and 0 of 60). Smoothing the velocity rather than the
   position keeps a constant velocity exactly constant up to the edges of every tracked
   stretch.
 * heading: the file's head direction (compass), interpolated on the circle; with no compass,

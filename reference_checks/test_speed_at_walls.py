@@ -8,7 +8,8 @@ Why this is checked: smoothing the velocity *vector* over 0.2 s averages opposit
 wherever the path turns, and a path turns at every wall: the one-stage speed of encodex
 before two-stage speed read about 30% slow within 2 cm of a wall and 3% slow in the middle
 (measured here; benchmarks/RESULTS.md, "Speed cells gaining position"). Position then
-explains part of a speed cell's rate, and 6 of 24 redrawn speed cells gained position. The
+explains part of a speed cell's rate, and 13 of 60 redrawn speed cells gained position
+(benchmarks/speed_at_walls.py; 0 of 60 with the two-stage speed). The
 two-stage speed (velocity over 0.1 s, then its norm over 0.2 s) keeps the error near walls
 to about 12%. Bounds: the default within 2 cm of a wall is at most 18% slow and within 4% in
 the middle of the box; the one-stage speed must fail the first bound (so the check has teeth).
