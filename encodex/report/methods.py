@@ -300,9 +300,9 @@ def _speed(m: MethodsInput):
         first = (f"the velocity (central differences of position) smoothed with a Gaussian "
                  f"kernel of {_num(vs)} s standard deviation" if vs
                  else "the velocity (central differences of position)")
-        text = (f"Running speed was the norm of {first}, itself smoothed with a Gaussian "
-                f"kernel of {_num(sd)} s standard deviation (two stages, so that turns, most "
-                f"of them at the walls, do not read as slowing down)")
+        text = (f"Running speed was the norm of {first}; that norm was then smoothed with a "
+                f"Gaussian kernel of {_num(sd)} s standard deviation (two stages, so that "
+                f"turns, most of them at the walls, do not read as slowing down)")
     ms = m.session_settings.get("min_speed")
     if ms is not None:
         text += f"; bins slower than {_num(ms)} m/s were excluded"
