@@ -21,7 +21,7 @@ other than the speed column).
 
 Usage::
 
-    nice -n 10 .venv/bin/python benchmarks/speed_at_walls.py --draws 2 --jobs 2   # ~6 min
+    nice -n 10 .venv/bin/python benchmarks/speed_at_walls.py --draws 2 --jobs 2   # ~8 min
 
 Prints one JSON record, then markdown tables.
 """

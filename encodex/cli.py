@@ -246,8 +246,8 @@ def _add_tracking_options(p) -> None:
                         "all)")
     g.add_argument("--speed-smoothing", type=non_negative_number("seconds"), default=None,
                    metavar="SECONDS",
-                   help="s.d. of the Gaussian smoothing of speed in seconds (default "
-                        f"{DEFAULT_SPEED_SMOOTHING_S:g}; 0: none)")
+                   help="s.d. of the Gaussian smoothing of speed (on a track: of velocity) in "
+                        f"seconds (default {DEFAULT_SPEED_SMOOTHING_S:g}; 0: none)")
     g.add_argument("--velocity-smoothing", type=non_negative_number("seconds"), default=None,
                    metavar="SECONDS",
                    help="open field: s.d. of the Gaussian smoothing of velocity before its norm "

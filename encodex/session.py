@@ -17,9 +17,9 @@ How each covariate is made (all on the bin grid, bin centres ``t0 + (k + 1/2) * 
   slow; paths turn most at the walls, so that error is a function of position, and a speed
   cell then looks as if it carried position too (benchmarks/speed_at_walls.py: 0.2 s on the
   vector read 33% slow within 2 cm of a wall and 13 of 60 redrawn speed cells gained
-  position; 0.1 s then 0.2 s on the norm: 12% and 0 of 60). Smoothing the velocity rather than the
-  position keeps a constant velocity exactly constant up to the edges of every tracked
-  stretch.
+  position; 0.1 s then 0.2 s on the norm: 12% and 0 of 60). Smoothing the velocity rather
+  than the position keeps a constant velocity exactly constant up to the edges of every
+  tracked stretch.
 * heading: the file's head direction (compass), interpolated on the circle; with no compass,
   the direction of the smoothed velocity where speed >= ``heading_speed_threshold`` and NaN
   (masked, reason ``heading_undefined``) elsewhere. Always wrapped to [0, 2*pi).
@@ -508,11 +508,11 @@ def _normalised_smooth(values: np.ndarray, bin_size: float, sigma_s: float) -> n
     return out.reshape(values.shape)
 
 
-def _two_stage_speed(pos: np.ndarray, bin_size: float, velocity_smoothing_s: float,
+def _two_stage_speed(raw_vel: np.ndarray, bin_size: float, velocity_smoothing_s: float,
                      speed_smoothing_s: float) -> np.ndarray:
     """Speed (m/s): the norm of the velocity smoothed at ``velocity_smoothing_s``, smoothed
     at ``speed_smoothing_s`` (see the module docstring for why two stages)."""
-    vel = _smoothed_velocity(pos, bin_size, velocity_smoothing_s)
+    vel = _normalised_smooth(raw_vel, bin_size, velocity_smoothing_s)
     return _normalised_smooth(np.hypot(vel[:, 0], vel[:, 1]), bin_size, speed_smoothing_s)
 
 
@@ -585,7 +585,7 @@ def _bin_spikes(recording: Recording, t0: float, bin_size: float, n_bins: int):
 
 
 def _check_settings(bin_size, speed_smoothing_s, max_gap_s, min_speed, heading_speed_threshold,
-                    velocity_smoothing_s=DEFAULT_VELOCITY_SMOOTHING_S):
+                    velocity_smoothing_s):
     if not (np.isfinite(bin_size) and bin_size > 0):
         raise SettingsError(f"bin_size must be a positive number of seconds, got {bin_size}")
     if bin_size > 1.0:
@@ -936,8 +936,9 @@ def build_session(
     t0, n_bins, centres = _bin_grid(recording.timestamps, bin_size)
     tracking = _binned_position(recording.timestamps, recording.position, centres, max_gap_s)
     pos, pos_unknown = tracking.position, tracking.unknown
-    vel = _smoothed_velocity(pos, bin_size, speed_smoothing_s)  # its direction: heading
-    speed = _two_stage_speed(pos, bin_size, velocity_smoothing_s, speed_smoothing_s)
+    raw_vel = _smoothed_velocity(pos, bin_size, 0.0)
+    vel = _normalised_smooth(raw_vel, bin_size, speed_smoothing_s)  # its direction: heading
+    speed = _two_stage_speed(raw_vel, bin_size, velocity_smoothing_s, speed_smoothing_s)
     heading, heading_undefined, heading_source = _binned_heading(
         recording, centres, vel, speed, pos_unknown, max_gap_s, heading_speed_threshold)
     # speed unknown (isolated single bins) also makes movement heading unknown
