@@ -156,3 +156,22 @@ def test_sub_designs_share_the_base_plan_and_match_dense_products(names):
     by_group = sub.transpose_dot_groups(r, g2, 6)
     for k in range(6):
         np.testing.assert_allclose(by_group[k], xz[g2 == k].T @ r[g2 == k], atol=1e-10)
+
+
+@pytest.mark.parametrize("names", [("speed",), ("position", "speed", "heading")])
+def test_linear_predictors_in_single_precision_stay_within_float32_rounding(names):
+    # Several vectors at once run over the Gram plan's compact rows in the plan's arithmetic;
+    # in float32 the error is rounding of sum_j |x_ij beta_j| (relative ~1e-7), far below
+    # anything a Newton step or a derivative needs, and nowhere near a wrong column (O(1)).
+    rng = np.random.default_rng(8)
+    n = 5000
+    cov = {"position": rng.uniform(0, 1, (n, 2)), "heading": rng.uniform(0, 6, n),
+           "speed": rng.gamma(2, 0.1, n)}
+    sub = build_design(cov, default_bases(cov), gram_precision="single").subset(names)
+    xz = sub.dense() @ sub.Z
+    theta = rng.normal(0, 0.3, (20, sub.n_theta))
+    exact = xz @ theta.T
+    scale = np.abs(xz) @ np.abs(theta.T)
+    got = sub.linear_predictors(theta)
+    assert got.shape == (n, 20) and got.dtype == np.float64
+    assert np.max(np.abs(got - exact) / scale) < 1e-6

@@ -200,13 +200,34 @@ class Design:
     def linear_predictors(self, thetas: np.ndarray) -> np.ndarray:
         """``X Z theta_j`` for several coefficient vectors at once (rows of ``thetas``).
 
-        Returns an (n_rows, n_vectors) array, from one pass over each term's sparse block.
+        Returns an (n_rows, n_vectors) array. The products run over the compact rows of
+        :meth:`weighted_gram`'s plan: one dense BLAS product per run of rows (and contiguous
+        stretch of the design's compact columns), instead of a sparse pass per term; 20
+        vectors over 180,000 bins measured about 6x faster than the sparse products. The
+        arithmetic is that of the plan: float32 with ``gram_precision="single"`` (relative
+        error ~1e-7 of ``sum_j |x_ij beta_j|``), which suits increments such as Newton steps
+        and derivatives; add them to a linear predictor from :meth:`linear_predictor` where
+        the exact value matters.
         """
-        betas = np.atleast_2d(thetas) @ self.Z.T           # (m, n_beta)
-        out = np.empty((self.n_rows, betas.shape[0]))
-        out[:] = betas[:, 0]
-        for t in self.terms:
-            out += self._term_matrix(t) @ np.ascontiguousarray(betas[:, self.beta_slices[t.name]].T)
+        thetas = np.atleast_2d(np.asarray(thetas, dtype=float))
+        plan = self._base._gram_plan(None)
+        runs, width, spans = plan.layout_for(self)
+        rows = plan.columns_by_row
+        betas = (thetas @ self.Z.T).astype(rows.dtype)         # (m, n_beta)
+        # In the plan's own dtype throughout: a float64 ``out=`` for float32 operands takes
+        # numpy off BLAS (4x slower, measured); the scatter into row order casts.
+        out_sorted = np.empty((plan.order.size, thetas.shape[0]), dtype=rows.dtype)
+        buf = np.empty((width, GRAM_CHUNK_ROWS), dtype=rows.dtype)
+        for r0, r1, _, cols in runs:
+            b = np.ascontiguousarray(betas[:, cols].T)          # (width, m)
+            for start in range(r0, r1, GRAM_CHUNK_ROWS):
+                stop = min(start + GRAM_CHUNK_ROWS, r1)
+                c = buf[:, :stop - start]
+                for lo, hi, at in spans:
+                    c[at:at + hi - lo] = rows[lo:hi, start:stop]
+                np.matmul(c.T, b, out=out_sorted[start:stop])
+        out = np.empty((self.n_rows, thetas.shape[0]))
+        out[plan.order] = out_sorted
         return out
 
     def transpose_dot(self, r: np.ndarray) -> np.ndarray:
