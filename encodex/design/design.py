@@ -331,24 +331,35 @@ class Design:
         rows = plan.columns_by_row
         sw = np.sqrt(np.asarray(w, dtype=float)[plan.order]).astype(rows.dtype, copy=False)
         buf = np.empty((width, GRAM_CHUNK_ROWS), dtype=rows.dtype)
-        for r0, r1, gid, cols in runs:
-            if not sw[r0:r1].any():
-                continue
-            g = np.zeros((width, width))
-            for start in range(r0, r1, GRAM_CHUNK_ROWS):
-                stop = min(start + GRAM_CHUNK_ROWS, r1)
-                c = buf[:, :stop - start]
-                # Compact columns are stored as rows of a (width, n) array: a sub-design's
-                # columns are a few contiguous ranges of them, weighted straight into place.
-                for lo, hi, at in spans:
-                    np.multiply(rows[lo:hi, start:stop], sw[start:stop],
-                                out=c[at:at + hi - lo])
-                # numpy recognises c @ c.T and calls the BLAS symmetric rank-k update (its
-                # bundled BLAS measured 3x faster here than scipy.linalg.blas.dsyrk). In
-                # single precision each chunk's update is float32 (1.7x faster) and the sum
-                # over chunks float64, so rounding does not grow with the number of bins.
-                g += c @ c.T
-            out[gid][np.ix_(cols, cols)] += g
+        # Runs come sorted by group; each group's runs are accumulated in compact layout and
+        # added into X'WX with one bincount over their flat positions (fancy-index adds run
+        # by run were 44% of a fold-grouped pass, measured over 943 runs of ~190 rows).
+        group_of = np.fromiter((r[2] for r in runs), dtype=np.int64, count=len(runs))
+        cuts = np.flatnonzero(np.diff(group_of)) + 1
+        for first, last in zip(np.concatenate([[0], cuts]), np.append(cuts, len(runs))):
+            block = runs[first:last]
+            pieces = np.zeros((len(block), width, width))
+            for g, (r0, r1, _, _) in zip(pieces, block):
+                if not sw[r0:r1].any():
+                    continue
+                for start in range(r0, r1, GRAM_CHUNK_ROWS):
+                    stop = min(start + GRAM_CHUNK_ROWS, r1)
+                    c = buf[:, :stop - start]
+                    # Compact columns are stored as rows of a (width, n) array: a
+                    # sub-design's columns are a few contiguous ranges of them, weighted
+                    # straight into place.
+                    for lo, hi, at in spans:
+                        np.multiply(rows[lo:hi, start:stop], sw[start:stop],
+                                    out=c[at:at + hi - lo])
+                    # numpy recognises c @ c.T and calls the BLAS symmetric rank-k update
+                    # (its bundled BLAS measured 3x faster here than scipy.linalg.blas.dsyrk).
+                    # In single precision each chunk's update is float32 (1.7x faster) and
+                    # the sum over chunks float64, so rounding does not grow with the bins.
+                    g += c @ c.T
+            cols = np.stack([b[3] for b in block])                  # (runs, width)
+            flat = (cols[:, :, None] * p + cols[:, None, :]).ravel()
+            out[group_of[first]] += np.bincount(flat, weights=pieces.ravel(),
+                                                minlength=p * p).reshape(p, p)
         out = self.Z.T @ out @ self.Z
         return out[0] if groups is None else out
 

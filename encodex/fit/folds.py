@@ -68,9 +68,10 @@ def refit_folds(design: Design, y, offset, full: PoissonFit, folds: np.ndarray, 
     Notes
     -----
     The one-step refits take one pass over the bins for the per-fold Gram pieces, one for the
-    per-fold gradients and one for the linear predictors of all ten steps together (a sparse
-    product with a matrix of ten columns); each fold's objective, log-likelihood and deviance
-    are then sums over those columns.
+    per-fold gradients and one for the linear predictors of all the steps together
+    (:meth:`Design.linear_predictors`, one column per fold, in the Gram plan's arithmetic:
+    the steps are increments added to the exact float64 predictor); each fold's objective,
+    log-likelihood and deviance are then sums over those columns.
     """
     y = np.asarray(y, dtype=float)
     folds = np.asarray(folds)
