@@ -38,17 +38,24 @@ CURVE_BINS = 20
 
 
 def _term_parts(fit, design) -> tuple[np.ndarray, dict[str, np.ndarray]]:
-    """Full linear predictor and each term's contribution on every bin (one sparse pass)."""
+    """Full linear predictor (exact, float64) and each term's contribution on every bin.
+
+    The contributions come from one pass over the Gram plan's rows
+    (:meth:`Design.linear_predictors`, in the plan's arithmetic: float32 rounding by default,
+    far below what a curve shows); the full predictor, from which expected counts are
+    summed, from the exact sparse product.
+    """
     sub = design.subset(fit.names) if design.names != fit.names else design
     theta = np.asarray(fit.theta_for(sub), float)
-    rows = [theta]
+    rows = []
     for name in fit.names:
         t = np.zeros_like(theta)
         s = sub.theta_slices[name]
         t[s] = theta[s]
         rows.append(t)
-    eta = sub.linear_predictors(np.vstack(rows))
-    return eta[:, 0], {n: eta[:, i + 1] for i, n in enumerate(fit.names)}
+    parts = sub.linear_predictors(np.vstack(rows)) if rows else None
+    return (sub.linear_predictor(theta),
+            {n: parts[:, i] for i, n in enumerate(fit.names)})
 
 
 def _binned(values, y, mu, bin_size, edges) -> dict[str, np.ndarray]:
