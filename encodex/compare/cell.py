@@ -237,10 +237,10 @@ def warm_start_fits(model: Model, full_fits: dict) -> tuple | None:
     the start can change the optimum reached, not only the path to it. Starting a new term
     from an earlier fit that held it (e.g. the first step's single-variable fit, where the
     term had absorbed another variable's tuning) was tried: on the labels study's 1,794 cells
-    it cost the same CPU (1.004x) and changed one label, a 5 Hz place cell labelled
-    position+distance, its position+distance fit at a rougher optimum with a lower LAML
-    (-21962.39 against -21961.95) whose held-out gain, 0.0007 bits per spike against
-    0.00005, came from smoothing chosen on all bins.
+    it saved no CPU (1565 s with it, 1559 s without) and changed one label, a 5 Hz place
+    cell labelled position+distance, its position+distance fit at a rougher optimum with a
+    lower LAML (-21962.39 against -21961.95) whose held-out gain, 0.0007 bits per spike
+    against 0.00005, came from smoothing chosen on all bins.
     """
     parents = [m for m in full_fits if set(m) < set(model)]
     return (full_fits[max(parents, key=len)],) if parents else None
