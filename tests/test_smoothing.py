@@ -113,3 +113,21 @@ def test_term_stranded_on_the_plateau_is_recovered(problem):
     # The speed lambda (index 3) is on a genuine plateau (linear truth, edf 1): not determined.
     np.testing.assert_allclose(fit.lambdas[:3], cold.lambdas[:3], rtol=0.01)
     assert fit.edf["heading"] == pytest.approx(cold.edf["heading"], abs=0.005)
+
+
+def test_penalty_pieces_of_single_penalty_terms_match_a_fresh_eigendecomposition(problem):
+    # Single-penalty terms reuse the eigenpairs of S (those of lambda S are lambda times them);
+    # log|S_lambda|_+ and tr(S_lambda^- S_k) must equal those of a decomposition of S_lambda.
+    design, _, structure = problem
+    assert [s is None for s in structure.single] == [len(t.penalties) > 1 for t in design.terms]
+    lam = np.exp(np.random.default_rng(1).uniform(-3, 6, design.n_penalties))
+    log_pdet, traces, k = 0.0, [], 0
+    for j, t in enumerate(design.terms):
+        m = len(t.penalties)
+        ev, vec = np.linalg.eigh(sum(l * p for l, p in zip(lam[k:k + m], t.penalties)))
+        ev, vec = ev[-structure.ranks[j]:], vec[:, -structure.ranks[j]:]
+        log_pdet += np.sum(np.log(ev))
+        traces += [np.sum(np.einsum("ij,ij->j", vec, p @ vec) / ev) for p in t.penalties]
+        k += m
+    assert structure.log_pdet(lam) == pytest.approx(log_pdet, rel=1e-12, abs=1e-9)
+    np.testing.assert_allclose(structure.trace_pinv_products(lam), traces, rtol=1e-9)

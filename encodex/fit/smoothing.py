@@ -78,17 +78,28 @@ class PenaltyStructure:
     design: Design
     ranks: tuple[int, ...]       # rank of each term's total penalty
     term_of: tuple[int, ...]     # term index of each penalty
+    # Non-zero eigenpairs of the penalty of each single-penalty term (None for a term with
+    # several): those of lambda S are lambda times them, so the criterion's evaluations need
+    # no eigendecomposition for such terms (they were 12% of a 5-minute cell's time).
+    single: tuple = ()
 
     @classmethod
     def of(cls, design: Design) -> "PenaltyStructure":
         ranks = []
         term_of = []
+        single = []
         for j, t in enumerate(design.terms):
             total = sum(s / np.linalg.norm(s) for s in t.penalties)
             ev = np.linalg.eigvalsh(total)
-            ranks.append(int(np.sum(ev > ev.max() * 1e-9)))
+            r = int(np.sum(ev > ev.max() * 1e-9))
+            ranks.append(r)
             term_of.extend([j] * len(t.penalties))
-        return cls(design, tuple(ranks), tuple(term_of))
+            if len(t.penalties) == 1:
+                ev, vec = np.linalg.eigh(t.penalties[0])
+                single.append((ev[-r:], vec[:, -r:]))
+            else:
+                single.append(None)
+        return cls(design, tuple(ranks), tuple(term_of), tuple(single))
 
     @property
     def null_space_dim(self) -> int:
@@ -96,16 +107,23 @@ class PenaltyStructure:
         return self.design.n_theta - sum(self.ranks)
 
     def term_pieces(self, lambdas):
-        """For each term, (penalties, lambdas, eigenvalues, eigenvectors) of its ``S_lambda``."""
+        """For each term, (penalties, lambdas, eigenvalues, eigenvectors) of its ``S_lambda``.
+
+        Only the non-zero eigenpairs (the term's penalty rank) are returned.
+        """
         out = []
         k = 0
         for j, t in enumerate(self.design.terms):
             m = len(t.penalties)
             lam = np.asarray(lambdas[k:k + m], dtype=float)
-            s = sum(l * p for l, p in zip(lam, t.penalties))
-            ev, vec = np.linalg.eigh(s)
             r = self.ranks[j]
-            out.append((t.penalties, lam, ev[-r:], vec[:, -r:]))
+            if self.single and self.single[j] is not None:
+                ev, vec = self.single[j]
+                out.append((t.penalties, lam, lam[0] * ev, vec))
+            else:
+                s = sum(l * p for l, p in zip(lam, t.penalties))
+                ev, vec = np.linalg.eigh(s)
+                out.append((t.penalties, lam, ev[-r:], vec[:, -r:]))
             k += m
         return out
 
