@@ -7,6 +7,8 @@ environment, 20 ms bins, all five variables) are labelled with the defaults of a
 
 - ``new``: the defaults of this version (drift term, sign-flip step test, 20 folds);
 - ``k10``: the same with 10 folds (the defaults before the fold count changed);
+- ``nodrift``: the defaults without the drift term (``--no-drift``);
+- ``double``: the defaults with X'WX in double precision (``--gram-precision double``);
 - ``old``: no drift term, Wilcoxon with Bonferroni, 10 folds (the defaults before the drift
   term).
 
@@ -26,7 +28,8 @@ import json
 import numpy as np
 
 #: Settings compared (keyword arguments of RunSettings).
-VARIANTS = {"new": {}, "k10": {"folds": 10},
+VARIANTS = {"new": {}, "k10": {"folds": 10}, "nodrift": {"drift": False},
+            "double": {"gram_precision": "double"},
             "old": {"drift": False, "correction": "bonferroni", "folds": 10}}
 
 

@@ -77,8 +77,8 @@ class RunSettings:
         :func:`encodex.compare.cell.cross_validate`.
     gram_precision : str
         "single" (default): the Hessian pieces X'WX are formed from float32 chunks summed in
-        float64 (1.5x faster X'WX, half its memory; the whole 300-unit job 1.17x faster with
-        the same labels, benchmarks/RESULTS.md); gradients, objectives and scores stay
+        float64 (1.5x faster X'WX, half its memory; 1.3x less CPU per cell with the same
+        labels, benchmarks/bench_drift_cost.py, benchmarks/RESULTS.md); gradients, objectives and scores stay
         float64, so every fit at given smoothing converges to the same optimum.
         ``reference_checks/test_single_precision_gram.py`` bounds the effect on
         coefficients, scores and labels (scores agree to about 1e-5 bits per spike, not exactly:
