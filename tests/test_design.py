@@ -175,3 +175,30 @@ def test_linear_predictors_in_single_precision_stay_within_float32_rounding(name
     got = sub.linear_predictors(theta)
     assert got.shape == (n, 20) and got.dtype == np.float64
     assert np.max(np.abs(got - exact) / scale) < 1e-6
+
+
+@pytest.mark.parametrize("batch, chunk", [(200, 64), (50, 64), (5000, 128)])
+def test_weighted_gram_batches_and_chunks_give_the_dense_product(monkeypatch, batch, chunk):
+    # Short runs are weighted in batches, long ones chunk by chunk; with small sizes both
+    # paths (and runs spanning several chunks inside a batch) are taken on a small design.
+    import encodex.design.design as design_module
+
+    monkeypatch.setattr(design_module, "GRAM_BATCH_ROWS", batch)
+    monkeypatch.setattr(design_module, "GRAM_CHUNK_ROWS", chunk)
+    rng = np.random.default_rng(8)
+    n = 2500
+    cov = {"position": rng.uniform(0, 1, (n, 2)), "speed": rng.gamma(2, 0.1, n)}
+    design = build_design(cov, default_bases(cov))
+    w = rng.uniform(0.1, 2.0, n)
+    w[:300] = 0.0                                   # a stretch of rows with no weight
+    groups = rng.integers(-1, 5, n)
+    for names in (("speed",), ("position", "speed")):
+        sub = design.subset(names)
+        xz = sub.dense() @ sub.Z
+        np.testing.assert_allclose(sub.weighted_gram(w), xz.T @ (w[:, None] * xz),
+                                   rtol=1e-10, atol=1e-9)
+        pieces = sub.weighted_gram(w, groups, 5)
+        for k in range(5):
+            m = groups == k
+            np.testing.assert_allclose(pieces[k], xz[m].T @ (w[m, None] * xz[m]),
+                                       rtol=1e-10, atol=1e-9)
