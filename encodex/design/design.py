@@ -336,7 +336,8 @@ class Design:
         out = np.zeros((n_out, p, p))
         rows = plan.columns_by_row
         sw = np.sqrt(np.asarray(w, dtype=float)[plan.order]).astype(rows.dtype, copy=False)
-        buf = np.empty((width, max(GRAM_BATCH_ROWS, GRAM_CHUNK_ROWS)), dtype=rows.dtype)
+        batch_buf = np.empty(width * GRAM_BATCH_ROWS, dtype=rows.dtype)
+        chunk_buf = np.empty((width, GRAM_CHUNK_ROWS), dtype=rows.dtype)
         # Runs come sorted by group; each group's runs are accumulated in compact layout and
         # added into X'WX with one bincount over their flat positions (fancy-index adds run
         # by run were 44% of a fold-grouped pass, measured over 943 runs of ~190 rows).
@@ -345,11 +346,12 @@ class Design:
         for first, last in zip(np.concatenate([[0], cuts]), np.append(cuts, len(runs))):
             block = runs[first:last]
             pieces = np.zeros((len(block), width, width))
-            for i, k in _batches(block, buf.shape[1]):
+            for i, k in _batches(block, GRAM_BATCH_ROWS):
                 # Consecutive short runs are weighted together, one multiply per column
                 # range for the batch instead of one per run (a fold-grouped pass has ~950
-                # runs of ~150 rows: 0.7x its time, same numbers to the last bit).
-                _accumulate_runs(pieces[i:k], block[i:k], rows, sw, spans, buf)
+                # runs of ~150 rows: 0.75-0.93x its time, same numbers to the last bit).
+                _accumulate_runs(pieces[i:k], block[i:k], rows, sw, spans, batch_buf,
+                                 chunk_buf)
             cols = np.stack([b[3] for b in block])                  # (runs, width)
             flat = (cols[:, :, None] * p + cols[:, None, :]).ravel()
             out[group_of[first]] += np.bincount(flat, weights=pieces.ravel(),
@@ -510,28 +512,34 @@ def _batches(runs: list, max_rows: int):
 
 
 def _accumulate_runs(pieces: np.ndarray, runs: list, rows: np.ndarray, sw: np.ndarray,
-                     spans: list, buf: np.ndarray) -> None:
+                     spans: list, batch_buf: np.ndarray, chunk_buf: np.ndarray) -> None:
     """Add each run's weighted compact ``C C'`` into its slice of ``pieces`` (in place).
 
-    ``runs`` are consecutive in the plan's row order and span at most ``buf``'s columns, or
-    are a single run of any length, weighted chunk by chunk.
+    ``runs`` are consecutive in the plan's row order. When they span at most
+    ``batch_buf.size / width`` rows they are weighted at once into ``batch_buf`` (flat, laid
+    out as a (width, rows) array of exactly the batch's length); otherwise there is a single
+    run, weighted chunk by chunk into ``chunk_buf`` (width, GRAM_CHUNK_ROWS). Either way a
+    chunk's rows are contiguous with a row stride that is not a large power of two: a
+    16384-float stride made the rank-k update of 4096-row chunks 1.1-1.3x slower here.
     """
+    width = chunk_buf.shape[0]
     b0, b1 = runs[0][0], runs[-1][1]
-    batched = b1 - b0 <= buf.shape[1]
+    batched = (b1 - b0) * width <= batch_buf.size
     if batched:
+        cw = batch_buf[:width * (b1 - b0)].reshape(width, b1 - b0)
         # Compact columns are stored as rows of a (width, n) array: a sub-design's columns
         # are a few contiguous ranges of them, weighted straight into place.
         for lo, hi, at in spans:
-            np.multiply(rows[lo:hi, b0:b1], sw[b0:b1], out=buf[at:at + hi - lo, :b1 - b0])
+            np.multiply(rows[lo:hi, b0:b1], sw[b0:b1], out=cw[at:at + hi - lo])
     for g, (r0, r1, *_) in zip(pieces, runs):
         if not sw[r0:r1].any():
             continue
         for start in range(r0, r1, GRAM_CHUNK_ROWS):
             stop = min(start + GRAM_CHUNK_ROWS, r1)
             if batched:
-                c = buf[:, start - b0:stop - b0]
+                c = cw[:, start - b0:stop - b0]
             else:
-                c = buf[:, :stop - start]
+                c = chunk_buf[:, :stop - start]
                 for lo, hi, at in spans:
                     np.multiply(rows[lo:hi, start:stop], sw[start:stop],
                                 out=c[at:at + hi - lo])
