@@ -324,9 +324,10 @@ class Design:
         merge into one run per row group. Each run is accumulated in chunks of
         :data:`GRAM_CHUNK_ROWS` weighted rows with the BLAS symmetric rank-k update and
         added into its place in ``X' W X``; consecutive short runs (the fold-grouped plan
-        has ~950 of ~150 rows) are weighted together, up to :data:`GRAM_BATCH_ROWS` rows. With ``gram_precision="single"`` the compact rows
-        are kept and multiplied in float32 (half the memory; X'WX relative error ~1e-8,
-        bounded in ``reference_checks/test_single_precision_gram.py``).
+        has ~950 of ~150 rows) are weighted together, up to :data:`GRAM_BATCH_ROWS` rows.
+        With ``gram_precision="single"`` the compact rows are kept and multiplied in float32
+        (half the memory; X'WX relative error ~1e-8, bounded in
+        ``reference_checks/test_single_precision_gram.py``).
         """
         plan = self._base._gram_plan(groups)
         runs, width, spans = plan.layout_for(self)

@@ -80,7 +80,8 @@ class PenaltyStructure:
     term_of: tuple[int, ...]     # term index of each penalty
     # Non-zero eigenpairs of the penalty of each single-penalty term (None for a term with
     # several): those of lambda S are lambda times them, so the criterion's evaluations need
-    # no eigendecomposition for such terms (they were 12% of a 5-minute cell's time).
+    # no eigendecomposition for such terms (two thirds of the calls on 5-minute cells, where
+    # eigendecompositions took 12% of the time; benchmarks/RESULTS.md).
     single: tuple = ()
 
     @classmethod
