@@ -16,6 +16,7 @@ import time
 from pathlib import Path
 
 import numpy as np
+import psutil
 import pytest
 
 from encodex.cli import main
@@ -44,6 +45,12 @@ def _start(npz: Path, out: Path, extra=()) -> subprocess.Popen:
                              str(out), *ARGS, *extra], stdout=subprocess.PIPE,
                             stderr=subprocess.PIPE, text=True, env=env,
                             preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
+
+
+def _worker_processes(pid: int) -> list:
+    """The joblib (loky) worker processes started by process ``pid``."""
+    return [c for c in psutil.Process(pid).children(recursive=True)
+            if "popen_loky" in " ".join(c.cmdline())]
 
 
 def _wait_for_first_unit(proc: subprocess.Popen, out: Path, timeout_s: float = 120.0) -> int:
@@ -83,11 +90,16 @@ def test_sigkill_then_rerun_gives_identical_tables(data, tmp_path):
     out = tmp_path / "killed"
     proc = _start(npz, out)
     _wait_for_first_unit(proc, out)
+    workers = _worker_processes(proc.pid)
+    assert workers, "the run should have started joblib workers"
     proc.send_signal(signal.SIGKILL)
     proc.wait(timeout=30)
     proc.stdout.close()
     proc.stderr.close()
     assert proc.returncode == -signal.SIGKILL
+    # Its workers notice and exit (they used to wait for work for hours).
+    _, alive = psutil.wait_procs(workers, timeout=15)
+    assert not alive, f"workers still running after the run was killed: {alive}"
     # It really stopped part way: tables not written, some units still missing.
     assert not (out / "cells.csv").exists()
     n_done = len(list((out / "units").rglob("*.npz")))

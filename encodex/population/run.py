@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import datetime as _dt
 import json
+import os
 import platform
 import time
 import warnings
@@ -31,8 +32,8 @@ from encodex.population.checkpoint import (
 from encodex.population.settings import RunSettings, stable_hash
 from encodex.population.summary import session_summary
 from encodex.population.work import (
-    PURPOSE_FOLDS, EnvironmentWork, SpikeColumn, UnitOutcome, analyse_unit, environment_design,
-    stream,
+    PURPOSE_FOLDS, RUN_PID_VARIABLE, EnvironmentWork, SpikeColumn, UnitOutcome, analyse_unit,
+    environment_design, stream,
 )
 from encodex.variables import VARIABLES, canonical_order
 
@@ -306,8 +307,18 @@ def _execute(tasks: list, jobs: int, cluster: str | None) -> Iterator[UnitOutcom
 
     calls = (delayed(analyse_unit)(*t) for t in tasks)
     if cluster is None:
-        with parallel_config(backend="loky", inner_max_num_threads=1):
-            yield from Parallel(n_jobs=jobs, return_as="generator_unordered")(calls)
+        # Workers started now learn this process's id and exit if it is killed outright
+        # (encodex.population.work.watch_run_process).
+        before = os.environ.get(RUN_PID_VARIABLE)
+        os.environ[RUN_PID_VARIABLE] = str(os.getpid())
+        try:
+            with parallel_config(backend="loky", inner_max_num_threads=1):
+                yield from Parallel(n_jobs=jobs, return_as="generator_unordered")(calls)
+        finally:
+            if before is None:
+                os.environ.pop(RUN_PID_VARIABLE, None)
+            else:
+                os.environ[RUN_PID_VARIABLE] = before
         return
     try:
         from distributed import Client, LocalCluster

@@ -9,6 +9,8 @@ pick up the work, so results are identical whatever the number of jobs.
 from __future__ import annotations
 
 import hashlib
+import os
+import threading
 import time
 from collections import OrderedDict
 from dataclasses import dataclass
@@ -199,10 +201,44 @@ def empty_cell_row(unit: str, environment: str, n_spikes: int, rate: float, stat
     return row
 
 
+#: Environment variable through which a run tells its worker processes its process id
+#: (set by ``encodex.population.run`` around joblib's workers; see :func:`watch_run_process`).
+RUN_PID_VARIABLE = "ENCODEX_RUN_PID"
+
+_WATCHING: list = []
+
+
+def watch_run_process() -> bool:
+    """In a worker of a run, exit when the run's process is gone; elsewhere do nothing.
+
+    joblib's workers wait for work for as long as their parent lives; when the run is killed
+    outright (``kill -9``, an out-of-memory kill) nothing tells them, and they stayed idle
+    for hours holding their designs (~400 MB each at 60 min). A worker started by a run
+    (its parent's process id is the one the run put in :data:`RUN_PID_VARIABLE`) checks once
+    a second from a daemon thread whether its parent is still that process, and exits if
+    not. The run's own process (``jobs=1``, a notebook) never starts the check. Returns
+    whether this call started it.
+    """
+    expected = os.environ.get(RUN_PID_VARIABLE)
+    if _WATCHING or not expected or str(os.getppid()) != expected:
+        return False
+    _WATCHING.append(True)
+
+    def watch():
+        while str(os.getppid()) == expected:
+            time.sleep(1.0)
+        os._exit(0)
+
+    threading.Thread(target=watch, name="encodex-run-watch", daemon=True).start()
+    return True
+
+
 def analyse_unit(env: EnvironmentWork, unit: str, y: np.ndarray,
                  settings: RunSettings) -> UnitOutcome:
     """Analyse one cell in one environment (runs in a worker; limits BLAS to one thread)."""
     from threadpoolctl import threadpool_limits
+
+    watch_run_process()
 
     # CPU time of this (single-threaded) worker: a fair cost even on a busy machine.
     start = time.process_time()
