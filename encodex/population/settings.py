@@ -78,8 +78,9 @@ class RunSettings:
     gram_precision : str
         "single" (default): the Hessian pieces X'WX are formed from float32 chunks summed in
         float64 (1.5x faster X'WX, half its memory; 1.3x less CPU per cell with the same
-        labels, benchmarks/bench_drift_cost.py, benchmarks/RESULTS.md); gradients, objectives and scores stay
-        float64, so every fit at given smoothing converges to the same optimum.
+        labels, benchmarks/bench_drift_cost.py, benchmarks/RESULTS.md); gradients,
+        objectives and scores stay float64, so every fit at given smoothing converges to the
+        same optimum.
         ``reference_checks/test_single_precision_gram.py`` bounds the effect on
         coefficients, scores and labels (scores agree to about 1e-5 bits per spike, not exactly:
         the smoothing parameters move with the Hessian's rounding). "double": float64

@@ -205,7 +205,7 @@ def empty_cell_row(unit: str, environment: str, n_spikes: int, rate: float, stat
 #: (set by ``encodex.population.run`` around joblib's workers; see :func:`watch_run_process`).
 RUN_PID_VARIABLE = "ENCODEX_RUN_PID"
 
-_WATCHING: list = []
+_WATCHING: list = []      # non-empty once this process has started its check
 
 
 def watch_run_process() -> bool:
