@@ -32,8 +32,8 @@ from encodex.population.checkpoint import (
 from encodex.population.settings import RunSettings, stable_hash
 from encodex.population.summary import session_summary
 from encodex.population.work import (
-    PURPOSE_FOLDS, RUN_PID_VARIABLE, EnvironmentWork, SpikeColumn, UnitOutcome, analyse_unit,
-    environment_design, stream,
+    PURPOSE_FOLDS, EnvironmentWork, SpikeColumn, UnitOutcome, analyse_unit, environment_design,
+    stream, watch_run_process,
 )
 from encodex.variables import VARIABLES, canonical_order
 
@@ -307,18 +307,10 @@ def _execute(tasks: list, jobs: int, cluster: str | None) -> Iterator[UnitOutcom
 
     calls = (delayed(analyse_unit)(*t) for t in tasks)
     if cluster is None:
-        # Workers started now learn this process's id and exit if it is killed outright
-        # (encodex.population.work.watch_run_process).
-        before = os.environ.get(RUN_PID_VARIABLE)
-        os.environ[RUN_PID_VARIABLE] = str(os.getpid())
-        try:
-            with parallel_config(backend="loky", inner_max_num_threads=1):
-                yield from Parallel(n_jobs=jobs, return_as="generator_unordered")(calls)
-        finally:
-            if before is None:
-                os.environ.pop(RUN_PID_VARIABLE, None)
-            else:
-                os.environ[RUN_PID_VARIABLE] = before
+        # Workers exit if this process is killed outright (watch_run_process).
+        with parallel_config(backend="loky", inner_max_num_threads=1,
+                             initializer=watch_run_process, initargs=(os.getpid(),)):
+            yield from Parallel(n_jobs=jobs, return_as="generator_unordered")(calls)
         return
     try:
         from distributed import Client, LocalCluster

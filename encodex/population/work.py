@@ -201,31 +201,36 @@ def empty_cell_row(unit: str, environment: str, n_spikes: int, rate: float, stat
     return row
 
 
-#: Environment variable through which a run tells its worker processes its process id
-#: (set by ``encodex.population.run`` around joblib's workers; see :func:`watch_run_process`).
-RUN_PID_VARIABLE = "ENCODEX_RUN_PID"
-
 _WATCHING: list = []      # non-empty once this process has started its check
 
 
-def watch_run_process() -> bool:
-    """In a worker of a run, exit when the run's process is gone; elsewhere do nothing.
+def watch_run_process(run_pid: int) -> bool:
+    """In a worker started by the run ``run_pid``, exit when that process is gone.
 
     joblib's workers wait for work for as long as their parent lives; when the run is killed
     outright (``kill -9``, an out-of-memory kill) nothing tells them, and they stayed idle
-    for hours holding their designs (~400 MB each at 60 min). A worker started by a run
-    (its parent's process id is the one the run put in :data:`RUN_PID_VARIABLE`) checks once
-    a second from a daemon thread whether its parent is still that process, and exits if
-    not. The run's own process (``jobs=1``, a notebook) never starts the check. Returns
-    whether this call started it.
+    for hours holding their designs (~400 MB each at 60 min). Called as the workers'
+    initializer (``encodex.population.run``), so that a worker that has not yet been given
+    a cell is covered too. A worker whose run died while it was starting exits at once; one
+    whose parent is ``run_pid`` checks once a second from a daemon thread whether its
+    parent is still that process, and exits if not. Anywhere else (a process whose parent is
+    another, live one; Windows, where signal 0 would terminate the process it is sent to)
+    it does nothing. Returns whether this call started the check.
     """
-    expected = os.environ.get(RUN_PID_VARIABLE)
-    if _WATCHING or not expected or str(os.getppid()) != expected:
+    if _WATCHING or os.name != "posix":
+        return False
+    if os.getppid() != run_pid:
+        try:
+            os.kill(run_pid, 0)             # signal 0: only asks whether the process exists
+        except ProcessLookupError:
+            os._exit(0)                     # the run died before this worker was ready
+        except PermissionError:
+            pass
         return False
     _WATCHING.append(True)
 
     def watch():
-        while str(os.getppid()) == expected:
+        while os.getppid() == run_pid:
             time.sleep(1.0)
         os._exit(0)
 
@@ -237,8 +242,6 @@ def analyse_unit(env: EnvironmentWork, unit: str, y: np.ndarray,
                  settings: RunSettings) -> UnitOutcome:
     """Analyse one cell in one environment (runs in a worker; limits BLAS to one thread)."""
     from threadpoolctl import threadpool_limits
-
-    watch_run_process()
 
     # CPU time of this (single-threaded) worker: a fair cost even on a busy machine.
     start = time.process_time()
