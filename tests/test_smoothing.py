@@ -93,26 +93,45 @@ def test_out_of_range_fit_options_are_refused(field, value):
         FitOptions(**{field: value})
 
 
-# Fellner-Schall sends a smoothing parameter whose term looks unused straight to its bound and
-# keeps it there; the criterion is flat there (gradient ~1/lambda), so a small gradient is no
-# sign of an optimum. Started with the heading term smoothed away (lambda 1e9), Fellner-Schall
-# alone stays stranded; the default selection must walk back to the cold start's optimum.
-def test_term_stranded_on_the_plateau_is_recovered(problem):
+# A smoothing parameter sent far up, where its term looks unused, sits on a plateau of the
+# criterion (gradient ~1/lambda), where a small gradient is no sign of an optimum. The start
+# phase's own Newton steps on the working model usually pull it back; here they are switched
+# off (the start phase keeps the stranded lambdas and only solves for theta), so the Newton
+# phase alone must walk the heading term back to the cold start's optimum.
+def test_term_stranded_on_the_plateau_is_recovered(problem, monkeypatch):
     import dataclasses
+
+    import encodex.fit.engine as engine
 
     design, y, _ = problem
     cold = fit_poisson(design, y, np.log(DT))
     k = 2  # the heading penalty (position x, position y, heading, speed)
     stranded = dataclasses.replace(cold, lambdas=np.where(np.arange(4) == k, 1e9, cold.lambdas))
-    fs = fit_poisson(design, y, np.log(DT), start=stranded, options=FitOptions(max_newton=0))
-    assert fs.edf["heading"] < cold.edf["heading"] - 0.3
-    assert fs.laml < cold.laml - 1e-3
+    monkeypatch.setattr(engine, "_working_optimum", lambda gram, rhs, rho, *rest: rho)
+    start_only = fit_poisson(design, y, np.log(DT), start=stranded,
+                             options=FitOptions(max_newton=0))
+    assert start_only.edf["heading"] < cold.edf["heading"] - 0.3
+    assert start_only.laml < cold.laml - 1e-3
     fit = fit_poisson(design, y, np.log(DT), start=stranded)
     assert fit.converged, fit.reason
     assert fit.laml == pytest.approx(cold.laml, abs=1e-6)
     # The speed lambda (index 3) is on a genuine plateau (linear truth, edf 1): not determined.
     np.testing.assert_allclose(fit.lambdas[:3], cold.lambdas[:3], rtol=0.01)
     assert fit.edf["heading"] == pytest.approx(cold.edf["heading"], abs=0.005)
+
+
+def test_start_phase_recovers_a_stranded_term_by_itself(problem):
+    # The start phase's Newton steps on the working criterion see the curvature that a
+    # Fellner-Schall update does not: from the same stranded start, the start phase alone
+    # (no Newton phase) is already back at the cold start's heading term.
+    import dataclasses
+
+    design, y, _ = problem
+    cold = fit_poisson(design, y, np.log(DT))
+    stranded = dataclasses.replace(cold, lambdas=np.where(np.arange(4) == 2, 1e9, cold.lambdas))
+    start_only = fit_poisson(design, y, np.log(DT), start=stranded,
+                             options=FitOptions(max_newton=0))
+    assert start_only.edf["heading"] == pytest.approx(cold.edf["heading"], abs=0.05)
 
 
 def test_penalty_pieces_of_single_penalty_terms_match_a_fresh_eigendecomposition(problem):

@@ -13,7 +13,8 @@ from encodex.threads import single_threaded
 from .result import (PoissonFit, TermLayout, log_factorial_sum, poisson_deviance,
                      poisson_loglik)
 from .smoothing import (LAMBDA_MAX, LAMBDA_MIN, RELATIVE_RANGE, PenaltyStructure,
-                        fellner_schall_update, initial_lambdas, laml, laml_derivatives)
+                        fellner_schall_update, fixed_weight_derivatives, initial_lambdas, laml,
+                        laml_derivatives, working_criterion)
 from .solver import NewtonOptions, PenalisedPoissonNewton, _log_mean_rate
 
 
@@ -258,14 +259,21 @@ GRAM_REUSE_TOL = 1e-2
 
 
 def _select_smoothness(design, y, offset, mask, structure, theta0, warm, options):
-    """Joint iteration of Newton steps on theta and Fellner-Schall updates of lambda.
+    """Performance iteration: per round, the working model's optimal lambda, then a Newton step.
 
-    Each round computes the Gram matrix once at the current theta, updates every lambda from
-    it, then takes one damped Newton step for the new lambdas with the same Gram matrix (the
+    Each round forms the Gram matrix ``H`` once at the current ``theta`` and replaces the
+    log-likelihood by its second-order expansion there (the working model). For a fixed
+    ``H`` the criterion ``V`` and its first two derivatives in ``log lambda`` need no pass
+    over the bins (:func:`encodex.fit.smoothing.working_criterion`), so the round maximises
+    the working ``V`` by Newton's method on ``log lambda`` (:func:`_working_optimum`), then
+    takes one damped Newton step on ``theta`` at those lambdas with the same ``H`` (the
     Hessian of the log-likelihood does not depend on lambda). At the joint fixed point theta
-    is the penalised optimum for lambda and lambda the LAML stationary point, as in the
-    nested iteration, at about one Gram matrix per round instead of several ("performance
-    iteration", Wood 2017, sec. 6.12.1, here with the Fellner-Schall update).
+    is the penalised optimum for lambda and lambda the optimum of ``V`` with the weights held
+    fixed ("performance iteration": Gu 1992, J. Comput. Graph. Stat. 1:169; Wood 2004, JASA
+    99:673; Wood 2017, Generalized Additive Models, sec. 6.12.1). That point differs from the
+    optimum of ``V`` by the change of the weights with lambda, which the Newton phase
+    (:func:`_newton_finish`) adds. A round whose working matrix ``H + S`` is not positive
+    definite takes a generalised Fellner-Schall update instead (Wood & Fasiolo 2017).
 
     Returns (lambdas, theta, rounds, newton steps, last change in log lambda, mu, Gram
     matrix, (lower, upper, start) values of lambda), mu and the Gram matrix at the returned theta
@@ -273,6 +281,7 @@ def _select_smoothness(design, y, offset, mask, structure, theta0, warm, options
     """
     solver = PenalisedPoissonNewton(design, y, offset, np.zeros((design.n_theta,) * 2), mask,
                                     options.newton)
+    no_penalty = solver.S
     theta = theta0
     # The data part of the objective (S is zero here); each round adds its own penalty term
     # instead of recomputing X theta and exp on every bin.
@@ -285,28 +294,24 @@ def _select_smoothness(design, y, offset, mask, structure, theta0, warm, options
     upper = np.minimum(init * RELATIVE_RANGE, LAMBDA_MAX)
     lower = np.maximum(init / RELATIVE_RANGE, LAMBDA_MIN)
     lam = init if warm is None else np.clip(np.where(np.isnan(warm), init, warm), lower, upper)
+    bounds = (np.log(lower), np.log(upper))
     change = np.inf
     rounds = 0
     previous = -np.inf
     flat_rounds = 0
-    boost = np.ones_like(lam)
-    last_step = np.zeros_like(lam)
     for rounds in range(1, options.max_outer + 1):
-        proposal = np.log(fellner_schall_update(theta, gram, design, structure, lam,
-                                                upper=upper, lower=lower)) - np.log(lam)
-        # Fellner-Schall creeps linearly when a lambda heads for a far optimum (a term being
-        # smoothed away): while a lambda keeps moving the same way its step is doubled, and
-        # reset as soon as it turns. The fixed points are unchanged (zero proposal, zero step).
-        same_way = (np.sign(proposal) == np.sign(last_step)) & (np.abs(proposal) > options.lambda_tol)
-        boost = np.where(same_way, np.minimum(boost * 2.0, 64.0), 1.0)
-        step = np.clip(proposal * boost, -5.0, 5.0)
-        last_step = step
-        new = np.clip(lam * np.exp(step), lower, upper)
-        change = float(np.max(np.abs(np.log(new) - np.log(lam))))
-        lam = new
+        solver.S = no_penalty
+        data_gradient = solver.gradient(theta, mu)          # Z'X'(m mu - m y)
+        new = _working_optimum(gram, gram @ theta - data_gradient, np.log(lam), bounds,
+                               design, structure, options.gradient_tol)
+        if new is None:
+            new = np.log(fellner_schall_update(theta, gram, design, structure, lam,
+                                               upper=upper, lower=lower))
+        change = float(np.max(np.abs(new - np.log(lam))))
+        lam = np.exp(new)
         solver.S = design.penalty_matrix(lam)
         f = f_data + 0.5 * theta @ solver.S @ theta
-        g = solver.gradient(theta, mu)
+        g = data_gradient + solver.S @ theta
         d = solver.direction(gram + solver.S, g)
         decrement = -float(g @ d)
         # theta only needs to be close enough to its optimum for the lambda update to be
@@ -334,6 +339,55 @@ def _select_smoothness(design, y, offset, mask, structure, theta0, warm, options
             eta_at_gram = eta
     fresh = eta_at_gram is eta
     return lam, theta, rounds, rounds, change, mu, (gram if fresh else None), (lower, upper, init)
+
+
+#: Newton steps on log lambda per round of the performance iteration (each costs a few
+#: factorisations of the n_theta x n_theta matrix ``H + S``, no pass over the bins).
+WORKING_MAX_STEPS = 30
+
+#: A round's Newton iteration on the working model stops once a step moves no log lambda by
+#: more than this (the outer rounds stop at ``FitOptions.lambda_tol``, ten times larger).
+WORKING_STEP_TOL = 1e-3
+
+
+def _working_optimum(gram, rhs, rho, bounds, design, structure, gradient_tol):
+    """Maximise the working model's ``V`` over ``rho = log lambda`` by Newton's method.
+
+    ``rhs = H theta_c + g`` defines the working model (:func:`encodex.fit.smoothing.
+    working_criterion`). Newton directions use the exact Hessian, made positive definite
+    (:func:`_ascent_direction`), on the parameters not held at a bound of ``bounds``
+    (log lower, log upper) by a gradient pointing outwards; a step is capped at
+    :data:`MAX_LOG_STEP` and halved until ``V`` does not decrease. Stops when every free
+    gradient component is at most ``gradient_tol`` or a step moves no ``rho`` by more than
+    :data:`WORKING_STEP_TOL`. Returns the new ``rho``, or None when ``H + S`` is not positive
+    definite at the start.
+    """
+    lower, upper = bounds
+    value, theta = working_criterion(gram, rhs, design, structure, np.exp(rho))
+    if theta is None:
+        return None
+    for _ in range(WORKING_MAX_STEPS):
+        der = fixed_weight_derivatives(theta, gram, design, structure, np.exp(rho))
+        g = der.gradient
+        free = ~(((rho >= upper - 1e-9) & (g >= 0)) | ((rho <= lower + 1e-9) & (g <= 0)))
+        if np.max(np.abs(g[free]), initial=0.0) <= gradient_tol:
+            break
+        step = np.zeros_like(rho)
+        step[free] = _ascent_direction(-der.hessian[np.ix_(free, free)], g[free])
+        step *= min(1.0, MAX_LOG_STEP / max(float(np.max(np.abs(step))), 1e-300))
+        for _ in range(12):
+            new = np.clip(rho + step, lower, upper)
+            new_value, new_theta = working_criterion(gram, rhs, design, structure, np.exp(new))
+            if new_value >= value - 1e-11 * (1.0 + abs(value)):
+                break
+            step *= 0.5
+        else:
+            break
+        moved = float(np.max(np.abs(new - rho)))
+        rho, value, theta = new, new_value, new_theta
+        if moved <= WORKING_STEP_TOL:
+            break
+    return rho
 
 
 #: Largest change of any log lambda in one Newton step of the selection's second phase.

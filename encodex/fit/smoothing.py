@@ -38,6 +38,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import linalg
 
 from encodex.design import Design
 
@@ -263,6 +264,95 @@ def _pinv_penalty_products(structure: PenaltyStructure, lambdas) -> list:
     return out
 
 
+@dataclass(frozen=True)
+class FixedWeightDerivatives:
+    """Derivatives of ``V`` in ``rho = log lambda`` with the Poisson weights held fixed.
+
+    For the working model of one round (the log-likelihood replaced by its second-order
+    expansion at the current coefficients, ``H`` fixed) these are exact; for ``V`` itself the
+    gradient lacks the weight-change term of :func:`laml_derivatives`.
+
+    Attributes
+    ----------
+    gradient, hessian : ndarray
+        ``dV/drho`` and ``d2V/drho drho'`` with ``H`` fixed.
+    dtheta : ndarray, shape (n_penalties, n_theta)
+        ``dtheta_hat/drho_k = -A^{-1} lambda_k S_k theta_hat``.
+    a_inv : ndarray
+        ``(H + S_lambda)^{-1}``.
+    """
+
+    gradient: np.ndarray
+    hessian: np.ndarray
+    dtheta: np.ndarray
+    a_inv: np.ndarray
+
+
+def fixed_weight_derivatives(theta: np.ndarray, gram: np.ndarray, design: Design,
+                             structure: PenaltyStructure, lambdas) -> FixedWeightDerivatives:
+    """Gradient and Hessian of ``V`` in ``rho = log lambda`` with ``H = gram`` held fixed.
+
+    ``theta`` is the penalised optimum at ``lambdas`` (of the Poisson model, or of the
+    working model of :func:`working_criterion`). The formulas are those of
+    :func:`laml_derivatives` without the ``dH/drho`` terms (Wood 2011, JRSS-B 73:3, sec. 3).
+    """
+    lambdas = np.asarray(lambdas, dtype=float)
+    a = gram + design.penalty_matrix(lambdas)
+    try:
+        a_inv = np.linalg.inv(a)
+    except np.linalg.LinAlgError:
+        a_inv = np.linalg.pinv(a)
+    pens = design.penalty_list
+    m = len(pens)
+    b = np.zeros((m, design.n_theta))
+    for k, (_, sl, sk) in enumerate(pens):
+        b[k, sl] = lambdas[k] * (sk @ theta[sl])
+    a_inv_b = b @ a_inv                                 # rows: (A^{-1} b_k)'
+    # E_k = A^{-1} lambda_k S_k, kept as its non-zero columns.
+    e_cols = [a_inv[:, sl] @ (lambdas[k] * sk) for k, (_, sl, sk) in enumerate(pens)]
+    tr_as = np.array([np.trace(e[sl]) for e, (_, sl, _) in zip(e_cols, pens)])
+    q = _pinv_penalty_products(structure, lambdas)
+    tr_sp = np.array([np.trace(qk) for _, qk in q])
+    fixed = 0.5 * np.einsum("kp,p->k", b, theta) + 0.5 * tr_as - 0.5 * tr_sp
+    hess = np.diag(fixed) - a_inv_b @ b.T
+    for j, (_, sl_j, _) in enumerate(pens):
+        for k in range(j, m):
+            sl_k = pens[k][1]
+            t = np.sum(e_cols[j][sl_k] * e_cols[k][sl_j].T)
+            if q[j][0] == q[k][0]:
+                t -= np.sum(q[j][1] * q[k][1].T)
+            hess[j, k] -= 0.5 * t
+            if k != j:
+                hess[k, j] = hess[j, k]
+    return FixedWeightDerivatives(-fixed, -hess, -a_inv_b, a_inv)
+
+
+def working_criterion(gram: np.ndarray, rhs: np.ndarray, design: Design,
+                      structure: PenaltyStructure, lambdas) -> tuple[float, np.ndarray | None]:
+    """``V`` of the working model of one round, and its penalised optimum.
+
+    With the log-likelihood replaced by its second-order expansion at the current
+    coefficients ``theta_c`` (gradient ``g``, negative Hessian ``H = gram``), the penalised
+    optimum is ``theta_hat = A^{-1} r`` with ``A = H + S_lambda`` and ``r = H theta_c + g``
+    (``rhs``), and, up to a constant that does not depend on ``lambda``::
+
+        V_w(lambda) = 1/2 r' theta_hat + 1/2 log|S_lambda|_+ - 1/2 log|A|
+
+    Its derivatives in ``log lambda`` are those of :func:`fixed_weight_derivatives` at
+    ``theta_hat`` (exact here, since ``H`` is fixed). Returns ``(-inf, None)`` when ``A`` is
+    not positive definite.
+    """
+    a = gram + design.penalty_matrix(lambdas)
+    try:
+        c = linalg.cho_factor(a, lower=True, check_finite=False)
+    except linalg.LinAlgError:
+        return -np.inf, None
+    theta = linalg.cho_solve(c, rhs, check_finite=False)
+    log_det = 2.0 * float(np.sum(np.log(np.diag(c[0]))))
+    value = 0.5 * float(rhs @ theta) + 0.5 * structure.log_pdet(lambdas) - 0.5 * log_det
+    return (value if np.isfinite(value) else -np.inf), theta
+
+
 def laml_derivatives(theta: np.ndarray, w: np.ndarray, gram: np.ndarray, design: Design,
                      structure: PenaltyStructure, lambdas: np.ndarray) -> CriterionDerivatives:
     """Gradient and fixed-weight Hessian of the LAML in ``rho = log lambda``.
@@ -305,32 +395,6 @@ def laml_derivatives(theta: np.ndarray, w: np.ndarray, gram: np.ndarray, design:
         Of ``V`` itself (gradient of the criterion to be maximised).
     """
     lambdas = np.asarray(lambdas, dtype=float)
-    a = gram + design.penalty_matrix(lambdas)
-    try:
-        a_inv = np.linalg.inv(a)
-    except np.linalg.LinAlgError:
-        a_inv = np.linalg.pinv(a)
-    pens = design.penalty_list
-    m = len(pens)
-    b = np.zeros((m, design.n_theta))
-    for k, (_, sl, sk) in enumerate(pens):
-        b[k, sl] = lambdas[k] * (sk @ theta[sl])
-    a_inv_b = b @ a_inv                                 # rows: (A^{-1} b_k)'
-    # E_k = A^{-1} lambda_k S_k, kept as its non-zero columns.
-    e_cols = [a_inv[:, sl] @ (lambdas[k] * sk) for k, (_, sl, sk) in enumerate(pens)]
-    tr_as = np.array([np.trace(e[sl]) for e, (_, sl, _) in zip(e_cols, pens)])
-    q = _pinv_penalty_products(structure, lambdas)
-    tr_sp = np.array([np.trace(qk) for _, qk in q])
-    fixed = 0.5 * np.einsum("kp,p->k", b, theta) + 0.5 * tr_as - 0.5 * tr_sp
-    tr_dh = _weight_derivative_traces(design, w, gram, a_inv, -a_inv_b)
-    hess = np.diag(fixed) - a_inv_b @ b.T
-    for j, (_, sl_j, _) in enumerate(pens):
-        for k in range(j, m):
-            sl_k = pens[k][1]
-            t = np.sum(e_cols[j][sl_k] * e_cols[k][sl_j].T)
-            if q[j][0] == q[k][0]:
-                t -= np.sum(q[j][1] * q[k][1].T)
-            hess[j, k] -= 0.5 * t
-            if k != j:
-                hess[k, j] = hess[j, k]
-    return CriterionDerivatives(-(fixed + 0.5 * tr_dh), -hess, -a_inv_b)
+    fw = fixed_weight_derivatives(theta, gram, design, structure, lambdas)
+    tr_dh = _weight_derivative_traces(design, w, gram, fw.a_inv, fw.dtheta)
+    return CriterionDerivatives(fw.gradient - 0.5 * tr_dh, fw.hessian, fw.dtheta)
