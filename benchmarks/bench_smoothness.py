@@ -1,24 +1,25 @@
-"""Smoothness selection: Fellner-Schall alone against Fellner-Schall + Newton, speed and accuracy.
+"""Smoothness selection: the start phase alone against start + Newton phase, speed and accuracy.
 
 Problem: one simulated open-field session (:func:`_peers.make_problem`'s simulator, 20 ms
 bins, the solver benchmark's basis sizes), the first ``--units`` units, each fitted with four
 models of the forward selection (all five variables; position+speed; heading; speed+distance+
 time). Every (unit, model) is fitted with:
 
-* ``fs`` -- the generalised Fellner-Schall iteration alone (``FitOptions(max_newton=0)``, the
-  selection before the Newton phase existed);
-* ``newton`` -- the default: Fellner-Schall start, then Newton steps on log lambda with the
+* ``start`` -- the start phase alone (``FitOptions(max_newton=0)``: performance iteration,
+  each round's working criterion maximised by Newton steps; until 2026-12-03 the generalised
+  Fellner-Schall iteration, the selection before the Newton phase existed);
+* ``newton`` -- the default: the start phase, then Newton steps on log lambda with the
   exact gradient of the criterion;
 * ``newton_step_tol_1e-2`` -- the default with a five times tighter step tolerance;
 * ``newton_loose_start`` -- the default with a looser start (``lambda_tol=0.1``), to see whether
-  fewer Fellner-Schall rounds pay;
+  fewer start rounds pay;
 * a reference optimum (Newton to ``gradient_tol=1e-8``; not timed).
 
 Accuracy against the reference: largest ``|log lambda - log lambda_ref|`` over smoothing
 parameters where the criterion is curved (``-d2V/drho^2 >= 0.05`` at the reference, i.e. the
 parameter is determined), largest EDF difference per term, and the criterion gap
 ``V_ref - V``. Speed: median seconds over interleaved repeats, summed over the same fits; the
-ratio ``newton / fs`` is the cost of the exact optimum.
+ratio ``newton / start`` is the cost of the exact optimum.
 
 Run::
 
@@ -52,7 +53,7 @@ CURVED = 0.05
 def _options():
     from encodex.fit import FitOptions
 
-    return {"fs": FitOptions(max_newton=0), "newton": FitOptions(),
+    return {"start": FitOptions(max_newton=0), "newton": FitOptions(),
             "newton_step_tol_1e-2": FitOptions(step_tol=1e-2),
             "newton_loose_start": FitOptions(lambda_tol=0.1)}
 
@@ -125,19 +126,19 @@ def run(args) -> dict:
     return {"benchmark": "smoothness", "duration_s": duration, "n_bins": design.n_rows,
             "units": n_units, "models": ["+".join(m) for m in MODELS], "repeats": repeats,
             "machine": _peers.machine(), "rows": rows, "total_seconds": totals,
-            "ratio_to_fs": {k: v / totals["fs"] for k, v in totals.items()}, "worst": worst}
+            "ratio_to_start": {k: v / totals["start"] for k, v in totals.items()}, "worst": worst}
 
 
 def table(res: dict) -> str:
     lines = [f"{res['n_bins']} bins, {res['units']} units x {len(res['models'])} models, "
              f"median of {res['repeats']} interleaved repeats, load {res['machine']['loadavg_1min']:.1f}",
              "",
-             "| selection | total s | ratio to fs | worst dlog lambda (curved) | worst EDF diff "
+             "| selection | total s | ratio to start | worst dlog lambda (curved) | worst EDF diff "
              "| worst criterion gap |",
              "|---|---|---|---|---|---|"]
     for name, total in res["total_seconds"].items():
         w = res["worst"][name]
-        lines.append(f"| {name} | {total:.2f} | {res['ratio_to_fs'][name]:.2f} | "
+        lines.append(f"| {name} | {total:.2f} | {res['ratio_to_start'][name]:.2f} | "
                      f"{w['max_dlog_lambda_curved']:.2g} | {w['max_edf_diff']:.2g} | "
                      f"{w['criterion_gap']:.2g} |")
     return "\n".join(lines)

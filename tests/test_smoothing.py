@@ -37,7 +37,7 @@ def _criterion(design, y, structure, rho):
 
 # Central differences of V itself (step 1e-4 in log lambda, truncation error ~1e-8 * third
 # derivative): the exact gradient must match to 1e-6. Leaving out the weights' dependence on
-# lambda changes the gradient by ~1e-2 here (the gap the Fellner-Schall fixed point leaves).
+# lambda changes the gradient by ~1e-2 here (the gap the start phase's fixed point leaves).
 def test_gradient_equals_central_differences_of_the_criterion(problem):
     design, y, st = problem
     rho = np.log([2.0, 0.5, 3.0, 10.0])
@@ -77,7 +77,7 @@ def test_default_selection_ends_at_a_stationary_point(problem):
                                 f.lambdas).gradient
 
     g_fs, g = np.abs(gradient(fs)).max(), np.abs(gradient(fit)).max()
-    # Fellner-Schall alone stops where the exact gradient is still ~1e-2; the Newton phase
+    # The start phase alone stops where the exact gradient is still ~1e-2; the Newton phase
     # brings it below 1e-3 (measured 5e-5) and raises the criterion.
     assert g_fs > 3e-3
     assert g < 1e-3

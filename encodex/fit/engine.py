@@ -24,15 +24,15 @@ class FitOptions:
 
     Smoothness selection maximises the Laplace approximate restricted marginal likelihood
     (the REML-type criterion ``V`` of :mod:`encodex.fit.smoothing`) in two phases: a fast
-    start by the generalised Fellner-Schall iteration, then Newton steps on ``log lambda``
-    with the exact gradient (see :func:`encodex.fit.smoothing.laml_derivatives`).
+    start by performance iteration (:func:`_select_smoothness`), then Newton steps on
+    ``log lambda`` with the exact gradient (see :func:`encodex.fit.smoothing.laml_derivatives`).
 
     Attributes
     ----------
     newton : NewtonOptions
         Stopping rules of the inner Newton solver (coefficients at fixed smoothing).
     max_outer : int
-        Fellner-Schall updates before the start phase gives up.
+        Rounds of the start phase (one Gram matrix each at most) before it gives up.
     lambda_tol : float
         The start phase stops when no ``log lambda`` changes by more than this in an update...
     laml_tol : float
@@ -169,10 +169,11 @@ def fit_poisson(design: Design, y, offset=0.0, lambdas=None, rows=None, start=No
     lambdas : array_like, optional
         Fixed smoothing parameters, one per penalty (``design.n_penalties``). By default they
         are selected by maximising the Laplace approximate restricted marginal likelihood
-        (REML-type; Wood 2011, JRSS-B 73:3; :mod:`encodex.fit.smoothing`): generalised
-        Fellner-Schall updates (Wood & Fasiolo 2017, Biometrics 73:1071) as the start, then
-        Newton steps on ``log lambda`` with the exact gradient (see :class:`FitOptions` for
-        the stopping rules and the accuracy they give).
+        (REML-type; Wood 2011, JRSS-B 73:3; :mod:`encodex.fit.smoothing`): a performance
+        iteration as the start (per round, the working model's criterion maximised by Newton
+        steps on ``log lambda``; Gu 1992; Wood 2004, JASA 99:673), then Newton steps on
+        ``log lambda`` with the exact gradient (see :class:`FitOptions` for the stopping
+        rules and the accuracy they give).
     rows : ndarray of int or bool, optional
         Bins to fit (training folds); all by default. Left-out bins are never looked at.
     start : PoissonFit, sequence of PoissonFit, or ndarray, optional
@@ -351,16 +352,48 @@ WORKING_STEP_TOL = 1e-3
 
 
 def _working_optimum(gram, rhs, rho, bounds, design, structure, gradient_tol):
-    """Maximise the working model's ``V`` over ``rho = log lambda`` by Newton's method.
+    """Maximise the working model's ``V`` over ``rho = log lambda``.
 
     ``rhs = H theta_c + g`` defines the working model (:func:`encodex.fit.smoothing.
-    working_criterion`). Newton directions use the exact Hessian, made positive definite
-    (:func:`_ascent_direction`), on the parameters not held at a bound of ``bounds``
-    (log lower, log upper) by a gradient pointing outwards; a step is capped at
-    :data:`MAX_LOG_STEP` and halved until ``V`` does not decrease. Stops when every free
-    gradient component is at most ``gradient_tol`` or a step moves no ``rho`` by more than
-    :data:`WORKING_STEP_TOL`. Returns the new ``rho``, or None when ``H + S`` is not positive
-    definite at the start.
+    working_criterion`). Newton's method from ``rho`` (:func:`_working_newton`) finds the
+    nearest local maximum; ``V`` can also have one where a term is smoothed to its
+    unpenalised part (the upper bound of its lambda, where ``V`` is flat), which Newton steps
+    from an interior start do not reach. Each free smoothing parameter is therefore also
+    tried at its upper bound, and Newton's method restarted from the best such point when it
+    beats the local maximum (the generalised Fellner-Schall update this replaced jumped to
+    that bound whenever a term's penalised part had almost no degrees of freedom; without
+    the check, 2 of the 1,794 cells of benchmarks/labels_at_the_edges.py lost their exact
+    label to a lower local maximum). Returns the new ``rho``, or None when ``H + S`` is not
+    positive definite at the start.
+    """
+    found = _working_newton(gram, rhs, rho, bounds, design, structure, gradient_tol)
+    if found is None:
+        return None
+    rho, value = found
+    upper = bounds[1]
+    best = (value + 1e-9 * (1.0 + abs(value)), None)
+    for k in np.flatnonzero(rho < upper - 1e-9):
+        trial = rho.copy()
+        trial[k] = upper[k]
+        trial_value, _ = working_criterion(gram, rhs, design, structure, np.exp(trial))
+        if trial_value > best[0]:
+            best = (trial_value, trial)
+    if best[1] is not None:
+        found = _working_newton(gram, rhs, best[1], bounds, design, structure, gradient_tol)
+        if found is not None and found[1] > value:
+            rho = found[0]
+    return rho
+
+
+def _working_newton(gram, rhs, rho, bounds, design, structure, gradient_tol):
+    """Newton's method on the working model's ``V`` from ``rho``; ``(rho, V)`` or None.
+
+    Directions use the exact Hessian, made positive definite (:func:`_ascent_direction`),
+    on the parameters not held at a bound of ``bounds`` (log lower, log upper) by a gradient
+    pointing outwards; a step is capped at :data:`MAX_LOG_STEP` and halved until ``V`` does
+    not decrease. Stops when every free gradient component is at most ``gradient_tol`` or a
+    step moves no ``rho`` by more than :data:`WORKING_STEP_TOL`. None when ``H + S`` is not
+    positive definite at ``rho``.
     """
     lower, upper = bounds
     value, theta = working_criterion(gram, rhs, design, structure, np.exp(rho))
@@ -387,7 +420,7 @@ def _working_optimum(gram, rhs, rho, bounds, design, structure, gradient_tol):
         rho, value, theta = new, new_value, new_theta
         if moved <= WORKING_STEP_TOL:
             break
-    return rho
+    return rho, value
 
 
 #: Largest change of any log lambda in one Newton step of the selection's second phase.
@@ -452,7 +485,7 @@ def _walk_off_plateau(newton, design, y, mask, structure, rho, start, plateau, r
 
 
 def _newton_finish(newton, design, y, mask, structure, lam, res, bounds, options) -> _Finish:
-    """Newton steps on ``rho = log lambda`` from the Fellner-Schall start, to the optimum.
+    """Newton steps on ``rho = log lambda`` from the start phase's lambdas, to the optimum.
 
     Each step uses the exact gradient of the criterion ``V`` (with the change of the Poisson
     weights with lambda) and its fixed-weight Hessian (:func:`encodex.fit.smoothing.
@@ -483,7 +516,7 @@ def _newton_finish(newton, design, y, mask, structure, lam, res, bounds, options
         free = ~held
         # A term smoothed far beyond its start sits on a plateau of V (no curvature, gradient
         # ~1/lambda) where a small gradient does not mean an optimum. If V still rises towards
-        # smaller lambda there, try the start value once (Fellner-Schall's jump to the bound
+        # smaller lambda there, try the start value once (a start phase's jump to the bound
         # can strand a term that the data do support).
         plateau = (free & ~probed & (g < 0) & (rho > start + 1.0)
                    & (-np.diag(der.hessian) <= PLATEAU_CURVATURE))

@@ -98,7 +98,8 @@ class PoissonFit:
     n_iter : int
         Newton iterations in total.
     n_outer : int
-        Smoothness-selection updates: Fellner-Schall rounds plus Newton steps on log lambda
+        Smoothness-selection updates: performance-iteration rounds plus Newton steps on log
+        lambda
         (0 with fixed lambdas).
     offset : float or ndarray
         Offset used in the fit; an array whose values are all equal (the usual log bin

@@ -19,17 +19,22 @@ fixed (mgcv's ``"ML"``), which selects smoother fits.
 
 Its maximisation (:func:`encodex.fit.engine.fit_poisson`)
 ---------------------------------------------------------
-1. Fast start: the generalised Fellner-Schall fixed point (Wood & Fasiolo 2017, Biometrics
-   73:1071, eq. 2 with known scale)::
+1. Fast start, performance iteration (Gu 1992, J. Comput. Graph. Stat. 1:169; Wood 2004,
+   JASA 99:673): each round forms ``H`` once at the current coefficients, maximises ``V``
+   of the working model (the log-likelihood replaced by its second-order expansion there,
+   :func:`working_criterion`) by Newton's method on ``log lambda`` with no pass over the
+   bins, then takes one Newton step on the coefficients. Its fixed point treats ``H`` as
+   fixed in lambda and therefore stops short of the optimum of ``V`` (by up to a few percent
+   in lambda). A round whose ``H + S_lambda`` is not positive definite takes a generalised
+   Fellner-Schall update instead (Wood & Fasiolo 2017, Biometrics 73:1071, eq. 2 with known
+   scale)::
 
        lambda_k <- lambda_k * (tr(S_lambda^- S_k) - tr((H + S_lambda)^{-1} S_k)) / (theta' S_k theta)
 
-   which treats ``H`` as fixed in lambda and therefore stops short of the optimum of ``V``
-   (by up to a few percent in lambda).
 2. Newton steps on ``rho = log lambda`` with the exact gradient of ``V``, which includes the
    change of the Poisson weights with lambda (:func:`laml_derivatives`), until the gradient
    or the step is small (:class:`encodex.fit.engine.FitOptions`). A parameter that step 1
-   sent far up to where ``V`` is flat (a term smoothed away) while ``V`` still rises towards
+   left far up to where ``V`` is flat (a term smoothed away) while ``V`` still rises towards
    smaller lambda is walked back first: there a small gradient is no sign of an optimum.
 """
 
@@ -63,8 +68,9 @@ NEGLIGIBLE_TRACE = 1e-9
 CRITERION_STATEMENT = (
     "Smoothing parameters maximise the Laplace approximate restricted marginal likelihood "
     "(REML-type criterion, unpenalised effects integrated out; Wood 2011, J. R. Stat. Soc. B "
-    "73:3-36; mgcv's method 'REML'), from generalised Fellner-Schall updates (Wood & Fasiolo "
-    "2017, Biometrics 73:1071-1081) followed by Newton steps on log smoothing parameters with "
+    "73:3-36; mgcv's method 'REML'), from a performance iteration (Newton steps on the "
+    "working model's criterion; Gu 1992, J. Comput. Graph. Stat. 1:169-179; Wood 2004, J. Am. "
+    "Stat. Assoc. 99:673-686) followed by Newton steps on log smoothing parameters with "
     "the exact gradient, stopped when every gradient component is below 1e-4 or a step moves "
     "no log smoothing parameter by more than 0.05 (remaining error measured below 0.3% in the "
     "smoothing parameters; on three reference problems they agree with mgcv 1.8-41's REML to "

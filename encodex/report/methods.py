@@ -33,6 +33,10 @@ REFERENCES: dict[str, str] = {
     "Wood 2011": "Wood, S. N. (2011). Fast stable restricted maximum likelihood and marginal "
                  "likelihood estimation of semiparametric generalized linear models. J. R. "
                  "Stat. Soc. B 73:3-36.",
+    "Gu 1992": "Gu, C. (1992). Cross-validating non-Gaussian data. J. Comput. Graph. Stat. "
+               "1:169-179.",
+    "Wood 2004": "Wood, S. N. (2004). Stable and efficient multiple smoothing parameter "
+                 "estimation for generalized additive models. J. Am. Stat. Assoc. 99:673-686.",
     "Wood & Fasiolo 2017": "Wood, S. N. & Fasiolo, M. (2017). A generalized Fellner-Schall "
                            "method for smoothing parameter optimization with application to "
                            "Tweedie location, scale and shape models. Biometrics 73:1071-1081.",
@@ -476,11 +480,12 @@ def _drift(m: MethodsInput):
 def _smoothness(m: MethodsInput):
     text = ("Smoothing parameters were chosen by maximising the Laplace-approximate "
             "restricted marginal likelihood (a REML-type criterion, unpenalised effects "
-            "integrated out; Wood 2011): generalised Fellner-Schall updates (Wood & Fasiolo "
-            "2017) gave the start and Newton steps on the log smoothing parameters, with the "
+            "integrated out; Wood 2011): a performance iteration (each round's working model's "
+            "criterion maximised by Newton steps; Gu 1992; Wood 2004) gave the start and "
+            "Newton steps on the log smoothing parameters, with the "
             "exact gradient including the dependence of the Poisson weights on them (Wood "
             "2011), reached the optimum")
-    cites = ("Wood 2011", "Wood & Fasiolo 2017")
+    cites = ("Wood 2011", "Gu 1992", "Wood 2004")
     ff = m.get("fold_fits")
     if ff == "one-step":
         text += (", once per cell and model on all bins of the environment; each fold's model "
