@@ -150,3 +150,43 @@ def test_penalty_pieces_of_single_penalty_terms_match_a_fresh_eigendecomposition
         k += m
     assert structure.log_pdet(lam) == pytest.approx(log_pdet, rel=1e-12, abs=1e-9)
     np.testing.assert_allclose(structure.trace_pinv_products(lam), traces, rtol=1e-9)
+
+
+# A drift-only model of a sparse cell (519 spikes in 30 min, simulated with encodex's own
+# generator) whose criterion has two local maxima: the drift smoothed to a straight line
+# (edf 1, V = -2716.955) and a wiggly one (edf 3.8, V = -2717.128). Newton steps from the
+# generic start go to the lower, interior one; the start phase's one trial of each lambda at
+# its upper bound must find the higher one (found by benchmarks/labels_at_the_edges.py,
+# where the lower maximum cost a speed+time cell its speed label).
+@pytest.fixture(scope="module")
+def two_maxima():
+    from encodex.design import DRIFT_TERM, drift_basis
+    from encodex.session import build_session
+    from encodex.simulate import binned_counts, simulate_recording
+    from encodex.variables import VARIABLES
+
+    rec, _ = simulate_recording(seed=100, n_cells=1, duration_s=1800.0, environments=("box",))
+    s = build_session(rec, bin_size=0.05)
+    rows = np.flatnonzero(np.asarray(s.valid) & (np.asarray(s.environment) == 0))
+    cov = {v: np.asarray(s.covariates[v])[rows] for v in VARIABLES}
+    t = np.asarray(s.time)
+    clock = t[rows] - t[np.flatnonzero(np.asarray(s.environment) == 0)[0]]
+    y = binned_counts(cov, clock, 0.05, ["speed", "time"], np.random.default_rng(11440),
+                      strength=0.5, mean_rate_hz=0.3, modulation="poisson")
+    design = build_design({DRIFT_TERM: clock}, {DRIFT_TERM: drift_basis(clock)})
+    return design, y, np.log(0.05)
+
+
+def test_start_phase_finds_the_higher_of_two_local_maxima(two_maxima, monkeypatch):
+    import encodex.fit.engine as engine
+
+    design, y, offset = two_maxima
+    fit = fit_poisson(design, y, offset)
+    assert fit.converged, fit.reason
+    assert fit.laml == pytest.approx(-2716.9552, abs=1e-3)
+    assert fit.edf["drift"] == pytest.approx(1.0, abs=1e-3)
+    # Without the trial the same fit stops at the lower maximum: the check can fail.
+    monkeypatch.setattr(engine, "_smoothed_away_start", lambda *args: None)
+    interior = fit_poisson(design, y, offset)
+    assert interior.laml < fit.laml - 0.1
+    assert interior.edf["drift"] > 3.0

@@ -44,15 +44,16 @@ class FitOptions:
     step_tol : float
         ... or once it has taken a Newton step whose largest change in ``log lambda`` is at
         most this: each step shrinks the distance to the optimum by a factor of about 25
-        (benchmarks/bench_smoothness.py: worst remaining error 0.0025 in log lambda with
-        0.05, at 1.3x the time of Fellner-Schall alone; 3.5e-4 at 1.6x with 1e-2).
+        (benchmarks/bench_smoothness.py --quick: worst remaining error 6.2e-4 in log lambda
+        with 0.05, at 1.41x the time of the start phase alone; 5.5e-4 at 1.43x with 1e-2).
     max_newton : int
-        Newton steps on ``log lambda`` before giving up (0 skips the phase: Fellner-Schall
-        alone, which stops short of the optimum by up to ~3% in lambda).
+        Newton steps on ``log lambda`` before giving up (0 skips the phase: the start phase
+        alone, which stops short of the optimum by up to ~8% in lambda).
 
-    With the defaults the selected smoothing parameters were within 0.3% of the optimum of
-    ``V`` where it is curved, effective degrees of freedom within 0.002 per term and ``V``
-    within 2e-6 of its maximum on 40 simulated cell-models (benchmarks/bench_smoothness.py);
+    With the defaults the selected smoothing parameters were within 0.07% of the optimum of
+    ``V`` where it is curved, effective degrees of freedom within 0.0005 per term and ``V``
+    within 1.1e-4 of its maximum (a term on a stretch where ``V`` is flat to within the
+    gradient tolerance) on 16 simulated cell-models (benchmarks/bench_smoothness.py --quick);
     on the three mgcv reference problems within 0.02%, 1e-4 and 4e-7 of mgcv's REML
     (reference_checks/test_mgcv_reference.py asserts 1%, 0.005 and 1e-5;
     reference_checks/test_engine_reference.py checks a direct maximisation).

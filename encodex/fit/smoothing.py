@@ -24,8 +24,8 @@ Its maximisation (:func:`encodex.fit.engine.fit_poisson`)
    of the working model (the log-likelihood replaced by its second-order expansion there,
    :func:`working_criterion`) by Newton's method on ``log lambda`` with no pass over the
    bins, then takes one Newton step on the coefficients. Its fixed point treats ``H`` as
-   fixed in lambda and therefore stops short of the optimum of ``V`` (by up to a few percent
-   in lambda). A round whose ``H + S_lambda`` is not positive definite takes a generalised
+   fixed in lambda and therefore stops short of the optimum of ``V`` (by up to ~8% in lambda
+   in benchmarks/bench_smoothness.py). A round whose ``H + S_lambda`` is not positive definite takes a generalised
    Fellner-Schall update instead (Wood & Fasiolo 2017, Biometrics 73:1071, eq. 2 with known
    scale)::
 
@@ -129,11 +129,26 @@ class PenaltyStructure:
                 ev, vec = self.single[j]
                 out.append((t.penalties, lam, lam[0] * ev, vec))
             else:
-                s = sum(l * p for l, p in zip(lam, t.penalties))
-                ev, vec = np.linalg.eigh(s)
-                out.append((t.penalties, lam, ev[-r:], vec[:, -r:]))
+                out.append((t.penalties, lam, *self._multi_penalty_eigenpairs(j, lam)))
             k += m
         return out
+
+    def _multi_penalty_eigenpairs(self, j: int, lam: np.ndarray):
+        """Non-zero eigenpairs of term ``j``'s ``sum lambda_k S_k``, remembered per lambdas.
+
+        The start phase evaluates the working criterion and its derivatives at the same
+        lambdas, and at lambdas that differ in one term only (each parameter tried at its
+        bound), so the same decompositions are asked for again and again.
+        """
+        cache = self.__dict__.setdefault("_eigen_cache", {})
+        key = (j, lam.tobytes())
+        if key not in cache:
+            if len(cache) >= 64:
+                cache.clear()
+            ev, vec = np.linalg.eigh(sum(l * p for l, p in zip(lam, self.design.terms[j].penalties)))
+            r = self.ranks[j]
+            cache[key] = (ev[-r:], vec[:, -r:])
+        return cache[key]
 
     def log_pdet(self, lambdas) -> float:
         """``log|S_lambda|_+``: sum of logs of the non-zero eigenvalues, term by term."""
