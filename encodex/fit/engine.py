@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -288,75 +289,92 @@ def _select_smoothness(design, y, offset, mask, structure, theta0, warm, options
     solver = PenalisedPoissonNewton(design, y, offset, np.zeros((design.n_theta,) * 2), mask,
                                     options.newton)
     no_penalty = solver.S
-    theta = theta0
     # The data part of the objective (S is zero here); each round adds its own penalty term
     # instead of recomputing X theta and exp on every bin.
-    eta = solver.linear_predictor(theta)
-    f_data, mu = solver.objective(theta, eta)
+    eta = solver.linear_predictor(theta0)
+    f_data, mu = solver.objective(theta0, eta)
+    st = _StartState(theta0, eta, mu, f_data, solver.gram(mu), eta, np.empty(0))
     log_y_factorials = log_factorial_sum(y, mask)
-    gram = solver.gram(mu)
-    eta_at_gram = eta
-    init = initial_lambdas(design, gram)
+    init = initial_lambdas(design, st.gram)
     upper = np.minimum(init * RELATIVE_RANGE, LAMBDA_MAX)
     lower = np.maximum(init / RELATIVE_RANGE, LAMBDA_MIN)
-    lam = init if warm is None else np.clip(np.where(np.isnan(warm), init, warm), lower, upper)
+    st.lam = init if warm is None else np.clip(np.where(np.isnan(warm), init, warm), lower, upper)
     bounds = (np.log(lower), np.log(upper))
-    change = np.inf
-    rounds = 0
-    previous = -np.inf
-    flat_rounds = 0
+    change, rounds, previous, flat_rounds = np.inf, 0, -np.inf, 0
     settled, tried = None, False
     for rounds in range(1, options.max_outer + 1):
         solver.S = no_penalty
-        data_gradient = solver.gradient(theta, mu)          # Z'X'(m mu - m y)
-        rhs = gram @ theta - data_gradient
-        new = _working_optimum(gram, rhs, np.log(lam), bounds, design, structure,
+        data_gradient = solver.gradient(st.theta, st.mu)          # Z'X'(m mu - m y)
+        rhs = st.gram @ st.theta - data_gradient
+        new = _working_optimum(st.gram, rhs, np.log(st.lam), bounds, design, structure,
                                options.gradient_tol)
         if new is None:
-            new = np.log(fellner_schall_update(theta, gram, design, structure, lam,
+            new = np.log(fellner_schall_update(st.theta, st.gram, design, structure, st.lam,
                                                upper=upper, lower=lower))
-        change = float(np.max(np.abs(new - np.log(lam))))
-        lam = np.exp(new)
-        solver.S = design.penalty_matrix(lam)
-        f = f_data + 0.5 * theta @ solver.S @ theta
-        g = data_gradient + solver.S @ theta
-        d = solver.direction(gram + solver.S, g)
-        decrement = -float(g @ d)
+        change = float(np.max(np.abs(new - np.log(st.lam))))
+        st.lam = np.exp(new)
+        solver.S = design.penalty_matrix(st.lam)
+        f = st.f_data + 0.5 * st.theta @ solver.S @ st.theta
+        g = data_gradient + solver.S @ st.theta
+        d = solver.direction(st.gram + solver.S, g)
         # theta only needs to be close enough to its optimum for the lambda update to be
         # accurate; the final Newton solve at the selected lambdas polishes it.
-        step_small = decrement / 2 <= 1e-9 * (1 + abs(f))
+        step_small = -float(g @ d) / 2 <= 1e-9 * (1 + abs(f))
         # A lambda that no longer changes the fit (a term shrunk to its unpenalised part)
         # can drift without limit; the criterion itself then stops changing.
-        value = laml(-f_data - log_y_factorials, theta, gram, design, structure, lam)
+        value = laml(-st.f_data - log_y_factorials, st.theta, st.gram, design, structure,
+                     st.lam)
         flat_rounds = flat_rounds + 1 if abs(value - previous) <= options.laml_tol * (
             1 + abs(value)) else 0
         previous = value
         if step_small and (change < options.lambda_tol or flat_rounds >= 3):
             change = 0.0
             jump = None if tried else _smoothed_away_start(
-                gram, rhs, np.log(lam), bounds, design, structure, options.gradient_tol)
+                st.gram, rhs, np.log(st.lam), bounds, design, structure, options.gradient_tol)
             tried = True
             if jump is None:
                 break
-            settled = (value, lam, theta, eta, mu, gram, eta_at_gram, f_data)
-            lam, previous, flat_rounds = np.exp(jump), -np.inf, 0
+            settled = (value, dataclasses.replace(st))
+            st.lam, previous, flat_rounds = np.exp(jump), -np.inf, 0
             continue
-        t, f_new, eta_new, mu_new = solver.line_search(theta, f, g, d)
-        if t > 0.0:
-            theta = theta + t * d
-            eta, mu = eta_new, mu_new
-            f_data = f_new - 0.5 * theta @ solver.S @ theta
-        # The Gram matrix is the costly pass. Near the end theta barely moves: while no bin's
-        # log rate has moved by more than GRAM_REUSE_TOL since it was formed, it is reused
-        # (see GRAM_REUSE_TOL; the final Newton solve works with the exact matrix).
-        if np.max(np.abs(eta - eta_at_gram), initial=0.0) > GRAM_REUSE_TOL:
-            gram = solver.gram(mu)
-            eta_at_gram = eta
+        _advance(solver, st, f, g, d)
     if settled is not None and settled[0] > value:
-        value, lam, theta, eta, mu, gram, eta_at_gram, f_data = settled
-        change = 0.0
-    fresh = eta_at_gram is eta
-    return lam, theta, rounds, rounds, change, mu, (gram if fresh else None), (lower, upper, init)
+        st, change = settled[1], 0.0
+    fresh = st.eta_at_gram is st.eta
+    return (st.lam, st.theta, rounds, rounds, change, st.mu, (st.gram if fresh else None),
+            (lower, upper, init))
+
+
+@dataclass
+class _StartState:
+    """Where the start phase's rounds are: coefficients, their fit and the Gram matrix.
+
+    ``eta_at_gram`` is the linear predictor at which ``gram`` was formed (the same object
+    as ``eta`` when the Gram matrix is fresh).
+    """
+
+    theta: np.ndarray
+    eta: np.ndarray
+    mu: np.ndarray
+    f_data: float                  # objective without the penalty
+    gram: np.ndarray
+    eta_at_gram: np.ndarray
+    lam: np.ndarray
+
+
+def _advance(solver, st: _StartState, f: float, g: np.ndarray, d: np.ndarray) -> None:
+    """One damped Newton step on theta along ``d``, and the Gram matrix where it is stale."""
+    t, f_new, eta_new, mu_new = solver.line_search(st.theta, f, g, d)
+    if t > 0.0:
+        st.theta = st.theta + t * d
+        st.eta, st.mu = eta_new, mu_new
+        st.f_data = f_new - 0.5 * st.theta @ solver.S @ st.theta
+    # The Gram matrix is the costly pass. Near the end theta barely moves: while no bin's log
+    # rate has moved by more than GRAM_REUSE_TOL since it was formed, it is reused (see
+    # GRAM_REUSE_TOL; the final Newton solve works with the exact matrix).
+    if np.max(np.abs(st.eta - st.eta_at_gram), initial=0.0) > GRAM_REUSE_TOL:
+        st.gram = solver.gram(st.mu)
+        st.eta_at_gram = st.eta
 
 
 #: Newton steps on log lambda per round of the performance iteration (each costs a few
