@@ -268,7 +268,7 @@ def _select_smoothness(design, y, offset, mask, structure, theta0, warm, options
     log-likelihood by its second-order expansion there (the working model). For a fixed
     ``H`` the criterion ``V`` and its first two derivatives in ``log lambda`` need no pass
     over the bins (:func:`encodex.fit.smoothing.working_criterion`), so the round maximises
-    the working ``V`` by Newton's method on ``log lambda`` (:func:`_working_optimum`), then
+    the working ``V`` by Newton's method on ``log lambda`` (:func:`_working_newton`), then
     takes one damped Newton step on ``theta`` at those lambdas with the same ``H`` (the
     Hessian of the log-likelihood does not depend on lambda). At the joint fixed point theta
     is the penalised optimum for lambda and lambda the optimum of ``V`` with the weights held
@@ -306,11 +306,10 @@ def _select_smoothness(design, y, offset, mask, structure, theta0, warm, options
         solver.S = no_penalty
         data_gradient = solver.gradient(st.theta, st.mu)          # Z'X'(m mu - m y)
         rhs = st.gram @ st.theta - data_gradient
-        new = _working_optimum(st.gram, rhs, np.log(st.lam), bounds, design, structure,
-                               options.gradient_tol)
-        if new is None:
-            new = np.log(fellner_schall_update(st.theta, st.gram, design, structure, st.lam,
-                                               upper=upper, lower=lower))
+        found = _working_newton(st.gram, rhs, np.log(st.lam), bounds, design, structure,
+                                options.gradient_tol)
+        new = found[0] if found is not None else np.log(fellner_schall_update(
+            st.theta, st.gram, design, structure, st.lam, upper=upper, lower=lower))
         change = float(np.max(np.abs(new - np.log(st.lam))))
         st.lam = np.exp(new)
         solver.S = design.penalty_matrix(st.lam)
@@ -386,17 +385,6 @@ WORKING_MAX_STEPS = 30
 WORKING_STEP_TOL = 1e-3
 
 
-def _working_optimum(gram, rhs, rho, bounds, design, structure, gradient_tol):
-    """Maximise the working model's ``V`` over ``rho = log lambda`` from ``rho``.
-
-    ``rhs = H theta_c + g`` defines the working model (:func:`encodex.fit.smoothing.
-    working_criterion`). Returns the new ``rho`` (:func:`_working_newton`), or None when
-    ``H + S`` is not positive definite at the start.
-    """
-    found = _working_newton(gram, rhs, rho, bounds, design, structure, gradient_tol)
-    return None if found is None else found[0]
-
-
 def _smoothed_away_start(gram, rhs, rho, bounds, design, structure, gradient_tol):
     """A start for the rounds with one term smoothed away, if the working ``V`` prefers it.
 
@@ -428,10 +416,11 @@ def _smoothed_away_start(gram, rhs, rho, bounds, design, structure, gradient_tol
 def _working_newton(gram, rhs, rho, bounds, design, structure, gradient_tol):
     """Newton's method on the working model's ``V`` from ``rho``; ``(rho, V)`` or None.
 
-    Directions use the exact Hessian, made positive definite (:func:`_ascent_direction`),
-    on the parameters not held at a bound of ``bounds`` (log lower, log upper) by a gradient
-    pointing outwards; a step is capped at :data:`MAX_LOG_STEP` and halved until ``V`` does
-    not decrease. Stops when every free gradient component is at most ``gradient_tol`` or a
+    ``rhs = H theta_c + g`` defines the working model (:func:`encodex.fit.smoothing.
+    working_criterion`). Directions use the exact Hessian, made positive definite
+    (:func:`_ascent_direction`), on the parameters not held at a bound of ``bounds`` (log
+    lower, log upper) by a gradient pointing outwards; a step is capped at
+    :data:`MAX_LOG_STEP` and halved until ``V`` does not decrease. Stops when every free gradient component is at most ``gradient_tol`` or a
     step moves no ``rho`` by more than :data:`WORKING_STEP_TOL`. None when ``H + S`` is not
     positive definite at ``rho``.
     """

@@ -99,8 +99,7 @@ class PoissonFit:
         Newton iterations in total.
     n_outer : int
         Smoothness-selection updates: performance-iteration rounds plus Newton steps on log
-        lambda
-        (0 with fixed lambdas).
+        lambda (0 with fixed lambdas).
     offset : float or ndarray
         Offset used in the fit; an array whose values are all equal (the usual log bin
         width) is kept as that one number, so that a fit sent between processes or kept for

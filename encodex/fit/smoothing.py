@@ -25,9 +25,9 @@ Its maximisation (:func:`encodex.fit.engine.fit_poisson`)
    :func:`working_criterion`) by Newton's method on ``log lambda`` with no pass over the
    bins, then takes one Newton step on the coefficients. Its fixed point treats ``H`` as
    fixed in lambda and therefore stops short of the optimum of ``V`` (by up to ~8% in lambda
-   in benchmarks/bench_smoothness.py). A round whose ``H + S_lambda`` is not positive definite takes a generalised
-   Fellner-Schall update instead (Wood & Fasiolo 2017, Biometrics 73:1071, eq. 2 with known
-   scale)::
+   in benchmarks/bench_smoothness.py). A round whose ``H + S_lambda`` is not positive
+   definite takes a generalised Fellner-Schall update instead (Wood & Fasiolo 2017,
+   Biometrics 73:1071, eq. 2 with known scale)::
 
        lambda_k <- lambda_k * (tr(S_lambda^- S_k) - tr((H + S_lambda)^{-1} S_k)) / (theta' S_k theta)
 
@@ -124,7 +124,6 @@ class PenaltyStructure:
         for j, t in enumerate(self.design.terms):
             m = len(t.penalties)
             lam = np.asarray(lambdas[k:k + m], dtype=float)
-            r = self.ranks[j]
             if self.single and self.single[j] is not None:
                 ev, vec = self.single[j]
                 out.append((t.penalties, lam, lam[0] * ev, vec))
@@ -145,7 +144,8 @@ class PenaltyStructure:
         if key not in cache:
             if len(cache) >= 64:
                 cache.clear()
-            ev, vec = np.linalg.eigh(sum(l * p for l, p in zip(lam, self.design.terms[j].penalties)))
+            penalties = self.design.terms[j].penalties
+            ev, vec = np.linalg.eigh(sum(l * p for l, p in zip(lam, penalties)))
             r = self.ranks[j]
             cache[key] = (ev[-r:], vec[:, -r:])
         return cache[key]
