@@ -150,7 +150,40 @@ def _gram(design, weights) -> np.ndarray:
 
 
 def _measure(gram, idx_j, idx_o, b=None):
-    """largest, average, fitted ratios from the Gram matrix and two index sets (theta layout)."""
+    """largest, average, fitted ratios from the Gram matrix and two index sets (theta layout).
+
+    Without ``b``, results on a cached unweighted Gram matrix are remembered with it: every
+    cell of an environment asks for the same ones (~50 ms a cell of whitening and SVDs).
+    """
+    memo = _measure_memo(gram) if b is None else None
+    key = (idx_j.tobytes(), idx_o.tobytes())
+    if memo is not None and key in memo:
+        return memo[key]
+    out = _measure_now(gram, idx_j, idx_o, b)
+    if memo is not None:
+        memo[key] = out
+    return out
+
+
+#: Remembered ratios per cached unweighted Gram matrix (by identity, through weak references).
+_MEASURE_MEMO: dict[int, tuple[weakref.ref, dict]] = {}
+
+
+def _measure_memo(gram: np.ndarray) -> dict | None:
+    """The memo of a cached, read-only unweighted Gram matrix (see :func:`_gram`), else None."""
+    if gram.flags.writeable:
+        return None
+    hit = _MEASURE_MEMO.get(id(gram))
+    if hit is not None and hit[0]() is gram:
+        return hit[1]
+    while len(_MEASURE_MEMO) >= _GRAM_CACHE_SIZE:
+        _MEASURE_MEMO.pop(next(iter(_MEASURE_MEMO)))
+    memo: dict = {}
+    _MEASURE_MEMO[id(gram)] = (weakref.ref(gram), memo)
+    return memo
+
+
+def _measure_now(gram, idx_j, idx_o, b=None):
     gjj = gram[np.ix_(idx_j, idx_j)]
     goo = gram[np.ix_(idx_o, idx_o)]
     gjo = gram[np.ix_(idx_j, idx_o)]

@@ -21,9 +21,11 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from scipy.special import gammaln
 
 from encodex.fit.result import poisson_deviance as _fit_deviance
 from encodex.fit.result import poisson_loglik as _fit_loglik
+from encodex.fit.result import poisson_loglik_deviance
 
 LN2 = float(np.log(2.0))
 
@@ -95,13 +97,17 @@ def heldout_score(y: np.ndarray, mu: np.ndarray, mu_mean: np.ndarray) -> HeldOut
     """
     n = int(np.sum(y))
     mu = np.maximum(mu, PREDICTION_FLOOR * np.asarray(mu_mean, dtype=float))
-    ll = poisson_loglik(y, mu)
-    ll0 = poisson_loglik(y, mu_mean)
+    # The logs of the counts are shared by both predictions (this runs once per fold and
+    # model: ~5% of a 5-minute cell's time when each sum found its own spikes).
+    y = np.asarray(y, dtype=float)
+    spikes = np.flatnonzero(y)
+    log_factorials = gammaln(y[spikes] + 1.0)
+    ll, d = poisson_loglik_deviance(y, mu, spikes, log_factorials)
+    ll0, d0 = poisson_loglik_deviance(y, mu_mean, spikes, log_factorials)
     gain = ll - ll0
     bps = gain / (max(n, 1) * LN2)
     r2 = 1.0 - ll / ll0 if ll0 != 0 else np.nan
-    d0 = poisson_deviance(y, mu_mean)
-    dev = 1.0 - poisson_deviance(y, mu) / d0 if d0 > 0 else np.nan
+    dev = 1.0 - d / d0 if d0 > 0 else np.nan
     return HeldOutScore(n, ll, ll0, float(bps), float(r2), float(dev))
 
 

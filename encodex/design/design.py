@@ -201,10 +201,11 @@ class Design:
             eta = np.zeros(np.arange(self.n_rows)[rows].size)
         return eta + beta[0]
 
-    def linear_predictors(self, thetas: np.ndarray) -> np.ndarray:
+    def linear_predictors(self, thetas: np.ndarray, dtype=np.float64) -> np.ndarray:
         """``X Z theta_j`` for several coefficient vectors at once (rows of ``thetas``).
 
-        Returns an (n_rows, n_vectors) array. The products run over the compact rows of
+        Returns an (n_rows, n_vectors) array of ``dtype`` (None: the plan's own, float32
+        with ``gram_precision="single"``, which saves the cast). The products run over the compact rows of
         :meth:`weighted_gram`'s plan: one dense BLAS product per run of rows (and contiguous
         stretch of the design's compact columns), instead of a sparse pass per term; 20
         vectors over 180,000 bins measured 2.5-3.3x faster than the sparse products
@@ -231,8 +232,27 @@ class Design:
                 for lo, hi, at in spans:
                     c[at:at + hi - lo] = rows[lo:hi, start:stop]
                 np.matmul(c.T, b, out=out_sorted[start:stop])
-        out = np.empty((self.n_rows, thetas.shape[0]))
+        out = np.empty((self.n_rows, thetas.shape[0]), dtype=dtype or rows.dtype)
         out[plan.order] = out_sorted
+        return out
+
+    def linear_predictor_bounds(self, thetas: np.ndarray) -> np.ndarray:
+        """Upper bounds on ``max_i |(X Z theta_j)_i|`` for each row of ``thetas``, no pass over bins.
+
+        ``|x_i' beta| <= |beta_0| + sum_terms max_i ||x_i,term||_1 max|beta_term|``; each
+        term's largest row sum of absolute values is computed once (cached on the base
+        design). For B-spline terms (rows summing to 1) the bound is the intercept plus each
+        term's largest coefficient.
+        """
+        thetas = np.atleast_2d(np.asarray(thetas, dtype=float))
+        cache = self._base.__dict__.setdefault("_row_l1_max", {})
+        betas = thetas @ self.Z.T
+        out = np.abs(betas[:, 0])
+        for t in self.terms:
+            if t.name not in cache:
+                cache[t.name] = float(np.max(np.sum(np.abs(t.block.values), axis=1), initial=0.0))
+            part = np.abs(betas[:, self.beta_slices[t.name]])
+            out = out + cache[t.name] * np.max(part, axis=1, initial=0.0)
         return out
 
     def transpose_dot(self, r: np.ndarray) -> np.ndarray:

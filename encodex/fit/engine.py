@@ -483,7 +483,7 @@ def _ascent_direction(neg_hessian: np.ndarray, g: np.ndarray) -> np.ndarray:
 
 def _solve_from_prediction(solver, res, delta):
     """Newton solve from ``res.theta + delta`` when it lowers the objective, else from ``res``."""
-    f_here, _ = solver.objective(res.theta, np.log(res.mu))
+    f_here = solver.objective_at(res.theta, res.mu)
     trial = res.theta + delta
     f_trial, mu_trial = solver.objective(trial)
     if f_trial < f_here:

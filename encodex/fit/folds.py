@@ -70,8 +70,9 @@ def refit_folds(design: Design, y, offset, full: PoissonFit, folds: np.ndarray, 
     The one-step refits take one pass over the bins for the per-fold Gram pieces, one for the
     per-fold gradients and one for the linear predictors of all the steps together
     (:meth:`Design.linear_predictors`, one column per fold, in the Gram plan's arithmetic:
-    the steps are increments added to the exact float64 predictor); each fold's objective,
-    log-likelihood and deviance are then sums over those columns.
+    the steps' increments of the linear predictor, exponentiated in that precision and
+    multiplied into the exact float64 rates); each fold's objective, log-likelihood and
+    deviance are then float64 sums over those columns.
     """
     y = np.asarray(y, dtype=float)
     folds = np.asarray(folds)
@@ -121,28 +122,30 @@ def refit_folds(design: Design, y, offset, full: PoissonFit, folds: np.ndarray, 
         grads[k] = grad_all - grad_k[k] + penalty_gradient
         steps[k] = solver.direction(h + s, grads[k])
         hessians.append(h)
-    # Linear predictors after each fold's full step, all folds in one pass: n x n_folds.
-    # Bins without spikes contribute only mu to a fold's objective, so its y * eta part is
-    # summed over the bins with spikes alone; "training bins of fold k" is all bins in folds
-    # minus fold k's own.
+    # Each fold's step changes the linear predictor by X Z d_k; all folds in one pass,
+    # n x n_folds, in the Gram plan's arithmetic (float32 with single precision: relative
+    # error ~1e-7, the size of the rounding of the exponential below). Bins without spikes
+    # contribute only mu to a fold's objective, so its y * eta part is summed over the bins
+    # with spikes alone; "training bins of fold k" is all bins in folds minus fold k's own.
     with np.errstate(over="ignore", invalid="ignore"):
-        eta_steps = design.linear_predictors(steps)
-        eta_steps += eta[:, None]
-        spike_eta = ys[:, None] * eta_steps[spikes]
+        increments = design.linear_predictors(steps, dtype=None)
+        spike_eta = ys[:, None] * (eta[spikes, None] + increments[spikes])
         own = np.bincount(folds[spikes], weights=spike_eta[np.arange(spikes.size), folds[spikes]],
                           minlength=n_folds)[:n_folds]
         train_spike_part = spike_eta.sum(axis=0) - own
-        mu_steps = np.exp(eta_steps, out=eta_steps)
-        del eta_steps
-        mu_part = (mu_steps.sum(axis=0) if in_rows.size == y.size
-                   else mu_steps[in_rows].sum(axis=0))
+        # mu after step k is mu * exp(X Z d_k): the exponential in the plan's precision
+        # (float32 runs 3x faster than float64 here: n x n_folds of them per model), the
+        # products and sums in float64.
+        factors = np.exp(increments, out=increments)
+        del increments
+        mu_part = _weighted_column_sums(mu if in_rows.size == y.size else mu * inside, factors)
 
     layouts = full.terms
     fits, predictions = [], []
     for k in range(n_folds):
         th = theta + steps[k]
         rows_k = test_rows[k]
-        held_mu = mu_steps[rows_k, k]
+        held_mu = mu[rows_k] * factors[rows_k, k]
         data1 = float(mu_part[k] - held_mu.sum() - train_spike_part[k])
         f0 = data0[k] + pen0
         f1 = data1 + 0.5 * float(th @ s @ th)
@@ -165,3 +168,15 @@ def refit_folds(design: Design, y, offset, full: PoissonFit, folds: np.ndarray, 
                                offset))
         predictions.append(held_mu)
     return (fits, predictions) if heldout else fits
+
+
+def _weighted_column_sums(w: np.ndarray, columns: np.ndarray, chunk: int = 8192) -> np.ndarray:
+    """``w @ columns`` in float64 for float32 or float64 ``columns`` (n x m), chunk by chunk.
+
+    A mixed-precision product would first copy all of ``columns`` to float64; chunks keep
+    that copy small.
+    """
+    out = np.zeros(columns.shape[1])
+    for start in range(0, w.size, chunk):
+        out += w[start:start + chunk] @ columns[start:start + chunk].astype(np.float64, copy=False)
+    return out

@@ -258,21 +258,21 @@ def _weight_derivative_traces(design: Design, w: np.ndarray, gram: np.ndarray,
     ``X' diag(v) X`` is linear in the weights ``v``, so every trace is a weighted sum of the
     same bin quantities ``h_i = x_i' Z A^{-1} Z' x_i``::
 
-        tr(A^{-1} dH_k) = sum_i w_i eta_ki h_i,    eta_k = X Z dtheta_k
+        tr(A^{-1} dH_k) = sum_i w_i h_i (X Z dtheta_k)_i = (Z'X' (w h))' dtheta_k
 
     One pass over the bins for ``h`` (:meth:`Design.row_quadratic_forms`, about 1-1.3 Gram
-    passes) serves every penalty, instead of one Gram pass per penalty. ``gram`` is unused
-    (kept for the signature).
+    passes) and one product ``X' r`` (float64) serve every penalty, instead of one Gram pass
+    per penalty. ``gram`` is unused (kept for the signature).
     """
-    eta = design.linear_predictors(dtheta)            # (n_rows, n_penalties)
-    scale = np.max(np.abs(eta * (w > 0)[:, None]), axis=0, initial=0.0)
     # |tr(A^{-1} dH_k)| <= max|eta_k| tr(A^{-1} H) <= max|eta_k| n_theta (the eigenvalues
-    # of A^{-1} H lie in [0, 1]): when every term is smoothed away no pass is needed.
+    # of A^{-1} H lie in [0, 1]): when every term is smoothed away no pass is needed. The
+    # bound on max|eta_k| needs no pass over the bins either.
+    scale = design.linear_predictor_bounds(dtheta)
     live = scale * a_inv.shape[0] > NEGLIGIBLE_TRACE
     out = np.zeros(dtheta.shape[0])
     if live.any():
         h = design.row_quadratic_forms(a_inv)
-        out[live] = (w * h) @ eta[:, live]
+        out[live] = dtheta[live] @ design.transpose_dot(w * h)
     return out
 
 

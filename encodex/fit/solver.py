@@ -124,6 +124,13 @@ class PenalisedPoissonNewton:
             f = float(np.dot(self.mask, mu) - np.dot(self.my, eta) + 0.5 * theta @ self.S @ theta)
         return (f if np.isfinite(f) else np.inf), mu
 
+    def objective_at(self, theta, mu):
+        """The objective at ``theta`` whose mean counts ``mu`` are known (logs on spike bins only)."""
+        spikes = np.flatnonzero(self.my)
+        with np.errstate(divide="ignore"):
+            return float(np.dot(self.mask, mu) - np.dot(self.my[spikes], np.log(mu[spikes]))
+                         + 0.5 * theta @ self.S @ theta)
+
     def gradient(self, theta, mu):
         return self.design.transpose_dot(self.mask * mu - self.my) + self.S @ theta
 
@@ -189,10 +196,7 @@ class PenalisedPoissonNewton:
             gram0 = None
         else:
             mu = mu0
-            spikes = np.flatnonzero(self.my)
-            with np.errstate(divide="ignore"):
-                f = float(np.dot(self.mask, mu) - np.dot(self.my[spikes], np.log(mu[spikes]))
-                          + 0.5 * theta @ self.S @ theta)
+            f = self.objective_at(theta, mu)
         if not np.isfinite(f):
             # A warm start from another problem can overflow here; restart from the mean rate.
             theta = np.zeros_like(theta)
