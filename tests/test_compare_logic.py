@@ -63,6 +63,27 @@ def test_loglik_matches_scipy_poisson():
     assert poisson_loglik(y, mu) == pytest.approx(poisson.logpmf(y, mu).sum(), rel=1e-12)
 
 
+def test_heldout_score_equals_its_definitions_to_the_bit():
+    # heldout_score shares the logs of the counts between the model's and the mean-rate
+    # model's sums; each number must still be exactly that of the separate functions.
+    # Deviance checked against scipy.special.xlogy's textbook form (Cameron & Windmeijer 1996).
+    from scipy.special import xlogy
+
+    from encodex.compare.scores import poisson_deviance
+
+    rng = np.random.default_rng(4)
+    y = rng.poisson(0.3, 5000)
+    mu = rng.uniform(0.05, 1.0, 5000)
+    mu0 = np.full(5000, y.mean())
+    s = heldout_score(y, mu, mu0)
+    assert s.loglik == poisson_loglik(y, mu) and s.loglik_mean == poisson_loglik(y, mu0)
+    assert s.deviance_explained == 1.0 - poisson_deviance(y, mu) / poisson_deviance(y, mu0)
+    textbook = 2.0 * np.sum(xlogy(y, y / mu) - (y - mu))
+    assert poisson_deviance(y, mu) == pytest.approx(textbook, rel=1e-12)
+    assert s.bits_per_spike == pytest.approx(
+        (poisson_loglik(y, mu) - poisson_loglik(y, mu0)) / (y.sum() * np.log(2)), rel=1e-15)
+
+
 def test_improvement_p_one_sided():
     better = np.array([0.1, 0.2, 0.15, 0.3, 0.05, 0.12, 0.2, 0.1, 0.25, 0.3])
     zero = np.zeros(10)

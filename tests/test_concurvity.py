@@ -93,3 +93,25 @@ def test_bad_arguments(design):
     with pytest.raises(InputError, match="Design or a mapping"):
         ambiguous_pairs([1, 2, 3], ("speed",))
     assert 0.5 < DEFAULT_THRESHOLD < 1.0
+
+
+def test_unweighted_ratios_are_remembered_per_design_and_weighted_ones_are_not(design):
+    import encodex.compare.concurvity as C
+
+    fresh = pairwise_concurvity(design)
+    again = pairwise_concurvity(design)                # served from the memo
+    assert again == fresh
+    gram = C._gram(design, None)
+    memo = C._measure_memo(gram)
+    assert memo is not None and len(memo) >= len(fresh)
+    # The memo holds exactly what a fresh computation gives.
+    sl = design.theta_slices
+    ia = np.arange(sl["speed"].start, sl["speed"].stop)
+    ib = np.concatenate([[0], np.arange(sl["near"].start, sl["near"].stop)]).astype(int)
+    assert memo[(ia.tobytes(), ib.tobytes())][:2] == C._measure_now(gram, ia, ib)[:2]
+    # Weighted Gram matrices are the caller's (writeable) and never remembered.
+    w = np.linspace(0.5, 2.0, design.n_rows)
+    weighted = pairwise_concurvity(design, weights=w)
+    assert C._measure_memo(C._gram(design, w)) is None
+    assert weighted[("speed", "twin")] == pytest.approx(1.0, abs=1e-8)
+    assert weighted[("speed", "near")] != fresh[("speed", "near")]

@@ -202,3 +202,41 @@ def test_weighted_gram_batches_and_chunks_give_the_dense_product(monkeypatch, ba
             m = groups == k
             np.testing.assert_allclose(pieces[k], xz[m].T @ (w[m, None] * xz[m]),
                                        rtol=1e-10, atol=1e-9)
+
+
+def test_linear_predictor_bounds_hold_and_are_reached_by_b_splines():
+    # |x_i' beta| <= |beta_0| + sum_terms max row L1 norm * max|beta_term|, with no pass over
+    # the bins (it decides whether a weight-derivative trace is negligible). It must never be
+    # below the largest |X Z theta| over the bins, and for B-splines (non-negative rows summing
+    # to 1) it is within a small factor of it.
+    rng = np.random.default_rng(12)
+    n = 4000
+    cov = {"position": rng.uniform(0, 1, (n, 2)), "heading": rng.uniform(0, 6, n),
+           "speed": rng.gamma(2, 0.1, n)}
+    design = build_design(cov, default_bases(cov))
+    for names in (design.names, ("speed",), ("position", "heading")):
+        sub = design.subset(names)
+        theta = rng.normal(0, 1.0, (6, sub.n_theta))
+        theta[1] *= 1e-9                                  # tiny steps: bounded as tiny
+        exact = np.max(np.abs(sub.linear_predictors(theta)), axis=0)
+        bound = sub.linear_predictor_bounds(theta)
+        assert bound.shape == (6,)
+        assert np.all(exact <= bound * (1 + 1e-12))
+        assert np.all(bound <= 10 * exact)                # and not wildly loose
+    # Only the intercept: the bound is exact.
+    theta = np.zeros((1, design.n_theta))
+    theta[0, 0] = -2.5
+    assert design.linear_predictor_bounds(theta)[0] == pytest.approx(2.5)
+
+
+def test_linear_predictors_in_the_plans_own_precision_on_request():
+    rng = np.random.default_rng(13)
+    n = 2000
+    cov = {"heading": rng.uniform(0, 6, n), "speed": rng.gamma(2, 0.1, n)}
+    single = build_design(cov, default_bases(cov), gram_precision="single")
+    theta = rng.normal(0, 0.3, (4, single.n_theta))
+    got = single.linear_predictors(theta, dtype=None)
+    assert got.dtype == np.float32
+    np.testing.assert_allclose(got, single.linear_predictors(theta), rtol=0, atol=0)
+    double = build_design(cov, default_bases(cov))
+    assert double.linear_predictors(theta, dtype=None).dtype == np.float64
