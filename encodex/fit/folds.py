@@ -135,7 +135,8 @@ def refit_folds(design: Design, y, offset, full: PoissonFit, folds: np.ndarray, 
         train_spike_part = spike_eta.sum(axis=0) - own
         # mu after step k is mu * exp(X Z d_k): the exponential in the plan's precision
         # (float32 runs 3x faster than float64 here: n x n_folds of them per model), the
-        # products and sums in float64.
+        # products and sums in float64. A step that moves a bin's log rate by more than
+        # float32's exp range (~88) gives an infinite objective: that fold is refitted exactly.
         factors = np.exp(increments, out=increments)
         del increments
         mu_part = _weighted_column_sums(mu if in_rows.size == y.size else mu * inside, factors)
