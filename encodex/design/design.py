@@ -209,9 +209,10 @@ class Design:
         compact rows of :meth:`weighted_gram`'s plan: one dense BLAS product per run of rows
         (and contiguous stretch of the design's compact columns), instead of a sparse pass
         per term; 20 vectors over 180,000 bins measured 2.5-3.3x faster than the sparse
-        products (``benchmarks/bench_predictors.py``). The arithmetic is that of the plan: float32 with ``gram_precision="single"`` (relative
-        error ~1e-7 of ``sum_j |x_ij beta_j|``), which suits increments such as Newton steps
-        and derivatives; add them to a linear predictor from :meth:`linear_predictor` where
+        products (``benchmarks/bench_predictors.py``). The arithmetic is that of the plan:
+        float32 with ``gram_precision="single"`` (relative error ~1e-7 of
+        ``sum_j |x_ij beta_j|``), which suits increments such as Newton steps and
+        derivatives; add them to a linear predictor from :meth:`linear_predictor` where
         the exact value matters.
         """
         thetas = np.atleast_2d(np.asarray(thetas, dtype=float))
