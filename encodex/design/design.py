@@ -237,7 +237,7 @@ class Design:
         return out
 
     def linear_predictor_bounds(self, thetas: np.ndarray) -> np.ndarray:
-        """Upper bounds on ``max_i |(X Z theta_j)_i|`` for each row of ``thetas``, no pass over bins.
+        """Upper bounds on ``max_i |(X Z theta_j)_i|`` per row of ``thetas`` (no pass over bins).
 
         ``|x_i' beta| <= |beta_0| + sum_terms max_i ||x_i,term||_1 max|beta_term|``; each
         term's largest row sum of absolute values is computed once (cached on the base

@@ -125,7 +125,7 @@ class PenalisedPoissonNewton:
         return (f if np.isfinite(f) else np.inf), mu
 
     def objective_at(self, theta, mu):
-        """The objective at ``theta`` whose mean counts ``mu`` are known (logs on spike bins only)."""
+        """Objective at ``theta`` from its known mean counts ``mu`` (logs on spike bins only)."""
         spikes = np.flatnonzero(self.my)
         with np.errstate(divide="ignore"):
             return float(np.dot(self.mask, mu) - np.dot(self.my[spikes], np.log(mu[spikes]))
