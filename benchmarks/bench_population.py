@@ -556,6 +556,8 @@ def main(argv=None) -> int:
                     help="LocalCluster sizes to measure against jobs=2 (default 2)")
     ap.add_argument("--dask-size", type=float, nargs=2, metavar=("UNITS", "MINUTES"),
                     help="size of the dask job (default 20 units x 60 min; --quick 2 x 2)")
+    ap.add_argument("--peer-size", type=float, nargs=2, metavar=("UNITS", "MINUTES"),
+                    help="size of the peer comparison (default 4 units x 5 min; --quick 1 x 2)")
     args = ap.parse_args(argv)
     if args.quick:
         args.sizes = [(1, 2.0), (2, 2.0), (2, 1.0), (2, 4.0)]
@@ -571,6 +573,8 @@ def main(argv=None) -> int:
         args.peer_units, args.peer_minutes = 4, 5.0
         args.dask_units, args.dask_minutes = 20, 60.0
         args.profile_units, args.profile_minutes = 20, 60.0
+    if args.peer_size:
+        args.peer_units, args.peer_minutes = int(args.peer_size[0]), float(args.peer_size[1])
     if args.dask_size:
         args.dask_units, args.dask_minutes = int(args.dask_size[0]), float(args.dask_size[1])
     res = run(args)

@@ -7,7 +7,7 @@ from pathlib import Path
 
 import pytest
 
-from encodex.report.html import build_report
+from encodex.report.html import build_report, render_report
 from encodex.report.testing import write_example_run
 
 CHROMIUM_FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic",
@@ -80,3 +80,37 @@ def test_report_renders_in_headless_chromium(report, tmp_path):
 
     px = mpimg.imread(shot)
     assert px.shape[0] == 1600 and px[..., :3].std() > 0.05
+
+
+def test_cell_figures_in_workers_give_the_same_report(tmp_path):
+    # Per-cell figures drawn by two worker processes, with a setting of the caller's
+    # matplotlib (rcParams) that the workers must take over: the same HTML byte for byte as
+    # one process draws, apart from the time stamp.
+    import matplotlib
+
+    from encodex.report.html import PARALLEL_MIN_CELLS
+    from encodex.report.load import load_run
+
+    run = load_run(write_example_run(tmp_path / "fit"))
+    n = PARALLEL_MIN_CELLS
+    stamp = re.compile(r"report written [0-9: -]+")
+    with matplotlib.rc_context({"axes.facecolor": "#f0e8d8"}):
+        one = stamp.sub("", render_report(run, max_cells=n, jobs=1))
+        two = stamp.sub("", render_report(run, max_cells=n, jobs=2))
+    plain = stamp.sub("", render_report(run, max_cells=n, jobs=1))
+
+    def cell_images(text):
+        return re.findall(r"<div class='cell'.*?src='([^']*)'", text, flags=re.S)
+
+    assert len(cell_images(one)) == n
+    assert one == two
+    # The setting reached every cell figure, so a worker that lost it would show.
+    assert all(a != b for a, b in zip(cell_images(plain), cell_images(one)))
+
+
+def test_report_refuses_a_bad_number_of_workers(tmp_path):
+    from encodex.errors import SettingsError
+
+    d = write_example_run(tmp_path / "fit")
+    with pytest.raises(SettingsError, match="jobs must be a positive integer"):
+        build_report(d, max_cells=1, jobs=0)

@@ -154,8 +154,10 @@ def run_report(args) -> int:
     from encodex.report.load import comparison_stem, file_name_part, load_run
 
     run = load_run(args.dir)
+    jobs = resolve_jobs(args.jobs)
+    _out(f"per-cell figures drawn by {jobs} worker process{'es' * (jobs != 1)} (--jobs)")
     path = build_report(args.dir, out=args.out, between=args.between,
-                        max_cells=args.max_cells)
+                        max_cells=args.max_cells, jobs=jobs)
     figdir = path.parent / "figures"
     fig = population_figure(run.cells, run.alpha)
     save_figure(fig, figdir / "population")
@@ -255,6 +257,7 @@ def register_report_commands(subparsers) -> None:
                    help="per-cell sections in the report (default 30, tuned cells first)")
     p.add_argument("--cell", nargs=2, action="append", metavar=("UNIT", "ENV"),
                    help="also save this cell's figure as PNG and PDF (repeatable)")
+    add_jobs_option(p)
     p.set_defaults(func=run_report)
 
     p = subparsers.add_parser(

@@ -124,7 +124,7 @@ def demo(out, n_cells: int = 12, duration_s: float = 900.0, jobs: int = 2, seed:
     duration_s : float
         Seconds recorded per environment.
     jobs : int
-        Parallel workers of the fit.
+        Parallel workers of the fit and of the report's figures.
     seed : int
         Seed of the simulation and of the folds.
     echo : callable
@@ -186,7 +186,8 @@ def demo(out, n_cells: int = 12, duration_s: float = 900.0, jobs: int = 2, seed:
     echo("  " + cmp.notes[0])
     step("6/6 writing the HTML report")
     report = build_report(fit_dir, out=out / "report.html", between=(a, b),
-                          max_cells=max_cells, title="encodex demo: simulated two-room session")
+                          max_cells=max_cells, title="encodex demo: simulated two-room session",
+                          jobs=jobs)
     step("done")
     echo(tables.caveat)
     return {"nwb": files["nwb"], "truth": files["truth"], "fit": fit_dir,

@@ -138,7 +138,7 @@ def _goodness_section(cells: pd.DataFrame) -> list[str]:
 
 
 def render_report(run: RunFolder, between=None, max_cells: int = 30,
-                  title: str | None = None) -> str:
+                  title: str | None = None, jobs: int = 1) -> str:
     """The report of a fit run as one HTML string (figures embedded).
 
     Parameters
@@ -151,9 +151,15 @@ def render_report(run: RunFolder, between=None, max_cells: int = 30,
         Per-cell sections to include (tuned cells by decreasing held-out gain first).
     title : str, optional
         Report title.
+    jobs : int
+        Worker processes drawing the per-cell figures (the slow part: about a second of
+        matplotlib layout and rendering each); the report is the same byte for byte
+        whatever the number.
     """
     if max_cells < 0:
         raise SettingsError(f"max_cells must be >= 0; got {max_cells}")
+    if isinstance(jobs, bool) or not isinstance(jobs, (int, np.integer)) or jobs < 1:
+        raise SettingsError(f"jobs must be a positive integer (got {jobs!r}); use --jobs 1")
     tables = make_tables(run)
     alpha = run.alpha
     caveat = label_caveat(alpha)
@@ -246,11 +252,7 @@ def render_report(run: RunFolder, between=None, max_cells: int = 30,
         parts.append("<p>" + " ".join(
             f"<a href='#cell-{html.escape(e)}-{html.escape(u)}'>{html.escape(u)} "
             f"({html.escape(e)})</a>" for u, e in chosen) + "</p>")
-    for u, e in chosen:
-        fig = cell_figure(run, u, e)
-        parts += [f"<div class='cell' id='cell-{html.escape(e)}-{html.escape(u)}'>",
-                  f"<h3>Unit {html.escape(u)} in {html.escape(e)}</h3>",
-                  _img(fig, f"unit {u} in {e}"), "</div>"]
+    parts += _cell_sections(run, chosen, jobs)
     if omitted:
         parts.append(f"<p class='small'>{omitted} further cell/environment pairs are not shown "
                      f"(raise --max-cells to include them); every cell is in cells.csv.</p>")
@@ -268,8 +270,58 @@ def render_report(run: RunFolder, between=None, max_cells: int = 30,
     return "\n".join(parts)
 
 
+#: Below this many cells the figures are drawn in this process: starting workers (~1-2 s,
+#: matplotlib and encodex imported afresh) costs more than it saves.
+PARALLEL_MIN_CELLS = 4
+
+
+def _cell_sections(run: RunFolder, pairs: list[tuple[str, str]], jobs: int) -> list[str]:
+    """HTML of the per-cell sections, drawn in up to ``jobs`` worker processes.
+
+    Each worker draws a contiguous share of the cells, in order, with the caller's
+    matplotlib settings (rcParams), so the joined sections are the ones one process draws.
+    """
+    jobs = min(int(jobs), len(pairs))
+    if jobs <= 1 or len(pairs) < PARALLEL_MIN_CELLS:
+        return _draw_sections(run, pairs)
+    from joblib import Parallel, delayed
+
+    bounds = np.linspace(0, len(pairs), jobs + 1).round().astype(int)
+    shares = [pairs[a:b] for a, b in zip(bounds[:-1], bounds[1:])]
+    rc = _portable_rc()
+    drawn = Parallel(n_jobs=jobs)(delayed(_draw_sections)(run, share, rc) for share in shares)
+    return [part for share in drawn for part in share]
+
+
+def _portable_rc() -> dict:
+    """The caller's matplotlib settings that a worker can take over (not the backend)."""
+    import matplotlib
+
+    skip = {"backend", "backend_fallback", "interactive"}
+    return {k: v for k, v in matplotlib.rcParams.items() if k not in skip}
+
+
+def _draw_sections(run: RunFolder, pairs, rc: dict | None = None) -> list[str]:
+    """HTML sections of ``pairs`` (unit, environment), one figure each; ``rc``: a worker's
+    matplotlib settings (it draws into memory only, with the Agg backend)."""
+    import matplotlib
+
+    if rc is None:
+        return [_cell_section(run, u, e) for u, e in pairs]
+    matplotlib.use("Agg")
+    with matplotlib.rc_context(rc):
+        return [_cell_section(run, u, e) for u, e in pairs]
+
+
+def _cell_section(run: RunFolder, unit: str, env: str) -> str:
+    fig = cell_figure(run, unit, env)
+    return "\n".join([f"<div class='cell' id='cell-{html.escape(env)}-{html.escape(unit)}'>",
+                      f"<h3>Unit {html.escape(unit)} in {html.escape(env)}</h3>",
+                      _img(fig, f"unit {unit} in {env}"), "</div>"])
+
+
 def build_report(run_dir, out=None, between=None, max_cells: int = 30,
-                 title: str | None = None) -> Path:
+                 title: str | None = None, jobs: int = 1) -> Path:
     """Write the self-contained HTML report of a fit run.
 
     Parameters
@@ -278,7 +330,7 @@ def build_report(run_dir, out=None, between=None, max_cells: int = 30,
         Output folder of ``encodex fit``.
     out : str or Path, optional
         HTML file to write; default ``<run_dir>/report.html``.
-    between, max_cells, title
+    between, max_cells, title, jobs
         See :func:`render_report`.
 
     Returns
@@ -287,7 +339,7 @@ def build_report(run_dir, out=None, between=None, max_cells: int = 30,
         The HTML file.
     """
     run = load_run(run_dir)
-    text = render_report(run, between=between, max_cells=max_cells, title=title)
+    text = render_report(run, between=between, max_cells=max_cells, title=title, jobs=jobs)
     path = Path(out) if out is not None else run.path / "report.html"
     try:
         path.parent.mkdir(parents=True, exist_ok=True)

@@ -74,7 +74,8 @@ def track_demo(out, scenario: str = "gain_corridor", n_cells: int = 12,
          "apart from their label)")
     step("4/4 writing the HTML report")
     report = build_report(fit_dir, out=out / "report.html", max_cells=max_cells,
-                          title=f"encodex demo: simulated {scenario} track session")
+                          title=f"encodex demo: simulated {scenario} track session",
+                          jobs=jobs)
     step("done")
     echo(tables.caveat)
     return {"nwb": files["nwb"], "truth": files["truth"], "fit": fit_dir,
