@@ -75,6 +75,11 @@ def _axis_label(name: str) -> str:
     return f"{text} ({unit})" if unit else text
 
 
+#: The y axis of a response curve reaches this multiple of the highest band or observed rate:
+#: the top quarter of the panel stays free for the legend.
+LEGEND_HEADROOM = 1.35
+
+
 def _draw_curve(ax, arrays: dict, name: str) -> None:
     colour = variable_colour(name)
     g, rate, lo, hi, in_hz = term_rate(arrays, name)
@@ -97,11 +102,16 @@ def _draw_curve(ax, arrays: dict, name: str) -> None:
         spk = np.asarray(arrays.get(f"{name}__spikes"), float)
         ok = occ >= MIN_BIN_OCCUPANCY_S
         centres = (edges[:-1] + edges[1:]) / 2
-        ax.plot(centres[ok], spk[ok] / occ[ok], "o", ms=3.5, mfc="white", mec=colour,
+        observed = spk[ok] / occ[ok]
+        ax.plot(centres[ok], observed, "o", ms=3.5, mfc="white", mec=colour,
                 mew=1.0, label="observed", zorder=3)
+    else:
+        observed = np.empty(0)
     ax.fill_between(g, lo, hi, color=colour, alpha=0.25, lw=0, label="95% band")
     ax.plot(g, rate, color=colour, lw=1.8, label="model")
-    ax.set_ylim(bottom=0)
+    # Headroom above the data for the legend (upper right), so it never covers a point.
+    top = np.nanmax(np.concatenate([hi, observed, [0.0]]))
+    ax.set_ylim(0, top * LEGEND_HEADROOM if np.isfinite(top) and top > 0 else None)
     ax.set_xlabel(_axis_label(name))
     ax.set_ylabel("rate (Hz)" if in_hz else "rate factor (no baseline saved)")
     if _circular(name):
