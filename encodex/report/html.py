@@ -160,6 +160,9 @@ def render_report(run: RunFolder, between=None, max_cells: int = 30,
         raise SettingsError(f"max_cells must be >= 0; got {max_cells}")
     if isinstance(jobs, bool) or not isinstance(jobs, (int, np.integer)) or jobs < 1:
         raise SettingsError(f"jobs must be a positive integer (got {jobs!r}); use --jobs 1")
+    chosen, omitted = _cell_order(run, max_cells)
+    # With workers the cell figures are drawn while this process builds the other sections.
+    cell_sections = _cell_sections(run, chosen, jobs)
     tables = make_tables(run)
     alpha = run.alpha
     caveat = label_caveat(alpha)
@@ -245,14 +248,13 @@ def render_report(run: RunFolder, between=None, max_cells: int = 30,
             parts += ["<h4>Stability of tuning (correlation of fitted responses)</h4>",
                       _table(st), _table(cmp.stability)]
     parts.append("</section>")
-    chosen, omitted = _cell_order(run, max_cells)
     parts.append("<section id='cells'><h2>Cells</h2>")
     parts.append(f"<p class='small'>{html.escape(caveat)}</p>")
     if chosen:
         parts.append("<p>" + " ".join(
             f"<a href='#cell-{html.escape(e)}-{html.escape(u)}'>{html.escape(u)} "
             f"({html.escape(e)})</a>" for u, e in chosen) + "</p>")
-    parts += _cell_sections(run, chosen, jobs)
+    parts += [part for share in cell_sections for part in share]
     if omitted:
         parts.append(f"<p class='small'>{omitted} further cell/environment pairs are not shown "
                      f"(raise --max-cells to include them); every cell is in cells.csv.</p>")
@@ -275,22 +277,25 @@ def render_report(run: RunFolder, between=None, max_cells: int = 30,
 PARALLEL_MIN_CELLS = 4
 
 
-def _cell_sections(run: RunFolder, pairs: list[tuple[str, str]], jobs: int) -> list[str]:
-    """HTML of the per-cell sections, drawn in up to ``jobs`` worker processes.
+def _cell_sections(run: RunFolder, pairs: list[tuple[str, str]], jobs: int):
+    """HTML of the per-cell sections, in shares drawn by up to ``jobs`` worker processes.
 
-    Each worker draws a contiguous share of the cells, in order, with the caller's
-    matplotlib settings (rcParams), so the joined sections are the ones one process draws.
+    Returns an iterator over lists of sections, in the order of ``pairs``. Each worker
+    draws a contiguous share of the cells with the caller's matplotlib settings (rcParams),
+    so the joined sections are the ones one process draws. The workers start at once (the
+    caller can build other parts meanwhile); in one process the figures are drawn as the
+    iterator is read.
     """
     jobs = min(int(jobs), len(pairs))
     if jobs <= 1 or len(pairs) < PARALLEL_MIN_CELLS:
-        return _draw_sections(run, pairs)
+        return ([_cell_section(run, u, e)] for u, e in pairs)
     from joblib import Parallel, delayed
 
     bounds = np.linspace(0, len(pairs), jobs + 1).round().astype(int)
     shares = [pairs[a:b] for a, b in zip(bounds[:-1], bounds[1:])]
     rc = _portable_rc()
-    drawn = Parallel(n_jobs=jobs)(delayed(_draw_sections)(run, share, rc) for share in shares)
-    return [part for share in drawn for part in share]
+    return Parallel(n_jobs=jobs, return_as="generator")(
+        delayed(_draw_sections)(run, share, rc) for share in shares)
 
 
 def _portable_rc() -> dict:
@@ -301,13 +306,11 @@ def _portable_rc() -> dict:
     return {k: v for k, v in matplotlib.rcParams.items() if k not in skip}
 
 
-def _draw_sections(run: RunFolder, pairs, rc: dict | None = None) -> list[str]:
-    """HTML sections of ``pairs`` (unit, environment), one figure each; ``rc``: a worker's
-    matplotlib settings (it draws into memory only, with the Agg backend)."""
+def _draw_sections(run: RunFolder, pairs, rc: dict) -> list[str]:
+    """In a worker: HTML sections of ``pairs`` (unit, environment), one figure each, drawn
+    into memory with the Agg backend and the caller's matplotlib settings ``rc``."""
     import matplotlib
 
-    if rc is None:
-        return [_cell_section(run, u, e) for u, e in pairs]
     matplotlib.use("Agg")
     with matplotlib.rc_context(rc):
         return [_cell_section(run, u, e) for u, e in pairs]
