@@ -63,3 +63,18 @@ def test_one_step_fold_summaries_match_direct_sums(problem):
         assert fits[k].loglik == pytest.approx(poisson_loglik(y, mu, train), rel=1e-10)
         assert fits[k].deviance == pytest.approx(poisson_deviance(y, mu, train), rel=1e-10)
         np.testing.assert_allclose(held[k], mu[folds == k], rtol=1e-12)
+
+
+def test_one_step_fits_without_covariances_are_the_same_fits(problem):
+    # Scoring asks for the fold fits without their covariances: coefficients, likelihoods
+    # and held-out predictions must be the very same numbers; only covariance and edf go.
+    design, y, folds = problem
+    full = fit_poisson(design, y, np.log(DT))
+    with_cov, held = refit_folds(design, y, np.log(DT), full, folds, 10, heldout=True)
+    without, held_without = refit_folds(design, y, np.log(DT), full, folds, 10, heldout=True,
+                                        covariances=False)
+    for a, b, ha, hb in zip(with_cov, without, held, held_without):
+        assert np.array_equal(a.theta, b.theta) and np.array_equal(ha, hb)
+        assert (a.loglik, a.deviance, a.converged) == (b.loglik, b.deviance, b.converged)
+        assert a.covariance.shape == (design.n_theta,) * 2 and a.edf
+        assert b.covariance is None and b.edf == {}

@@ -122,8 +122,10 @@ def cross_validate(design, model: Model, y: np.ndarray, offset: np.ndarray, fold
         full = fit_poisson(sub, y, offset, lambdas=None, start=start, options=fit_options)
         if full_fits is not None:
             full_fits[tuple(model)] = full
+        # Scores need the fold models' predictions only, not their covariances.
         fold_models, fold_predictions = refit_folds(sub, y, offset, full, folds.fold, folds.k,
-                                                    options=fit_options, heldout=True)
+                                                    options=fit_options, heldout=True,
+                                                    covariances=False)
         if not full.converged:
             bad += 1
             reasons.append(full.reason)

@@ -34,7 +34,7 @@ from .solver import PenalisedPoissonNewton
 @single_threaded
 def refit_folds(design: Design, y, offset, full: PoissonFit, folds: np.ndarray, n_folds: int,
                 exact: bool = False, options: FitOptions | None = None,
-                heldout: bool = False):
+                heldout: bool = False, covariances: bool = True):
     """Fit ``full``'s model with its smoothing parameters on every fold's training rows.
 
     Parameters
@@ -55,6 +55,11 @@ def refit_folds(design: Design, y, offset, full: PoissonFit, folds: np.ndarray, 
         Refit every fold by Newton's method to convergence instead of one step.
     heldout : bool
         Also return each fit's expected counts on its own fold's bins (held out from it).
+    covariances : bool
+        Give each one-step fit its posterior covariance and effective degrees of freedom
+        (an ``n_theta x n_theta`` inverse per fold). Scoring needs neither: with False the
+        one-step fits carry ``covariance=None`` and empty ``edf`` (exact refits always
+        have them).
 
     Returns
     -------
@@ -159,10 +164,12 @@ def refit_folds(design: Design, y, offset, full: PoissonFit, folds: np.ndarray, 
             fits.append(fit)
             predictions.append(fit.predict(design, rows=rows_k, offset=offset))
             continue
-        h = hessians[k]
-        cov = _posterior_covariance(h + s)
-        f_diag = np.einsum("ij,ji->i", cov, h)
-        edf = {t_.name: float(f_diag[t_.theta_slice].sum()) for t_ in layouts}
+        cov, edf = None, {}
+        if covariances:
+            h = hessians[k]
+            cov = _posterior_covariance(h + s)
+            f_diag = np.einsum("ij,ji->i", cov, h)
+            edf = {t_.name: float(f_diag[t_.theta_slice].sum()) for t_ in layouts}
         fits.append(PoissonFit(layouts, th, full.lambdas, cov, edf,
                                -data1 - float(log_fact[k]), 2.0 * (data1 + float(y_log_y[k])),
                                None, True, "one Newton step from the full-data fit", 1, 0,

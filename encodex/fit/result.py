@@ -79,8 +79,10 @@ class PoissonFit:
         Basis coefficients with intercept, ``Z theta``.
     lambdas : ndarray
         Smoothing parameters, one per penalty (planar terms have two).
-    covariance : ndarray
-        Posterior covariance of ``theta``, ``(H + S_lambda)^{-1}``.
+    covariance : ndarray or None
+        Posterior covariance of ``theta``, ``(H + S_lambda)^{-1}``; None only for one-step
+        fold fits asked for without it (:func:`encodex.fit.refit_folds`,
+        ``covariances=False``), whose ``edf`` is then empty.
     edf : dict of str to float
         Effective degrees of freedom per term (``tr(F)`` over its coefficients,
         ``F = (H + S)^{-1} H``); the intercept counts 1 and is not listed.
@@ -109,7 +111,7 @@ class PoissonFit:
     terms: tuple[TermLayout, ...]
     theta: np.ndarray
     lambdas: np.ndarray
-    covariance: np.ndarray
+    covariance: np.ndarray | None
     edf: dict
     loglik: float
     deviance: float
