@@ -45,3 +45,29 @@ def run_cells(worker, specs, jobs: int, cells_out: str | None = None,
         if fh:
             fh.close()
     return cells
+
+
+def box_environment(n_cells: int, minutes: float, seed: int, name: str = "bench"):
+    """A simulated one-environment session ready for ``analyse_unit``, run defaults.
+
+    The built-in cell types in the environment "box", 20 ms bins, every variable. Returns
+    ``(session, truth, rows, env, settings)``: ``rows`` are the environment's usable bins
+    (``session.unit_counts(u)[rows]`` are a cell's counts there), ``env`` its work (design
+    built), ``settings`` the default ``RunSettings``.
+    """
+    import numpy as np
+
+    from encodex.population.run import _environment_work
+    from encodex.population.settings import RunSettings
+    from encodex.population.work import environment_design
+    from encodex.session import build_session
+    from encodex.simulate import simulate_recording
+
+    rec, truth = simulate_recording(seed=seed, n_cells=n_cells, duration_s=minutes * 60.0,
+                                    environments=("box",))
+    session = build_session(rec, bin_size=0.02)
+    rows = np.flatnonzero(np.asarray(session.valid) & (np.asarray(session.environment) == 0))
+    settings = RunSettings()
+    env, _ = _environment_work(session, "box", settings, name)
+    environment_design(env)
+    return session, truth, rows, env, settings

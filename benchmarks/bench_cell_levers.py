@@ -25,11 +25,8 @@ import numpy as np
 import encodex.compare.cell as C
 import encodex.fit.smoothing as S
 from encodex.fit.smoothing import NEGLIGIBLE_TRACE
-from encodex.population.run import _environment_work
-from encodex.population.settings import RunSettings
-from encodex.population.work import analyse_unit, environment_design
-from encodex.session import build_session
-from encodex.simulate import simulate_recording
+from encodex.population.work import analyse_unit
+from _cells import box_environment
 
 
 def old_traces(design, w, gram, a_inv, dtheta):
@@ -68,13 +65,7 @@ VARIANTS = {"before (trace per penalty, parent-only start)": (old_traces, PARENT
 
 
 def main(n: int, minutes: float) -> None:
-    rec, _ = simulate_recording(seed=17, n_cells=n, duration_s=minutes * 60,
-                                environments=("box",))
-    s = build_session(rec, bin_size=0.02)
-    rows = np.flatnonzero(np.asarray(s.valid) & (np.asarray(s.environment) == 0))
-    rs = RunSettings()
-    env, _ = _environment_work(s, "box", rs, "x")
-    environment_design(env)
+    s, _, rows, env, rs = box_environment(n, minutes, seed=17, name="x")
     tot = {k: 0.0 for k in VARIANTS}
     labels_by_unit = {}
     for u in s.unit_ids:

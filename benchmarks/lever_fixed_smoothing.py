@@ -32,6 +32,7 @@ import time
 import numpy as np
 
 import _peers
+from _cells import box_environment
 
 
 def _term_lambdas(fit, name: str):
@@ -95,19 +96,9 @@ def fixed_later_steps():
 def run(cells: int, minutes: float, seed: int) -> dict:
     from threadpoolctl import threadpool_limits
 
-    from encodex.population.run import _environment_work
-    from encodex.population.settings import RunSettings
-    from encodex.population.work import analyse_unit, environment_design
-    from encodex.session import build_session
-    from encodex.simulate import simulate_recording
+    from encodex.population.work import analyse_unit
 
-    rec, truth = simulate_recording(seed=seed, n_cells=cells, duration_s=minutes * 60.0,
-                                    environments=("box",))
-    session = build_session(rec, bin_size=0.02)
-    rows = np.flatnonzero(np.asarray(session.valid) & (np.asarray(session.environment) == 0))
-    rs = RunSettings()
-    env, _ = _environment_work(session, "box", rs, "bench")
-    environment_design(env)
+    session, truth, rows, env, rs = box_environment(cells, minutes, seed)
     true = dict(zip(truth["unit"], truth["variables"]))
     out = {"cells": cells, "minutes": minutes, "seed": seed, "per_cell": []}
 
