@@ -21,6 +21,17 @@ a default change would need the labels study (``labels_at_the_edges.py``).
 Usage::
 
     /work/venv/bin/python benchmarks/lever_fixed_smoothing.py [--cells 10] [--minutes 60]
+
+The labels study with the lever (benchmarks/RESULTS.md) ran with this hook as
+``sitecustomize.py`` in a folder on ``PYTHONPATH``, so that the study's worker processes
+apply it too, and ``ENCODEX_LEVER=fixed`` in the environment::
+
+    import os
+    if os.environ.get("ENCODEX_LEVER") == "fixed":
+        import sys
+        sys.path.insert(0, "<clone>/benchmarks")
+        import lever_fixed_smoothing
+        lever_fixed_smoothing.fixed_later_steps().__enter__()
 """
 
 from __future__ import annotations

@@ -150,12 +150,15 @@ def run_report(args) -> int:
         population_figure,
         save_figure,
     )
-    from encodex.report.html import build_report
+    from encodex.report.html import build_report, cell_order, figure_workers
     from encodex.report.load import comparison_stem, file_name_part, load_run
 
     run = load_run(args.dir)
     jobs = resolve_jobs(args.jobs)
-    _out(f"per-cell figures drawn by {jobs} worker process{'es' * (jobs != 1)} (--jobs)")
+    n_cells = len(cell_order(run, args.max_cells)[0])
+    used = figure_workers(n_cells, jobs)
+    _out(f"{n_cells} per-cell figure{'s' * (n_cells != 1)} drawn by "
+         + ("this process" if used == 1 else f"{used} worker processes") + " (--jobs)")
     path = build_report(args.dir, out=args.out, between=args.between,
                         max_cells=args.max_cells, jobs=jobs)
     figdir = path.parent / "figures"

@@ -102,7 +102,8 @@ def _pairs(envs: tuple[str, ...], between) -> list[tuple[str, str]]:
     return list(combinations(envs, 2))[:3]
 
 
-def _cell_order(run: RunFolder, max_cells: int) -> tuple[list[tuple[str, str]], int]:
+def cell_order(run: RunFolder, max_cells: int) -> tuple[list[tuple[str, str]], int]:
+    """(unit, environment) pairs the report shows a figure of, and how many it leaves out."""
     c = run.cells.copy()
     c["_ok"] = c["status"] == "ok"
     c["_tuned"] = c["_ok"] & (c["variables"] != "none")
@@ -160,7 +161,7 @@ def render_report(run: RunFolder, between=None, max_cells: int = 30,
         raise SettingsError(f"max_cells must be >= 0; got {max_cells}")
     if isinstance(jobs, bool) or not isinstance(jobs, (int, np.integer)) or jobs < 1:
         raise SettingsError(f"jobs must be a positive integer (got {jobs!r}); use --jobs 1")
-    chosen, omitted = _cell_order(run, max_cells)
+    chosen, omitted = cell_order(run, max_cells)
     # With workers the cell figures are drawn while this process builds the other sections.
     cell_sections = _cell_sections(run, chosen, jobs)
     tables = make_tables(run)
@@ -277,6 +278,11 @@ def render_report(run: RunFolder, between=None, max_cells: int = 30,
 PARALLEL_MIN_CELLS = 4
 
 
+def figure_workers(n_cells: int, jobs: int) -> int:
+    """Processes that draw ``n_cells`` cell figures when ``jobs`` are allowed (1: this one)."""
+    return 1 if n_cells < PARALLEL_MIN_CELLS else max(1, min(int(jobs), n_cells))
+
+
 def _cell_sections(run: RunFolder, pairs: list[tuple[str, str]], jobs: int):
     """HTML of the per-cell sections, in shares drawn by up to ``jobs`` worker processes.
 
@@ -286,8 +292,8 @@ def _cell_sections(run: RunFolder, pairs: list[tuple[str, str]], jobs: int):
     caller can build other parts meanwhile); in one process the figures are drawn as the
     iterator is read.
     """
-    jobs = min(int(jobs), len(pairs))
-    if jobs <= 1 or len(pairs) < PARALLEL_MIN_CELLS:
+    jobs = figure_workers(len(pairs), jobs)
+    if jobs == 1:
         return ([_cell_section(run, u, e)] for u, e in pairs)
     from joblib import Parallel, delayed
 
